@@ -1,0 +1,1 @@
+"""vservo_node."""
