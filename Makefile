@@ -13,7 +13,7 @@ $(STAMP): requirements.txt constraints.txt setup.py
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade "pip>=24"
 	$(PY) -m pip install --quiet -r requirements.txt -c constraints.txt
-	$(PY) -m pip install --quiet --no-deps --no-build-isolation -e .
+	$(PY) -m pip install --quiet --no-deps -e .
 	touch $(STAMP)
 
 # The main job on the built-in simulated cell (sim node + controller over DDS, isolated).

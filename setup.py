@@ -34,7 +34,6 @@ setup(
     maintainer_email="vservo-maintainers@example.com",
     description="Image-based visual servoing for eye-in-hand arms, with a simulated cell.",
     license="Apache-2.0",
-    tests_require=["pytest"],
     entry_points={
         "console_scripts": [
             "vservo = vservo_node.cli:main",
