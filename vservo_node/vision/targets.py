@@ -1,0 +1,398 @@
+"""Target files: what the camera servos on, and pictures of it for simulation and tests.
+
+A target file (YAML, format ``vservo_target/1``, our own) describes one planar target of one
+of three kinds. Geometry is in the **target frame**, metres: origin at the board centre, x to
+the right and y down as the board is printed (so rows of the printed picture run along +y),
+z = x cross y into the board. A camera looking straight at the printed board with its optical
+axes aligned to these has ``T_camera_target = [I | (0, 0, d)]``.
+
+- ``dots``: coloured discs (>= 3, any colours); per dot ``id``, ``colour`` (sRGB 0..255) and
+  optionally ``centre`` [x, y] and ``radius``. ``segmentation`` tells the detector how dots
+  stand out: ``chroma`` (coloured dots on a grey/white board), ``dark`` or ``bright``.
+- ``markers``: square fiducials of one ``dictionary`` (``apriltag_36h11``, ``4x4_50``, ... any
+  OpenCV ``cv2.aruco.DICT_*`` name); per marker ``id`` and optionally ``centre`` and ``size``
+  (side of the outer black square).
+- ``textured``: a poster without markers. ``texture`` is either ``{generator: shapes, seed,
+  count}`` (procedural, regenerated identically from the seed) or ``{image: file}`` (a picture
+  of the poster, relative to the target file); ``points`` are the servo points [x, y].
+
+Feature keys (hashable identities used everywhere downstream): ``('dot', id)``,
+``('tag', id, corner)`` with OpenCV's corner order (0 top-left, then clockwise as printed), and
+``('pt', index)``.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import cv2
+import numpy as np
+import yaml
+
+from vservo_node import paths
+from vservo_node.vision.image_io import srgb_to_lab
+
+FORMAT = "vservo_target/1"
+KINDS = ("dots", "markers", "textured")
+SEGMENTATIONS = ("chroma", "dark", "bright")
+
+
+@dataclass(frozen=True)
+class Dot:
+    """A coloured disc: ``colour`` sRGB 0..255 (R, G, B); ``centre`` (m), ``radius`` (m)."""
+    id: int
+    colour: tuple
+    centre: tuple | None = None
+    radius: float | None = None
+
+
+@dataclass(frozen=True)
+class Marker:
+    """A square fiducial: ``centre`` (m) and ``size`` (m, side of the outer black square)."""
+    id: int
+    centre: tuple | None = None
+    size: float | None = None
+
+
+@dataclass(frozen=True)
+class Target:
+    """One planar target; kind-specific fields are empty for the other kinds."""
+    name: str
+    kind: str
+    width: float | None = None           # board size, metres
+    height: float | None = None
+    background: tuple = (235, 235, 235)  # board colour, sRGB 0..255
+    dots: tuple = ()
+    segmentation: str = "chroma"
+    threshold: float | None = None       # segmentation threshold (0..255), None: the default
+    dictionary: str | None = None
+    markers: tuple = ()
+    texture: dict | None = None
+    points: np.ndarray | None = None     # textured: servo points (P, 2), metres
+    source: Path | None = field(default=None, compare=False)
+
+    def keys(self) -> list:
+        """Feature keys in the target's order."""
+        if self.kind == "dots":
+            return [("dot", d.id) for d in self.dots]
+        if self.kind == "markers":
+            return [("tag", m.id, c) for m in self.markers for c in range(4)]
+        return [("pt", i) for i in range(len(self.points))]
+
+    @property
+    def has_geometry(self) -> bool:
+        """True when every feature has a position on the board (needed for PnP, rendering)."""
+        if self.kind == "dots":
+            return all(d.centre is not None for d in self.dots)
+        if self.kind == "markers":
+            return all(m.centre is not None for m in self.markers)
+        return True
+
+    def model_points(self, keys=None) -> np.ndarray:
+        """Target-frame coordinates (N, 3), metres (z = 0), of the features ``keys``
+        (default: all, in ``keys()`` order). Dots: disc centres; tags: corners."""
+        if not self.has_geometry:
+            raise ValueError(f"target {self.name!r} gives no positions for its features; "
+                             "add 'centre' (and 'size'/'radius') to each")
+        table = dict(zip(self.keys(), self._xy()))
+        keys = self.keys() if keys is None else [tuple(k) for k in keys]
+        unknown = [k for k in keys if k not in table]
+        if unknown:
+            raise ValueError(f"target {self.name!r} has no features {unknown}")
+        xy = np.array([table[k] for k in keys], dtype=float).reshape(-1, 2)
+        return np.hstack([xy, np.zeros((len(xy), 1))])
+
+    def _xy(self):
+        if self.kind == "dots":
+            return [d.centre for d in self.dots]
+        if self.kind == "markers":
+            # OpenCV's corner order of a printed marker: top-left, top-right, bottom-right,
+            # bottom-left; with y down as printed, top-left is (-h, -h) from the centre.
+            signs = ((-1, -1), (1, -1), (1, 1), (-1, 1))
+            return [(m.centre[0] + sx * m.size / 2, m.centre[1] + sy * m.size / 2)
+                    for m in self.markers for sx, sy in signs]
+        return [tuple(p) for p in self.points]
+
+    def nominal_lab(self) -> np.ndarray:
+        """CIELAB (N, 3) of the dots' printed colours, in ``keys()`` order."""
+        return srgb_to_lab(np.array([d.colour for d in self.dots], dtype=float) / 255.0)
+
+    def aruco_dictionary(self):
+        """The cv2.aruco dictionary of a marker target."""
+        return aruco_dictionary(self.dictionary)
+
+
+def aruco_dictionary(name: str):
+    """cv2.aruco dictionary for a name such as ``apriltag_36h11`` or ``4x4_50``."""
+    attr = "DICT_" + str(name).upper()
+    if not hasattr(cv2.aruco, attr):
+        known = sorted(n[5:].lower() for n in dir(cv2.aruco) if n.startswith("DICT_")
+                       and n[5:] == n[5:].upper())
+        raise ValueError(f"unknown marker dictionary {name!r}; expected one of {known}")
+    return cv2.aruco.getPredefinedDictionary(getattr(cv2.aruco, attr))
+
+
+# ----------------------------------------------------------------------------- loading
+def _pair(value, what):
+    a = np.asarray(value, dtype=float).ravel()
+    if a.size != 2 or not np.isfinite(a).all():
+        raise ValueError(f"{what} must be two finite numbers [x, y] in metres, got {value!r}")
+    return (float(a[0]), float(a[1]))
+
+
+def _positive(value, what):
+    if value is None:
+        return None
+    v = float(value)
+    if not v > 0:
+        raise ValueError(f"{what} must be > 0 metres, got {value!r}")
+    return v
+
+
+def _colour(value, what):
+    c = np.asarray(value).ravel()
+    if c.size != 3 or np.any(c < 0) or np.any(c > 255):
+        raise ValueError(f"{what} must be sRGB [R, G, B] in 0..255, got {value!r}")
+    return tuple(int(round(float(x))) for x in c)
+
+
+def _unique_ids(items, what):
+    ids = [i.id for i in items]
+    repeated = sorted({i for i in ids if ids.count(i) > 1})
+    if repeated:
+        raise ValueError(f"{what} ids must be unique, repeated: {repeated}")
+
+
+def target_from_dict(data: dict, source: Path | None = None) -> Target:
+    """Build and validate a Target from the mapping of a target file."""
+    where = f"target file {source}" if source else "target"
+    if not isinstance(data, dict):
+        raise ValueError(f"{where} must be a mapping, got {type(data).__name__}")
+    if data.get("format", FORMAT) != FORMAT:
+        raise ValueError(f"{where}: format {data.get('format')!r} is not {FORMAT!r}")
+    for required in ("name", "kind"):
+        if required not in data:
+            raise ValueError(f"{where} lacks '{required}'")
+    kind = data["kind"]
+    if kind not in KINDS:
+        raise ValueError(f"{where}: kind {kind!r} is not one of {KINDS}")
+    board = data.get("board", {}) or {}
+    common = dict(name=str(data["name"]), kind=kind,
+                  width=_positive(board.get("width"), "board width"),
+                  height=_positive(board.get("height"), "board height"),
+                  background=_colour(board.get("colour", (235, 235, 235)), "board colour"),
+                  source=source)
+    if kind == "dots":
+        dots = tuple(Dot(id=int(d.get("id", i)), colour=_colour(d.get("colour"), f"dot {i} colour"),
+                         centre=None if d.get("centre") is None
+                         else _pair(d["centre"], f"dot {i} centre"),
+                         radius=_positive(d.get("radius"), f"dot {i} radius"))
+                     for i, d in enumerate(data.get("dots") or []))
+        if len(dots) < 3:
+            raise ValueError(f"{where}: a dot target needs at least 3 dots, got {len(dots)}")
+        _unique_ids(dots, "dot")
+        if any((d.centre is None) != (d.radius is None) for d in dots):
+            raise ValueError(f"{where}: give each dot both 'centre' and 'radius', or neither")
+        seg = data.get("segmentation", {}) or {}
+        mode = seg.get("mode", "chroma")
+        if mode not in SEGMENTATIONS:
+            raise ValueError(f"{where}: segmentation mode {mode!r} is not one of {SEGMENTATIONS}")
+        threshold = seg.get("threshold")
+        if threshold is not None and not 0 < float(threshold) < 255:
+            raise ValueError(f"{where}: segmentation threshold must be in (0, 255), got "
+                             f"{threshold!r}")
+        return Target(**common, dots=dots, segmentation=mode,
+                      threshold=None if threshold is None else float(threshold))
+    if kind == "markers":
+        if "dictionary" not in data:
+            raise ValueError(f"{where} lacks 'dictionary' (e.g. apriltag_36h11, 4x4_50)")
+        aruco_dictionary(data["dictionary"])  # validates the name
+        markers = tuple(Marker(id=int(m["id"]),
+                               centre=None if m.get("centre") is None
+                               else _pair(m["centre"], f"marker {m['id']} centre"),
+                               size=_positive(m.get("size"), f"marker {m['id']} size"))
+                        for m in data.get("markers") or [])
+        if not markers:
+            raise ValueError(f"{where}: a marker target needs at least one marker")
+        _unique_ids(markers, "marker")
+        if any((m.centre is None) != (m.size is None) for m in markers):
+            raise ValueError(f"{where}: give each marker both 'centre' and 'size', or neither")
+        return Target(**common, dictionary=str(data["dictionary"]), markers=markers)
+    # textured
+    texture = data.get("texture")
+    if not isinstance(texture, dict) or not ({"generator", "image"} & set(texture)):
+        raise ValueError(f"{where}: a textured target needs 'texture' with 'generator' "
+                         "(and 'seed') or 'image'")
+    if texture.get("generator", "shapes") != "shapes":
+        raise ValueError(f"{where}: texture generator {texture['generator']!r} is not 'shapes'")
+    if common["width"] is None or common["height"] is None:
+        raise ValueError(f"{where}: a textured target needs board width and height")
+    pts = np.array([_pair(p, f"point {i}") for i, p in enumerate(data.get("points") or [])])
+    if len(pts) < 4:
+        raise ValueError(f"{where}: a textured target needs at least 4 servo points, "
+                         f"got {len(pts)}")
+    return Target(**common, texture=dict(texture), points=pts)
+
+
+def load_target(name_or_path) -> Target:
+    """Load a target file by path, or a shipped one by short name (e.g. ``tray_dots``)."""
+    path = paths.shipped("targets", str(name_or_path))
+    with open(path) as f:
+        return target_from_dict(yaml.safe_load(f), source=Path(path))
+
+
+# ----------------------------------------------------------------------------- pictures
+def texture_transform(target: Target, px_per_m: float) -> tuple:
+    """Texture size (w, h) in pixels and the 3x3 ``T_target_from_texture_pixels``.
+
+    The texture covers the board exactly; ``[x, y, 1] = T @ [u, v, 1]`` with (u, v) texture
+    pixels (origin at the centre of the top-left pixel) and (x, y) target metres.
+    """
+    if target.width is None or target.height is None:
+        raise ValueError(f"target {target.name!r} needs board width and height to be drawn")
+    w = max(1, int(round(target.width * px_per_m)))
+    h = max(1, int(round(target.height * px_per_m)))
+    sx, sy = w / target.width, h / target.height
+    T = np.array([[1 / sx, 0, -target.width / 2 + 0.5 / sx],
+                  [0, 1 / sy, -target.height / 2 + 0.5 / sy],
+                  [0, 0, 1.0]])
+    return (w, h), T
+
+
+def render_target_texture(target: Target, px_per_m: float):
+    """Picture of the printed board and where it lies on the target plane.
+
+    Returns ``(image, T_target_from_texture_pixels)``: a BGR uint8 image of the board at
+    ``px_per_m`` pixels per metre, and the 3x3 map from its pixels to target metres (see
+    ``texture_transform``). Dots and marker cells are area-sampled, so edges are sub-pixel.
+    """
+    if not target.has_geometry:
+        raise ValueError(f"target {target.name!r} has no feature positions to draw")
+    (w, h), T = texture_transform(target, px_per_m)
+    image = np.empty((h, w, 3), np.uint8)
+    image[:] = target.background[::-1]
+    if target.kind == "dots":
+        for dot in target.dots:
+            _draw_disc(image, T, dot)
+    elif target.kind == "markers":
+        dictionary = target.aruco_dictionary()
+        for marker in target.markers:
+            _draw_marker(image, T, marker, dictionary)
+    elif "image" in target.texture:
+        image = _poster_from_file(target, (w, h))
+    else:
+        _draw_shapes(image, T, target)
+    return image, T
+
+
+def _texture_box(T, image, centre, half):
+    """Pixel slice of the texture covering the square centre +- half (metres), and the
+    target coordinates of those pixel centres."""
+    h, w = image.shape[:2]
+    su, sv = 1 / T[0, 0], 1 / T[1, 1]
+    u0 = max(0, int(np.floor((centre[0] - half - T[0, 2]) * su)) - 1)
+    u1 = min(w, int(np.ceil((centre[0] + half - T[0, 2]) * su)) + 2)
+    v0 = max(0, int(np.floor((centre[1] - half - T[1, 2]) * sv)) - 1)
+    v1 = min(h, int(np.ceil((centre[1] + half - T[1, 2]) * sv)) + 2)
+    x = T[0, 2] + np.arange(u0, u1) * T[0, 0]
+    y = T[1, 2] + np.arange(v0, v1) * T[1, 1]
+    return (slice(v0, v1), slice(u0, u1)), x, y
+
+
+def _blend(image, box, coverage, bgr):
+    patch = image[box].astype(float)
+    a = coverage[..., None]
+    image[box] = np.round(patch * (1 - a) + np.asarray(bgr, float) * a).astype(np.uint8)
+
+
+def _draw_disc(image, T, dot):
+    box, x, y = _texture_box(T, image, dot.centre, dot.radius)
+    d = np.hypot(x[None, :] - dot.centre[0], y[:, None] - dot.centre[1])
+    # Fraction of a pixel inside the circle, straight-edge approximation (exact to second
+    # order in pixel size / radius).
+    coverage = np.clip((dot.radius - d) / T[0, 0] + 0.5, 0.0, 1.0)
+    _blend(image, box, coverage, dot.colour[::-1])
+
+
+_MARKER_SUBSAMPLES = 4  # 4x4 point samples per texture pixel for marker cell edges
+
+
+def _draw_marker(image, T, marker, dictionary):
+    cells = dictionary.markerSize + 2
+    bits = cv2.aruco.generateImageMarker(dictionary, marker.id, cells, borderBits=1)
+    box, x, y = _texture_box(T, image, marker.centre, marker.size / 2)
+    n = _MARKER_SUBSAMPLES
+    offsets = (np.arange(n) + 0.5) / n - 0.5
+    xs = (x[:, None] + offsets[None, :] * T[0, 0]).ravel()
+    ys = (y[:, None] + offsets[None, :] * T[1, 1]).ravel()
+    cell = marker.size / cells
+    ci = np.floor((xs - marker.centre[0] + marker.size / 2) / cell).astype(int)
+    ri = np.floor((ys - marker.centre[1] + marker.size / 2) / cell).astype(int)
+    inside = ((ri[:, None] >= 0) & (ri[:, None] < cells) & (ci[None, :] >= 0)
+              & (ci[None, :] < cells))
+    black = inside & (bits[np.clip(ri, 0, cells - 1)][:, np.clip(ci, 0, cells - 1)] == 0)
+    white = inside & ~black
+    shape = (len(y), n, len(x), n)
+    cov_black = black.reshape(shape).mean(axis=(1, 3))
+    cov_white = white.reshape(shape).mean(axis=(1, 3))
+    patch = image[box].astype(float) * (1 - cov_black - cov_white)[..., None]
+    image[box] = np.round(patch + 255.0 * cov_white[..., None]).astype(np.uint8)
+
+
+def poster_shapes(target: Target) -> list:
+    """The procedural poster as a list of (kind, params, bgr) in target metres.
+
+    Deterministic in ``texture.seed`` and ``texture.count`` (numpy PCG64 generator), so the
+    simulator and the tests redraw the same poster at any resolution.
+    """
+    rng = np.random.default_rng(int(target.texture.get("seed", 0)))
+    count = int(target.texture.get("count", 150))
+    hw, hh = target.width / 2, target.height / 2
+    shapes = []
+    for _ in range(count):
+        kind = ("disc", "box", "triangle")[rng.integers(3)]
+        centre = (rng.uniform(-hw, hw), rng.uniform(-hh, hh))
+        size = float(np.exp(rng.uniform(np.log(0.004), np.log(0.035))))
+        angle = rng.uniform(0, np.pi)
+        bgr = tuple(int(c) for c in rng.integers(0, 256, 3))
+        if kind == "disc":
+            params = (centre, size / 2)
+        elif kind == "box":
+            aspect = rng.uniform(0.3, 1.0)
+            c, s = np.cos(angle), np.sin(angle)
+            corners = np.array([[-1, -1], [1, -1], [1, 1], [-1, 1]]) * [size / 2,
+                                                                      aspect * size / 2]
+            params = corners @ np.array([[c, s], [-s, c]]) + centre
+        else:
+            params = rng.uniform(-size / 2, size / 2, (3, 2)) + centre
+        shapes.append((kind, params, bgr))
+    return shapes
+
+
+_SHIFT = 4  # fixed-point fraction bits for sub-pixel drawing with cv2
+
+
+def _draw_shapes(image, T, target):
+    s = 1 << _SHIFT
+
+    def to_px(xy):
+        xy = np.asarray(xy, float)
+        return np.round(((xy - T[:2, 2]) / np.diag(T)[:2]) * s).astype(np.int32)
+
+    for kind, params, bgr in poster_shapes(target):
+        if kind == "disc":
+            centre, radius = params
+            cv2.circle(image, tuple(int(v) for v in to_px(centre)),
+                       int(round(radius / T[0, 0] * s)), bgr, -1, cv2.LINE_AA, _SHIFT)
+        else:
+            cv2.fillPoly(image, [to_px(params)], bgr, cv2.LINE_AA, _SHIFT)
+
+
+def _poster_from_file(target, size):
+    path = Path(target.texture["image"])
+    if not path.is_absolute() and target.source is not None:
+        path = Path(target.source).parent / path
+    picture = cv2.imread(str(path), cv2.IMREAD_COLOR)
+    if picture is None:
+        raise ValueError(f"target {target.name!r}: cannot read texture image {path}")
+    return cv2.resize(picture, size, interpolation=cv2.INTER_AREA)
