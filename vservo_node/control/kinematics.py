@@ -76,6 +76,8 @@ class ArmModel:
     Frame arguments (``frame=``) accept a URDF link name, ``"tool"`` (the tool frame) or
     ``"camera"`` (the tool frame moved by ``T_tool_camera``, i.e. the camera as the servo
     believes it to be after a hand-eye override; the URDF camera link stays reachable by name).
+
+    Results for the last ``q`` are cached, so one instance is not safe to share between threads.
     """
 
     def __init__(self, model: pin.Model, base_frame: str, tool_frame: str,
@@ -91,7 +93,8 @@ class ArmModel:
             raise ValueError(
                 f"base frame '{base_frame}' is not upstream of tool frame '{tool_frame}': the "
                 f"chain must run from the base down to the tool through the URDF tree")
-        chain = [j for j in tool_support if j not in set(model.supports[base_joint])]
+        above_base = set(model.supports[base_joint])
+        chain = [j for j in tool_support if j not in above_base]
         self._check_joint_types(model, chain, chain_label)
         if len(chain) < min_joints:
             raise ValueError(
@@ -110,8 +113,10 @@ class ArmModel:
         self.base_frame, self.tool_frame, self.camera_frame = base_frame, tool_frame, camera_frame
         self.joint_names = [model.names[j] for j in chain]
         self.n = len(chain)
+        # q, limits and Jacobian columns rely on the reduced joints being the chain, in order.
         if list(self._model.names)[1:] != self.joint_names:
-            raise RuntimeError("pinocchio reduced model lost the chain order")  # cannot happen
+            raise RuntimeError(f"pinocchio reduced {chain_label} to joints "
+                               f"{list(self._model.names)[1:]}, expected {self.joint_names}")
 
         joints = list(self._model.joints)[1:]
         self.continuous = np.array([j.shortname() in _CONTINUOUS for j in joints])
