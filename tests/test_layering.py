@@ -3,7 +3,8 @@ import ast
 from pathlib import Path
 
 PACKAGE = Path(__file__).resolve().parent.parent / "vservo_node"
-CORE = ["vision", "control", "sim", "record", "servo.py", "interface.py", "paths.py"]
+CORE = ["vision", "control", "sim", "record", "servo.py", "episode.py", "params.py",
+        "interface.py", "paths.py"]
 
 
 def _imports(path: Path):

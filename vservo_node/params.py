@@ -85,9 +85,9 @@ SCHEMA: tuple[Param, ...] = (
        "between near and far", unit="px", low=0.1, high=5000.0),
     _p("control.soft_start_s", float, 0.5, "time constant of the soft start (first command "
        "zero); restarted when the matched feature set changes", unit="s", low=0.0, high=10.0),
-    _p("control.singular_threshold", float, 0.05, "judged singular value below which damping "
+    _p("control.singular_threshold", float, 0.003, "judged singular value below which damping "
        "rises (normalized image units per rad)", low=0.0, high=10.0),
-    _p("control.max_damping", float, 0.05, "damping at a singularity", low=0.0, high=10.0),
+    _p("control.max_damping", float, 0.003, "damping at a singularity", low=0.0, high=10.0),
     _p("control.null_space_gain", float, 0.5, "gain of the joint-limit avoidance task in the "
        "null space (redundant arms; 0 = off)", unit="1/s", low=0.0, high=10.0),
     _p("control.tolerance_px", float, 0.5, "RMS image error that counts as arrived", unit="px",

@@ -1,0 +1,479 @@
+"""One servo: from matched image points and joint positions to a limited joint command.
+
+The functional heart of the package, shared by the ROS node, the headless simulator, the
+closed-loop tests and the sweeps. No ROS and no clocks here: every call passes its time.
+
+Two rates, one object:
+- ``observe(obs, q, t)`` runs once per camera frame: it builds the image Jacobian
+  ``J_img = L(s, Z) @ V_camera_tool @ J_tool(q)`` (2N x n), evaluates the control law and the
+  supervisor's checks, and stores the desired joint velocity.
+- ``command(q, t, dt)`` runs at the output rate: it steps the previous command toward the
+  desired one through the safety limiter (so commands between frames stay rate-limited), ramps
+  to zero while braking, and returns the command with the cycle's status record.
+``step(obs, q, t, dt)`` does both, for loops that run at one rate.
+
+Supervisor (states in vservo_node.interface.SUPERVISOR_STATES):
+  disabled --enable--> armed --start--> servoing <-> settling --dwell--> converged
+  any moving state --halt reason--> braking --command at zero--> halted
+Halting ramps the command to zero at the deceleration limit, then reports an explicit zero.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any, Hashable, Sequence
+
+import numpy as np
+
+from vservo_node.control import frames
+from vservo_node.control.interaction import interaction_matrix, point_interaction_matrix
+from vservo_node.control.law import (ControlLaw, DampingSchedule, GainSchedule, LawConfig)
+from vservo_node.control.safety import LimitSet, Limiter
+
+# Halt reasons (published and logged once each).
+HALT_REASONS = {
+    "stop_requested": "stop was requested",
+    "too_few_features": "fewer matched features than the minimum",
+    "image_stale": "no fresh image",
+    "joints_stale": "no fresh joint state",
+    "permit_withdrawn": "the cell withdrew the motion permit",
+    "camera_info_invalid": "camera_info missing or inconsistent with the image",
+    "joint_limit_envelope": "a joint reached its braking envelope",
+    "motion_envelope": "the tool left its motion envelope",
+    "too_close": "a feature came closer than the minimum camera distance",
+    "wrong_direction": "features move against the motion the image Jacobian predicts",
+    "not_following": "the arm is not following its command",
+    "diverging": "the image error grows",
+    "run_timeout": "the run exceeded its maximum duration",
+    "numerical_fault": "a non-finite value reached the control law or the limiter",
+    "motion_disabled": "motion was disabled",
+}
+MOVING_STATES = ("servoing", "settling", "braking")
+
+
+@dataclass(frozen=True)
+class TaughtView:
+    """What the camera saw when the pose was taught.
+
+    ``keys``: feature identities in order; ``xy`` (N, 2) normalized coordinates; ``uv`` (N, 2)
+    pixels in the current camera model (for errors in px); ``depth`` (N,) metres, or None.
+    """
+
+    keys: tuple[Hashable, ...]
+    xy: np.ndarray
+    uv: np.ndarray
+    depth: np.ndarray | None = None
+
+    def __post_init__(self) -> None:
+        n = len(self.keys)
+        if n == 0 or len(set(self.keys)) != n:
+            raise ValueError(f"taught view needs distinct feature keys, got {list(self.keys)}")
+        for name, arr in (("xy", self.xy), ("uv", self.uv)):
+            if np.shape(arr) != (n, 2):
+                raise ValueError(f"taught view {name} has shape {np.shape(arr)}; expected ({n}, 2)")
+        if self.depth is not None and (np.shape(self.depth) != (n,) or
+                                       not np.all(np.asarray(self.depth) > 0)):
+            raise ValueError(f"taught depths must be {n} positive values, got {self.depth}")
+
+    def index(self) -> dict[Hashable, int]:
+        return {k: i for i, k in enumerate(self.keys)}
+
+
+@dataclass(frozen=True)
+class Observation:
+    """Matched features of one image: ``keys`` (M,), ``uv`` (M, 2) px, ``xy`` (M, 2)
+    normalized, ``depth`` (M,) metres or None (then the configured depth source applies)."""
+
+    keys: tuple[Hashable, ...]
+    uv: np.ndarray
+    xy: np.ndarray
+    depth: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class ServoSettings:
+    """The servo's tunables (names follow the parameter schema in vservo_node.params)."""
+
+    interaction_estimate: str = "blended"
+    gain_near: float = 1.0
+    gain_far: float = 0.5
+    gain_half_error_px: float = 60.0
+    soft_start_s: float = 0.5
+    singular_threshold: float = 0.003
+    max_damping: float = 0.003
+    null_space_gain: float = 0.5
+    tolerance_px: float = 0.5
+    dwell_s: float = 0.3
+    settled_joint_speed: float = 0.01
+    min_features: int = 4
+    max_run_s: float = 60.0
+    max_initial_error_px: float = 400.0
+    depth_source: str = "taught"          # constant | taught | observed
+    constant_depth_m: float = 0.4
+    max_translation_m: float = 0.30
+    max_rotation_deg: float = 180.0
+    min_camera_distance_m: float = 0.08
+    # supervisor checks (our design; thresholds are common practice, no source)
+    wrong_direction_frames: int = 3       # consecutive disagreeing frames before a halt
+    wrong_direction_min_px: float = 0.3   # predicted motion below this is not judged
+    diverge_factor: float = 1.5           # halt when rms > factor * best + diverge_margin_px
+    diverge_margin_px: float = 20.0
+    follow_window_s: float = 0.5          # judge following over this window
+    follow_min_ratio: float = 0.2         # measured / commanded joint travel below -> halt
+    border_margin_px: float = 20.0        # slow down when a feature is this close to the border
+
+    @classmethod
+    def from_params(cls, values: dict[str, Any]) -> "ServoSettings":
+        """Build from a validated parameter dict (vservo_node.params names)."""
+        get = values.get
+        depth = get("depth.source", "taught")
+        return cls(
+            interaction_estimate=get("control.interaction_estimate", cls.interaction_estimate),
+            gain_near=get("control.gain_near", cls.gain_near),
+            gain_far=get("control.gain_far", cls.gain_far),
+            gain_half_error_px=get("control.gain_half_error_px", cls.gain_half_error_px),
+            soft_start_s=get("control.soft_start_s", cls.soft_start_s),
+            singular_threshold=get("control.singular_threshold", cls.singular_threshold),
+            max_damping=get("control.max_damping", cls.max_damping),
+            null_space_gain=get("control.null_space_gain", cls.null_space_gain),
+            tolerance_px=get("control.tolerance_px", cls.tolerance_px),
+            dwell_s=get("control.dwell_s", cls.dwell_s),
+            settled_joint_speed=get("control.settled_joint_speed", cls.settled_joint_speed),
+            min_features=get("control.min_features", cls.min_features),
+            max_run_s=get("control.max_run_s", cls.max_run_s),
+            max_initial_error_px=get("control.max_initial_error_px", cls.max_initial_error_px),
+            depth_source="observed" if depth in ("target_model", "depth_image") else depth,
+            constant_depth_m=get("depth.constant_m", cls.constant_depth_m),
+            max_translation_m=get("limits.max_translation_m", cls.max_translation_m),
+            max_rotation_deg=get("limits.max_rotation_deg", cls.max_rotation_deg),
+            min_camera_distance_m=get("limits.min_camera_distance_m", cls.min_camera_distance_m),
+        )
+
+    def law_config(self) -> LawConfig:
+        return LawConfig(
+            gain=GainSchedule(self.gain_near, self.gain_far, self.gain_half_error_px),
+            damping=DampingSchedule(self.singular_threshold, self.max_damping),
+            soft_start_tau=self.soft_start_s, null_space_gain=self.null_space_gain)
+
+
+@dataclass
+class _RunState:
+    run_id: str
+    t_start: float
+    T_base_tool_start: np.ndarray
+    best_rms: float = math.inf
+    below_since: float | None = None
+    wrong_frames: int = 0
+    follow_cmd: float = 0.0
+    follow_meas: float = 0.0
+    follow_t0: float = 0.0
+    follow_q0: np.ndarray | None = None
+    final_rms: float = math.nan
+    end_t: float | None = None
+
+
+@dataclass
+class _Frame:
+    """What observe() keeps for the next frame and for command()."""
+    t: float
+    q: np.ndarray
+    keys: tuple
+    e: np.ndarray
+    J_img: np.ndarray
+    J_local: np.ndarray
+    rms_px: float
+    error_px: np.ndarray
+    uv: np.ndarray
+
+
+class Servo:
+    """Composes the interaction matrix, the arm model, the law, the limiter and the supervisor.
+
+    ``arm``: a vservo_node.control.kinematics.ArmModel (its T_tool_camera is the hand-eye the
+    servo believes). ``limits``: vservo_node.control.safety.LimitSet for the arm's joints.
+    ``tool_point``: point (tool frame, m) whose linear speed is limited.
+    """
+
+    def __init__(self, arm, settings: ServoSettings, limits: LimitSet,
+                 tool_point: Sequence[float] = (0.0, 0.0, 0.0)):
+        self.arm = arm
+        self.settings = settings
+        self.limits = limits
+        self.tool_point = np.asarray(tool_point, dtype=float)
+        self.law = ControlLaw(settings.law_config(), arm.lower, arm.upper)
+        self.limiter = Limiter(limits)
+        self.reference: TaughtView | None = None
+        self.state = "disabled"
+        self.enabled = False
+        self.reason = ""
+        self.external_scale = 1.0
+        self._run: _RunState | None = None
+        self._frame: _Frame | None = None
+        self._desired = np.zeros(arm.n)
+        self._last_cmd = np.zeros(arm.n)
+        self._law_info = None
+        self._margin_scale = 1.0
+        self._runs = 0
+        self.result: dict[str, Any] | None = None
+
+    # --- supervisor commands -------------------------------------------------------------
+    def set_reference(self, view: TaughtView) -> None:
+        if self.state in MOVING_STATES:
+            raise RuntimeError("cannot change the reference while moving; stop first")
+        self.reference = view
+
+    def enable(self, on: bool, t: float) -> tuple[bool, str]:
+        """Enable or disable motion. Disabling while moving brakes to zero first."""
+        self.enabled = bool(on)
+        if on:
+            if self.state == "disabled":
+                self.state = "armed"
+            return True, "motion enabled"
+        if self.state in ("servoing", "settling"):
+            self.halt("motion_disabled", t)
+        elif self.state != "braking":
+            self.state = "disabled"
+        return True, "motion disabled"
+
+    def start(self, q: np.ndarray, t: float, run_id: str | None = None) -> tuple[bool, str]:
+        """Begin a run from joint positions q. Allowed when motion is enabled and no run moves."""
+        if not self.enabled:
+            return False, "motion is not enabled (call enable first)"
+        if self.state not in ("armed", "converged", "halted"):
+            return False, f"cannot start in state '{self.state}' (a run is in progress)"
+        if self.reference is None:
+            return False, "no taught reference loaded"
+        self._runs += 1
+        self._run = _RunState(run_id or f"run{self._runs}", t,
+                              self.arm.fk(np.asarray(q, float)))
+        self._frame = None
+        self._law_info = None
+        self._desired = np.zeros(self.arm.n)
+        self.limiter = Limiter(self.limits)  # counts are per run
+        self._last_cmd = np.zeros(self.arm.n)
+        self.state, self.reason, self.result = "servoing", "", None
+        return True, f"run {self._run.run_id} started"
+
+    def stop(self, t: float) -> tuple[bool, str]:
+        if self.state in ("servoing", "settling"):
+            self.halt("stop_requested", t)
+            return True, "stopping: braking to zero"
+        return True, f"nothing to stop in state '{self.state}'"
+
+    def halt(self, reason: str, t: float) -> None:
+        """Begin braking for reason (a key of HALT_REASONS). Only the first reason counts."""
+        if self.state not in ("servoing", "settling"):
+            return
+        self.state, self.reason = "braking", reason
+        self._desired = np.zeros(self.arm.n)
+
+    # --- the vision cycle ------------------------------------------------------------------
+    def observe(self, obs: Observation, q: np.ndarray, t: float) -> None:
+        """Run the law for one image (time t = image time, q = joints at that time)."""
+        if self.state not in ("servoing", "settling") or self.reference is None:
+            return
+        s, run = self.settings, self._run
+        q = np.asarray(q, dtype=float)
+        ref_index = self.reference.index()
+        pairs = [(i, ref_index[k]) for i, k in enumerate(obs.keys) if k in ref_index]
+        if len(pairs) < s.min_features:
+            self.halt("too_few_features", t)
+            return
+        now_i, ref_i = (np.array(ix) for ix in zip(*pairs))
+        keys = tuple(obs.keys[i] for i in now_i)
+        xy_now, xy_ref = np.asarray(obs.xy, float)[now_i], self.reference.xy[ref_i]
+        uv_now, uv_ref = np.asarray(obs.uv, float)[now_i], self.reference.uv[ref_i]
+        z_ref = (self.reference.depth[ref_i] if self.reference.depth is not None
+                 else np.full(len(ref_i), s.constant_depth_m))
+        z_now = self._current_depth(obs, now_i, z_ref)
+        if not (np.all(np.isfinite(xy_now)) and np.all(np.isfinite(z_now)) and
+                np.all(np.isfinite(q))):
+            self.halt("numerical_fault", t)
+            return
+        if np.min(z_now) < s.min_camera_distance_m:
+            self.halt("too_close", t)
+            return
+        e = (xy_now - xy_ref).ravel()
+        error_px = uv_now - uv_ref
+        rms_px = float(np.sqrt(np.mean(np.sum(error_px ** 2, axis=1))))
+        camera_jac = self.arm.camera_from_tool() @ self.arm.jacobian_tool(q)
+        J_img = interaction_matrix(s.interaction_estimate, xy_now, z_now, xy_ref, z_ref) @ camera_jac
+        # the local image Jacobian (current features) predicts how features move; the law's
+        # estimate may be taught or blended, which only approximates it far from the goal
+        J_local = point_interaction_matrix(xy_now, z_now) @ camera_jac
+        prev = self._frame
+        if prev is None and rms_px > s.max_initial_error_px:
+            self.halt("diverging", t)
+            self.reason = "initial_error_too_large"
+            return
+        if prev is None or prev.keys != keys:
+            self.law.restart(e, t)
+        if prev is not None and prev.keys == keys:
+            if self._wrong_direction(prev, e, q):
+                self.halt("wrong_direction", t)
+                return
+        self._frame = _Frame(t, q, keys, e, J_img, J_local, rms_px, error_px, uv_now)
+        run.best_rms = min(run.best_rms, rms_px)
+        run.final_rms = rms_px
+        if rms_px > s.diverge_factor * run.best_rms + s.diverge_margin_px:
+            self.halt("diverging", t)
+            return
+        if t - run.t_start > s.max_run_s:
+            self.halt("run_timeout", t)
+            return
+        if self._outside_envelope(q):
+            self.halt("motion_envelope", t)
+            return
+        if self._not_following(q, t):
+            self.halt("not_following", t)
+            return
+        dq, info = self.law.compute(J_img, e, rms_px, q, t,
+                                    null_space_enabled=self.state == "servoing")
+        self._law_info = info
+        if info.fault:
+            self.halt("numerical_fault", t)
+            return
+        self._desired = dq
+        self._margin_scale = self._margins(info, uv_now)
+        # arrival: below tolerance for the dwell time with the joints (nearly) stopped
+        if rms_px <= s.tolerance_px:
+            if run.below_since is None:
+                run.below_since = t
+            self.state = "settling"
+            stopped = np.max(np.abs(self._last_cmd)) <= s.settled_joint_speed
+            if t - run.below_since >= s.dwell_s and stopped:
+                self._end("converged", "", t)
+        else:
+            run.below_since = None
+            self.state = "servoing"
+
+    def _current_depth(self, obs: Observation, now_i: np.ndarray, z_ref: np.ndarray):
+        s = self.settings
+        if s.depth_source == "observed" and obs.depth is not None:
+            return np.asarray(obs.depth, float)[now_i]
+        if s.depth_source == "constant":
+            return np.full(len(now_i), s.constant_depth_m)
+        return z_ref  # taught depth: the depth at the goal stands in for the current one
+
+    def _wrong_direction(self, prev: _Frame, e: np.ndarray, q: np.ndarray) -> bool:
+        """Feature motion predicted by J_img (q - q_prev) against the motion seen."""
+        s = self.settings
+        predicted = prev.J_local @ (q - prev.q)
+        seen = e - prev.e
+        fx = self._focal_px()
+        if np.linalg.norm(predicted) * fx / math.sqrt(len(e) / 2) < s.wrong_direction_min_px:
+            return False
+        cos = float(predicted @ seen / (np.linalg.norm(predicted) * np.linalg.norm(seen) + 1e-12))
+        run = self._run
+        run.wrong_frames = run.wrong_frames + 1 if cos < 0.0 else 0
+        return run.wrong_frames >= s.wrong_direction_frames
+
+    def _focal_px(self) -> float:
+        ref = self.reference
+        # px per normalized unit, from the taught view itself (any two distinct points)
+        d_uv = np.linalg.norm(ref.uv - ref.uv.mean(axis=0), axis=1).sum()
+        d_xy = np.linalg.norm(ref.xy - ref.xy.mean(axis=0), axis=1).sum()
+        return float(d_uv / d_xy) if d_xy > 0 else 1.0
+
+    def _outside_envelope(self, q: np.ndarray) -> bool:
+        s, run = self.settings, self._run
+        moved_m, turned_rad = frames.pose_error(run.T_base_tool_start, self.arm.fk(q))
+        return moved_m > s.max_translation_m or math.degrees(turned_rad) > s.max_rotation_deg
+
+    def _not_following(self, q: np.ndarray, t: float) -> bool:
+        s, run = self.settings, self._run
+        if run.follow_q0 is None:
+            run.follow_q0, run.follow_t0, run.follow_cmd = q.copy(), t, 0.0
+            return False
+        if t - run.follow_t0 < s.follow_window_s:
+            return False
+        measured = float(np.linalg.norm(q - run.follow_q0))
+        commanded = run.follow_cmd
+        run.follow_q0, run.follow_t0, run.follow_cmd = q.copy(), t, 0.0
+        # judged only when the command asked for real travel (5 mrad over the window)
+        return commanded > 5e-3 and measured < s.follow_min_ratio * commanded
+
+    def _margins(self, info, uv: np.ndarray) -> float:
+        """Speed scale in [0, 1] from margins of our design (smooth, common practice)."""
+        s = self.settings
+        sigma_scale = 1.0
+        if info.dls is not None and s.singular_threshold > 0:
+            sigma_scale = float(np.clip(info.dls.sigma_judge / s.singular_threshold, 0.2, 1.0))
+        return sigma_scale
+
+    # --- the output cycle ------------------------------------------------------------------
+    def command(self, q: np.ndarray, t: float, dt: float) -> tuple[np.ndarray, dict]:
+        """Limited joint command for this output period and the status record."""
+        q = np.asarray(q, dtype=float)
+        if self.state in ("servoing", "settling", "braking"):
+            desired = self._desired if self.state != "braking" else np.zeros(self.arm.n)
+            scale = min(self.external_scale, self._margin_scale)
+            J_tool_pt, J_cam_pt, J_ang = self._cartesian_jacobians(q)
+            cmd, report = self.limiter.step(desired, q, dt, J_tool_pt, J_cam_pt, J_ang,
+                                            speed_scale=scale)
+            if report.fault and self.state != "braking":
+                self.halt("numerical_fault", t)
+            if "position_envelope" in report.acted and self.state != "braking":
+                self.halt("joint_limit_envelope", t)
+            if self._run is not None:
+                self._run.follow_cmd += float(np.linalg.norm(cmd)) * dt
+            if self.state == "braking" and np.max(np.abs(cmd)) <= 1e-9:
+                cmd = np.zeros(self.arm.n)
+                self._end("halted", self.reason, t)
+            acted = list(report.acted)
+        else:
+            cmd, acted = np.zeros(self.arm.n), []
+        self._last_cmd = cmd
+        return cmd, self._status(t, cmd, acted)
+
+    def step(self, obs: Observation | None, q: np.ndarray, t: float, dt: float
+             ) -> tuple[np.ndarray, dict]:
+        if obs is not None:
+            self.observe(obs, q, t)
+        return self.command(q, t, dt)
+
+    def _cartesian_jacobians(self, q):
+        J_tool_pt = self.arm.point_jacobian_base(q, "tool", self.tool_point)
+        J_cam_pt = self.arm.point_jacobian_base(q, "camera", np.zeros(3))
+        J_ang = self.arm.jacobian_base(q)[3:]
+        return J_tool_pt, J_cam_pt, J_ang
+
+    def _end(self, state: str, reason: str, t: float) -> None:
+        self.state, self.reason = state, reason
+        self._desired = np.zeros(self.arm.n)
+        run = self._run
+        run.end_t = t
+        self.result = {
+            "run_id": run.run_id, "converged": state == "converged", "reason": reason,
+            "time_s": t - run.t_start, "final_rms_px": run.final_rms,
+            "final_pose_error_mm": None, "final_pose_error_deg": None,
+        }
+
+    def _status(self, t: float, cmd: np.ndarray, acted: list[str]) -> dict:
+        frame, info = self._frame, self._law_info
+        dls = info.dls if info is not None else None
+        return {
+            "t": t,
+            "run_id": self._run.run_id if self._run else "",
+            "state": self.state,
+            "reason": self.reason,
+            "rms_px": frame.rms_px if frame else math.nan,
+            "n_matched": len(frame.keys) if frame else 0,
+            "gain": info.gain if info else 0.0,
+            "sigma_min": dls.sigma_judge if dls else math.nan,
+            "damping": dls.damping if dls else 0.0,
+            "speed_scale": min(self.external_scale, self._margin_scale),
+            "limits_acted": acted,
+            "limit_counts": dict(self.limiter.counts),
+            "cycle_ms": 0.0,
+            "dq": cmd.tolist(),
+        }
+
+    # --- read-only views for the shells -----------------------------------------------------
+    @property
+    def frame(self) -> _Frame | None:
+        return self._frame
+
+    def camera_twist(self, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
+        """Camera twist [v; w] in the camera optical frame for joint velocity dq."""
+        return self.arm.camera_from_tool() @ self.arm.jacobian_tool(q) @ dq
