@@ -121,19 +121,26 @@ def _wait(condition: Callable[[], bool], timeout: float, what: str,
         step()
 
 
+def wait_until(condition: Callable[[], bool], timeout: float, what: str,
+               processes: Iterable[NodeProcess] = ()) -> None:
+    """Poll ``condition()`` every 20 ms; TimeoutError naming ``what`` after ``timeout`` s,
+    ProcessFailed as soon as one of ``processes`` dies."""
+    _wait(condition, timeout, what, processes, lambda: time.sleep(0.02))
+
+
 def wait_for_publisher(node: Node, topic: str, timeout: float = 10.0,
                        processes: Iterable[NodeProcess] = ()) -> None:
-    """Wait until ``topic`` (resolved in ``node``'s namespace) has a publisher; raises
-    TimeoutError, or ProcessFailed as soon as one of ``processes`` dies."""
-    _wait(lambda: node.count_publishers(topic) > 0, timeout, f"a publisher on {topic}",
-          processes, lambda: time.sleep(0.02))
+    """Wait until ``topic`` (resolved in ``node``'s namespace) has a publisher (as
+    ``wait_until``)."""
+    wait_until(lambda: node.count_publishers(topic) > 0, timeout, f"a publisher on {topic}",
+               processes)
 
 
 def wait_for_subscriber(node: Node, topic: str, timeout: float = 10.0,
                         processes: Iterable[NodeProcess] = ()) -> None:
-    """Wait until ``topic`` has a subscriber (as ``wait_for_publisher``)."""
-    _wait(lambda: node.count_subscribers(topic) > 0, timeout, f"a subscriber on {topic}",
-          processes, lambda: time.sleep(0.02))
+    """Wait until ``topic`` has a subscriber (as ``wait_until``)."""
+    wait_until(lambda: node.count_subscribers(topic) > 0, timeout, f"a subscriber on {topic}",
+               processes)
 
 
 def spin_until(node: Node, condition: Callable[[], bool], timeout: float, what: str,
