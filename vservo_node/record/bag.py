@@ -13,7 +13,8 @@ The bag is a folder ``<root>/<UTC time>_<scenario>/`` holding
 Crash safety: the split being written lives in a hidden folder ``.open/`` and is moved into the
 bag only once closed. A SIGKILL therefore loses at most the open split: a split is closed when it
 is ``split_s`` seconds old (wall clock, checked by a background thread every ``poll_s``) or
-``split_bytes`` large, so by default at most 0.9 s + 0.05 s of data is lost.
+``split_bytes`` large, so by default at most 0.75 s + 0.05 s of data is lost (plus scheduling
+delays of the recording thread).
 
 Reading (`load_run`): any rosbag2 bag of the same topics, whether ours or from a plain
 ``ros2 bag record`` (sqlite3 or mcap), through rosbags' AnyReader; topics are found by their
@@ -43,7 +44,7 @@ from vservo_node import interface as itf
 
 ROSBAG2_VERSION = 9           # the newest format rosbags 0.11.9 writes (rosbag2 Jazzy and later)
 ROS_DISTRO = "jazzy"
-DEFAULT_SPLIT_S = 0.9         # wall seconds per split; with DEFAULT_POLL_S the loss bound is < 1 s
+DEFAULT_SPLIT_S = 0.75        # wall seconds per split; loss bound split + poll = 0.8 s < 1 s
 DEFAULT_POLL_S = 0.05
 DEFAULT_SPLIT_BYTES = 16 * 2**20
 OPEN_DIR = ".open"
