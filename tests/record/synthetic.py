@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import math
+import xml.etree.ElementTree as ET
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -73,6 +74,14 @@ class Spec:
                 "control.tolerance_px": self.tolerance_px, "control.dwell_s": self.dwell_s,
                 "limits.joint_velocity_scale": self.velocity_scale,
                 "limits.tool_linear_speed": self.tool_speed_limit}
+
+
+def urdf_velocity_limits() -> dict[str, float]:
+    """<limit velocity> of every joint of the demo URDF, read with ElementTree (independent of
+    pinocchio and of ArmModel)."""
+    root = ET.parse(URDF_PATH).getroot()
+    return {j.get("name"): float(j.find("limit").get("velocity"))
+            for j in root.iter("joint") if j.find("limit") is not None}
 
 
 def _header(t_ns: int, frame: str = ""):
