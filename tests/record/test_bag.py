@@ -5,7 +5,7 @@ TEST DATA (synthetic.py)."""
 from __future__ import annotations
 
 import json
-import os
+import shutil
 import signal
 import subprocess
 import sys
@@ -234,3 +234,16 @@ def test_plain_ros2_bag_loads_like_ours(recorded, plain):
     assert theirs.params == {} and ours.params
     assert theirs.robot_description and ours.robot_description is None
     assert theirs.result["converged"] is True and ours.result["converged"] is True
+
+
+def test_a_failed_split_close_is_reported_by_the_next_write(tmp_path):
+    """An error in the background thread (here: the bag folder vanished) must not pass
+    silently: the next write raises and names the bag."""
+    ts = default_typestore()
+    msg = ts.types["std_msgs/msg/String"](data="a")
+    rec = RunRecorder(tmp_path, "fail", split_s=0.05, poll_s=0.01)
+    rec.write("x", "std_msgs/msg/String", msg, 1)
+    shutil.rmtree(rec.bag_dir)
+    time.sleep(0.3)
+    with pytest.raises(RuntimeError, match="failed"):
+        rec.write("x", "std_msgs/msg/String", msg, 2)

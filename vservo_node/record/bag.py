@@ -146,6 +146,7 @@ class RunRecorder:
         self._split: _Split | None = None
         self._lock = threading.Lock()
         self._closed = False
+        self._failure: Exception | None = None   # what stopped the ageing thread, if anything
         (self.bag_dir / OPEN_DIR).mkdir()
         if params is not None:
             _write_atomic(self.bag_dir / PARAMS_FILE, yaml.safe_dump(params, sort_keys=False))
@@ -192,6 +193,9 @@ class RunRecorder:
         with self._lock:
             if self._closed:
                 raise RuntimeError(f"recorder of {self.bag_dir} is closed")
+            if self._failure is not None:
+                raise RuntimeError(f"recording into {self.bag_dir} failed: "
+                                   f"{self._failure}") from self._failure
             self._register(topic, msgtype)
             split = self._split or self._open_split()
             if topic not in split.connections:
@@ -267,11 +271,17 @@ class RunRecorder:
         self._write_metadata()
 
     def _age_loop(self) -> None:
+        """Close splits that have aged; on an error (e.g. disk full) stop and keep the error
+        for the next `write` to raise."""
         while not self._stop.wait(self.poll_s):
             with self._lock:
                 split = self._split
                 if split is not None and time.monotonic() - split.opened_wall >= self.split_s:
-                    self._close_split()
+                    try:
+                        self._close_split()
+                    except Exception as exc:   # noqa: BLE001 - reported by write()
+                        self._failure = exc
+                        return
 
     def _write_metadata(self) -> None:
         """metadata.yaml listing the completed splits: rosbag2 format version 9."""
