@@ -18,9 +18,13 @@ import numpy as np
 RAW_ENCODINGS = ("mono8", "mono16", "bgr8", "rgb8", "bgra8", "rgba8",
                  "bayer_rggb8", "bayer_bggr8", "bayer_gbrg8", "bayer_grbg8")
 COMPRESSED_FORMATS = ("jpeg", "png")
+# Depth images (aligned to the colour image): 16UC1 millimetres, 32FC1 metres (REP 118).
+DEPTH_ENCODINGS = ("16UC1", "32FC1")
 SUPPORTED_ENCODINGS = RAW_ENCODINGS + COMPRESSED_FORMATS
 
-_CHANNELS = {"mono8": 1, "mono16": 1, "bgr8": 3, "rgb8": 3, "bgra8": 4, "rgba8": 4}
+_CHANNELS = {"mono8": 1, "mono16": 1, "bgr8": 3, "rgb8": 3, "bgra8": 4, "rgba8": 4,
+             "16UC1": 1, "32FC1": 1}
+_DTYPE = {"mono16": np.uint16, "16UC1": np.uint16, "32FC1": np.float32}
 # ROS names the Bayer pattern by its top-left 2x2 block; OpenCV 4 has the same-named aliases
 # (COLOR_BayerRGGB2BGR == COLOR_BayerBG2BGR). tests/vision/test_image_io.py mosaics a known
 # picture with each pattern and checks the round trip.
@@ -29,9 +33,9 @@ _BAYER = {"bayer_rggb8": cv2.COLOR_BayerRGGB2BGR, "bayer_bggr8": cv2.COLOR_Bayer
 _CONVERT = {"rgb8": cv2.COLOR_RGB2BGR, "bgra8": cv2.COLOR_BGRA2BGR, "rgba8": cv2.COLOR_RGBA2BGR}
 
 
-def _refuse(encoding):
+def _refuse(encoding, supported=SUPPORTED_ENCODINGS):
     raise ValueError(f"unsupported image encoding {encoding!r}; supported: "
-                     f"{', '.join(SUPPORTED_ENCODINGS)} (CompressedImage formats may read "
+                     f"{', '.join(supported)} (CompressedImage formats may read "
                      "e.g. 'rgb8; jpeg compressed bgr8')")
 
 
@@ -54,15 +58,16 @@ def raw_view(buffer, encoding: str, width: int, height: int, step: int,
              is_bigendian: bool = False) -> np.ndarray:
     """Numpy view (H, W) or (H, W, C) of a raw image buffer, without copying.
 
-    ``step`` is the row length in bytes (>= width * bytes per pixel; padding is skipped by the
-    stride). Big-endian 16-bit data is returned as a big-endian dtype view.
+    Takes the encodings of ``RAW_ENCODINGS`` and ``DEPTH_ENCODINGS``. ``step`` is the row
+    length in bytes (>= width * bytes per pixel; padding is skipped by the stride). Big-endian
+    data is returned as a big-endian dtype view.
     """
     bayer = encoding in _BAYER
     if encoding not in _CHANNELS and not bayer:
-        _refuse(encoding)
+        _refuse(encoding, RAW_ENCODINGS + DEPTH_ENCODINGS)
     channels = 1 if bayer else _CHANNELS[encoding]
-    dtype = np.dtype(np.uint16 if encoding == "mono16" else np.uint8)
-    if encoding == "mono16":
+    dtype = np.dtype(_DTYPE.get(encoding, np.uint8))
+    if dtype.itemsize > 1:
         dtype = dtype.newbyteorder(">" if is_bigendian else "<")
     row = width * channels * dtype.itemsize
     if width <= 0 or height <= 0:

@@ -1,0 +1,519 @@
+"""Detectors for the three target kinds, and a tracker that searches windows between frames.
+
+All detectors take an image from ``image_io.to_bgr_or_mono`` (BGR uint8, mono uint8, or mono
+uint16 where noted) and return a ``Detection``: pixel points (N, 2) in OpenCV's convention
+(u right, v down, origin at the centre of the top-left pixel) with one hashable key each.
+
+- ``DotDetector``: segmentation (chroma, dark or bright score), connected components, and the
+  sub-pixel centroid of each blob from grey-level image moments (weights = score above the
+  local background, so partially covered edge pixels count by their coverage); area,
+  roundness and ellipse-fill gates; the blob's mean colour, averaged in linear light. Keys are
+  ``('blob', j)``: which dot a blob is, is decided by ``matching.match_dots``.
+- ``MarkerDetector``: cv2.aruco.ArucoDetector (AprilTag 36h11 and the ArUco dictionaries) with
+  sub-pixel corner refinement; keys ``('tag', id, corner)``. Accepts mono16.
+- ``TexturedDetector``: ORB keypoints and descriptors (Rublee et al., ICCV 2011) matched to a
+  ``PlanarModel`` (the taught view or the target's texture) with Lowe's ratio test (Lowe,
+  IJCV 60(2), 2004, sec. 7.1), a homography by RANSAC (Fischler & Bolles 1981) carrying the
+  model's servo points into the image; keys ``('pt', i)``; the inlier ratio is its quality.
+
+``Tracker`` wraps any of them: after a full-frame detection it searches windows around the
+positions predicted from the last two frames and falls back to the full frame when a feature
+it had is missing.
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import cv2
+import numpy as np
+
+from vservo_node.vision.image_io import SRGB8_TO_LINEAR, linear_rgb_to_lab, to_mono8
+from vservo_node.vision.targets import Target, render_target_texture
+
+
+@dataclass
+class Detection:
+    """Features found in one image.
+
+    Attributes:
+        kind: 'dots', 'markers' or 'textured'.
+        points: (N, 2) pixel coordinates, float64.
+        keys: N hashable identities, e.g. ('blob', 2), ('tag', 17, 0), ('pt', 3).
+        image_size: (width, height) of the image, pixels.
+        colours_linear: dots only: (N, 3) mean colour, linear-light sRGB (R, G, B) in [0, 1].
+        quality: figures per feature (arrays of N) or per image (scalars), by kind.
+        timings: milliseconds spent, by stage.
+        windowed: found by a window search rather than over the full frame.
+        homography: textured only: 3x3 map from model coordinates to pixels.
+    """
+    kind: str
+    points: np.ndarray
+    keys: list
+    image_size: tuple
+    colours_linear: np.ndarray | None = None
+    quality: dict = field(default_factory=dict)
+    timings: dict = field(default_factory=dict)
+    windowed: bool = False
+    homography: np.ndarray | None = None
+
+    def __len__(self):
+        return len(self.keys)
+
+    @property
+    def colours_lab(self) -> np.ndarray | None:
+        """Dots: (N, 3) CIELAB (D65) of the measured colours."""
+        return None if self.colours_linear is None else linear_rgb_to_lab(self.colours_linear)
+
+
+def _colour_image(image, allow16=False):
+    if image.dtype == np.uint16 and image.ndim == 2:
+        if allow16:
+            return image
+        raise ValueError("mono16 images are accepted by the marker detector only; convert "
+                         "to 8 bits or use an 8-bit encoding")
+    if image.dtype != np.uint8 or not (image.ndim == 2 or (image.ndim == 3
+                                                            and image.shape[2] == 3)):
+        raise ValueError(f"expected a BGR uint8 (H, W, 3) or mono (H, W) image, got "
+                         f"{image.dtype} {image.shape}")
+    return image
+
+
+def _size(image):
+    return (image.shape[1], image.shape[0])
+
+
+def _clip_rect(rect, size):
+    x0, y0, x1, y1 = rect
+    return (max(0, int(x0)), max(0, int(y0)), min(size[0], int(np.ceil(x1))),
+            min(size[1], int(np.ceil(y1))))
+
+
+# ============================================================================ dots
+class DotDetector:
+    """Coloured (or dark / bright) discs of a dot target.
+
+    Args:
+        target: a ``dots`` Target (segmentation mode and threshold come from it).
+        min_area_px: smallest blob area accepted, pixels.
+        max_area_fraction: largest blob area accepted, as a fraction of the image area.
+        min_roundness: smallest minor/major axis ratio of the blob's ellipse (0.3 accepts a
+            disc seen at up to ~72 deg tilt).
+        fill_range: accepted blob area / area of its moment ellipse (1 for an ellipse).
+        window_scale: window half-size in dot radii when tracking.
+    The gate values are common practice, no source.
+    """
+    kind = "dots"
+    CHROMA_THRESHOLD = 50.0  # chroma max(R,G,B)-min(R,G,B) on 0..255; common practice, no source
+
+    def __init__(self, target: Target, *, min_area_px=12.0, max_area_fraction=0.05,
+                 min_roundness=0.3, fill_range=(0.8, 1.2), window_scale=3.0):
+        if target.kind != "dots":
+            raise ValueError(f"DotDetector needs a dots target, got {target.kind!r}")
+        self.mode = target.segmentation
+        self.threshold = target.threshold
+        if self.threshold is None and self.mode == "chroma":
+            self.threshold = self.CHROMA_THRESHOLD
+        self.expected = len(target.dots)
+        self.min_area_px = min_area_px
+        self.max_area_fraction = max_area_fraction
+        self.min_roundness = min_roundness
+        self.fill_range = fill_range
+        self.window_scale = window_scale
+        self._auto_threshold = None  # Otsu's threshold of the last full frame ('auto' mode)
+
+    # ---------------------------------------------------------------- segmentation
+    def score(self, image: np.ndarray) -> np.ndarray:
+        """uint8 image, high where a dot is: chroma, inverted grey (dark) or grey (bright)."""
+        if self.mode == "chroma":
+            if image.ndim != 3:
+                raise ValueError("chroma segmentation needs a colour image, got a mono one; "
+                                 "set segmentation mode 'dark' or 'bright' for mono cameras")
+            b, g, r = cv2.split(image)
+            return cv2.subtract(cv2.max(cv2.max(b, g), r), cv2.min(cv2.min(b, g), r))
+        grey = image if image.ndim == 2 else cv2.cvtColor(image, cv2.COLOR_BGR2GRAY)
+        return cv2.bitwise_not(grey) if self.mode == "dark" else grey
+
+    def _mask(self, score, full_frame):
+        if self.threshold is not None:
+            return cv2.threshold(score, self.threshold, 255, cv2.THRESH_BINARY)[1]
+        if full_frame or self._auto_threshold is None:
+            t, mask = cv2.threshold(score, 0, 255, cv2.THRESH_BINARY | cv2.THRESH_OTSU)
+            if full_frame:
+                self._auto_threshold = t
+            return mask
+        return cv2.threshold(score, self._auto_threshold, 255, cv2.THRESH_BINARY)[1]
+
+    # ---------------------------------------------------------------- measurement
+    def _measure(self, image, score, labels, stats, i, max_area):
+        """Centroid, colour and shape of component i; (None, reason) if a gate refuses it."""
+        x, y, w, h, area = stats[i]
+        H, W = labels.shape
+        if area < self.min_area_px or area > max_area:
+            return None, "area"
+        if x == 0 or y == 0 or x + w == W or y + h == H:
+            return None, "border"
+        x0, y0 = max(x - 2, 0), max(y - 2, 0)
+        x1, y1 = min(x + w + 2, W), min(y + h + 2, H)
+        lab = labels[y0:y1, x0:x1]
+        s = score[y0:y1, x0:x1].astype(np.float32)
+        own, background = lab == i, lab == 0
+        weights = s - (s[background].mean() if background.any() else 0.0)
+        weights[~(own | background) | (weights < 0)] = 0.0
+        m = cv2.moments(weights)
+        if m["m00"] <= 0:
+            return None, "area"
+        cov = np.array([[m["mu20"], m["mu11"]], [m["mu11"], m["mu02"]]]) / m["m00"]
+        minor, major = np.sqrt(np.clip(np.linalg.eigvalsh(cov), 0, None))
+        if major <= 0 or minor / major < self.min_roundness:
+            return None, "roundness"
+        fill = area / (4 * np.pi * minor * major)  # ellipse semi-axes are 2 sqrt(eigenvalue)
+        if not self.fill_range[0] <= fill <= self.fill_range[1]:
+            return None, "fill"
+        interior = own & (weights >= 0.8 * weights.max())
+        pixels = image[y0:y1, x0:x1][interior]
+        linear = SRGB8_TO_LINEAR[pixels].mean(axis=0)
+        colour = linear[::-1] if image.ndim == 3 else np.repeat(linear, 3)
+        centre = (m["m10"] / m["m00"] + x0, m["m01"] / m["m00"] + y0)
+        return (centre, colour, float(area), float(np.sqrt(area / np.pi)),
+                float(minor / major), float(fill)), None
+
+    def _components(self, image, full_frame):
+        score = self.score(image)
+        n, labels, stats, _ = cv2.connectedComponentsWithStats(
+            self._mask(score, full_frame), connectivity=8, ltype=cv2.CV_32S)
+        return score, n, labels, stats
+
+    # ---------------------------------------------------------------- detection
+    def detect(self, image: np.ndarray, windows=None) -> Detection:
+        """Blobs in the full image, or at most one per ``(key, (x0, y0, x1, y1))`` window."""
+        t0 = time.perf_counter()
+        image = _colour_image(image)
+        max_area = self.max_area_fraction * image.shape[0] * image.shape[1]
+        found, rejected = [], {}
+        if windows is None:
+            score, n, labels, stats = self._components(image, True)
+            for i in range(1, n):
+                blob, why = self._measure(image, score, labels, stats, i, max_area)
+                if blob is None:
+                    rejected[why] = rejected.get(why, 0) + 1
+                else:
+                    found.append((("blob", len(found)),) + blob)
+        else:
+            for key, rect in windows:
+                x0, y0, x1, y1 = _clip_rect(rect, _size(image))
+                sub = image[y0:y1, x0:x1]
+                score, n, labels, stats = self._components(sub, False)
+                centre = np.array([(x1 - x0 - 1) / 2, (y1 - y0 - 1) / 2])
+                best = None
+                for i in range(1, n):
+                    blob, _ = self._measure(sub, score, labels, stats, i, max_area)
+                    if blob is not None:
+                        d = np.hypot(*(np.asarray(blob[0]) - centre))
+                        if best is None or d < best[0]:
+                            best = (d, blob)
+                if best is None:
+                    rejected["window"] = rejected.get("window", 0) + 1
+                    continue
+                (u, v), *rest = best[1]
+                found.append((key, (u + x0, v + y0), *rest))
+        keys = [f[0] for f in found]
+        cols = list(zip(*[f[1:] for f in found])) or [()] * 6
+        points = np.array(cols[0], dtype=float).reshape(-1, 2)
+        quality = {"area_px": np.array(cols[2]), "radius_px": np.array(cols[3]),
+                   "roundness": np.array(cols[4]), "fill": np.array(cols[5]),
+                   "rejected": rejected}
+        return Detection("dots", points, keys, _size(image),
+                         colours_linear=np.array(cols[1], dtype=float).reshape(-1, 3),
+                         quality=quality, windowed=windows is not None,
+                         timings={"detect_ms": 1e3 * (time.perf_counter() - t0)})
+
+    def windows(self, last: Detection, predicted: np.ndarray) -> list:
+        """One window per blob of ``last``, centred on its predicted position."""
+        moved = np.hypot(*(predicted - last.points).T)
+        half = np.maximum(self.window_scale * last.quality["radius_px"] + moved, 8.0)
+        return [(k, (u - r, v - r, u + r + 1, v + r + 1))
+                for k, (u, v), r in zip(last.keys, predicted, half)]
+
+
+# ============================================================================ markers
+class MarkerDetector:
+    """Square fiducials of a marker target, corners refined to sub-pixel.
+
+    Markers whose ids are not on the target are ignored (counted in quality['foreign_ids']).
+    ``margin`` is the window margin when tracking, as a fraction of the markers' extent.
+    """
+    kind = "markers"
+
+    def __init__(self, target: Target, *, margin=0.3):
+        if target.kind != "markers":
+            raise ValueError(f"MarkerDetector needs a markers target, got {target.kind!r}")
+        params = cv2.aruco.DetectorParameters()
+        params.cornerRefinementMethod = cv2.aruco.CORNER_REFINE_NONE  # refine_quad does it
+        dictionary = target.aruco_dictionary()
+        self._aruco = cv2.aruco.ArucoDetector(dictionary, params)
+        self.cells = dictionary.markerSize + 2  # data bits plus the black border, per side
+        self.ids = [m.id for m in target.markers]
+        self.expected = 4 * len(self.ids)
+        self.margin = margin
+
+    def detect(self, image: np.ndarray, windows=None) -> Detection:
+        """Markers in the full image, or in the single window ``[(None, (x0, y0, x1, y1))]``."""
+        t0 = time.perf_counter()
+        grey = to_mono8(_colour_image(image, allow16=True))
+        x0 = y0 = 0
+        if windows is not None:
+            x0, y0, x1, y1 = _clip_rect(windows[0][1], _size(grey))
+            grey = grey[y0:y1, x0:x1]
+        corners, ids, _ = self._aruco.detectMarkers(grey)
+        ids = [] if ids is None else ids.ravel().tolist()
+        seen, keys, points = set(), [], []
+        for marker_id, quad in zip(ids, corners):
+            if marker_id in self.ids and marker_id not in seen:
+                seen.add(marker_id)
+                keys += [("tag", marker_id, c) for c in range(4)]
+                points.append(refine_quad(grey, quad.reshape(4, 2), self.cells) + (x0, y0))
+        return Detection("markers", np.array(points, dtype=float).reshape(-1, 2), keys,
+                         _size(image), windowed=windows is not None,
+                         quality={"marker_ids": sorted(seen),
+                                  "foreign_ids": sorted(set(ids) - set(self.ids)),
+                                  "duplicate_ids": sorted({i for i in ids if ids.count(i) > 1})},
+                         timings={"detect_ms": 1e3 * (time.perf_counter() - t0)})
+
+    def windows(self, last: Detection, predicted: np.ndarray) -> list:
+        """One window around all predicted corners, grown by ``margin`` of their extent."""
+        lo, hi = predicted.min(axis=0), predicted.max(axis=0)
+        grow = self.margin * (hi - lo).max() + 16.0
+        return [(None, (lo[0] - grow, lo[1] - grow, hi[0] + grow + 1, hi[1] + grow + 1))]
+
+
+def _edge_line(grey, a, b, centre, cell_px):
+    """Sub-pixel line (normal n, offset d: n.x = d) of the dark-to-light edge from a to b.
+
+    Profiles across the edge are read by bilinear interpolation; on each, the edge is where
+    the intensity crosses the mean of its dark and light ends (the midpoint of a symmetric
+    blur); a total-least-squares line is fitted to those points. Returns None if the edge is
+    too short or faint.
+    """
+    length = np.hypot(*(b - a))
+    d = (b - a) / length
+    n = np.array([d[1], -d[0]])
+    if n @ ((a + b) / 2 - centre) < 0:
+        n = -n  # outward: towards the white quiet zone
+    half = float(np.clip(0.45 * cell_px, 1.5, 4.0))
+    end = max(0.12 * length, 1.5 * half)
+    if length - 2 * end < 3:
+        return None
+    along = np.linspace(end, length - end, max(4, int((length - 2 * end) / 1.5)))
+    across = np.arange(-half, half + 1e-9, 0.25)
+    pts = (a + along[:, None, None] * d + across[None, :, None] * n).astype(np.float32)
+    prof = cv2.remap(grey, pts[..., 0], pts[..., 1], cv2.INTER_LINEAR,
+                     borderMode=cv2.BORDER_REPLICATE).astype(float)
+    dark, light = prof[:, :2].mean(axis=1), prof[:, -2:].mean(axis=1)
+    ok = light - dark > 20.0
+    mid = (dark + light) / 2
+    above = prof >= mid[:, None]
+    j = np.argmax(above, axis=1)
+    ok &= j > 0
+    j = np.maximum(j, 1)
+    rows = np.arange(len(along))
+    p0, p1 = prof[rows, j - 1], prof[rows, j]
+    s = across[j - 1] + (mid - p0) / np.maximum(p1 - p0, 1e-9) * (across[1] - across[0])
+    if ok.sum() < 3:
+        return None
+    edge = a + along[ok, None] * d + s[ok, None] * n
+    c = edge.mean(axis=0)
+    normal = np.linalg.svd(edge - c)[2][1]
+    return normal, normal @ c
+
+
+def refine_quad(grey: np.ndarray, quad: np.ndarray, cells: int) -> np.ndarray:
+    """Corners (4, 2) of a marker's outer black square, refined by fitting its four edges
+    with sub-pixel edge points and intersecting adjacent lines; corners whose edges cannot be
+    fitted keep the detector's estimate. ``cells``: marker side in cells (bits + border)."""
+    quad = np.asarray(quad, dtype=float)
+    centre = quad.mean(axis=0)
+    cell_px = np.mean(np.hypot(*(np.roll(quad, -1, axis=0) - quad).T)) / cells
+    lines = [_edge_line(grey, quad[i], quad[(i + 1) % 4], centre, cell_px) for i in range(4)]
+    out = quad.copy()
+    for i in range(4):
+        before, after = lines[i - 1], lines[i]
+        if before is not None and after is not None:
+            A = np.array([before[0], after[0]])
+            if abs(np.linalg.det(A)) > 1e-3:
+                out[i] = np.linalg.solve(A, [before[1], after[1]])
+    return out
+
+
+# ============================================================================ textured
+@dataclass
+class PlanarModel:
+    """Keypoints of a flat target and its servo points, in one set of plane coordinates.
+
+    Coordinates are pixels of the taught view, or target metres for a model built from the
+    target's texture; the textured detector maps them into an image by a homography.
+    """
+    keypoints: np.ndarray    # (K, 2)
+    descriptors: np.ndarray  # (K, 32) uint8, ORB
+    points: np.ndarray       # (P, 2) servo points
+    keys: list               # P keys
+
+
+def _orb(n_features):
+    return cv2.ORB_create(nfeatures=n_features, scaleFactor=1.2, nlevels=8, fastThreshold=20)
+
+
+def model_from_image(image: np.ndarray, points, keys, to_model=None,
+                     n_features=2000) -> PlanarModel:
+    """PlanarModel of an image of the target: ORB keypoints of ``image``, mapped by the 3x3
+    ``to_model`` (default identity: model coordinates are this image's pixels)."""
+    grey = to_mono8(_colour_image(image))
+    kps, des = _orb(n_features).detectAndCompute(grey, None)
+    if des is None or len(kps) < 4:
+        raise ValueError(f"the image holds too few keypoints ({len(kps)}) for a textured model")
+    xy = np.array([k.pt for k in kps], dtype=float)
+    if to_model is not None:
+        xy = cv2.perspectiveTransform(xy.reshape(-1, 1, 2), np.asarray(to_model, float))
+        xy = xy.reshape(-1, 2)
+    return PlanarModel(xy, des, np.asarray(points, dtype=float).reshape(-1, 2), list(keys))
+
+
+def model_from_texture(target: Target, px_per_m=2000.0, n_features=2000) -> PlanarModel:
+    """PlanarModel of a textured target from its texture; coordinates in target metres."""
+    texture, T = render_target_texture(target, px_per_m)
+    return model_from_image(texture, target.points, target.keys(), to_model=T,
+                            n_features=n_features)
+
+
+class TexturedDetector:
+    """A textured planar target found by keypoint matching to a PlanarModel.
+
+    Args:
+        model: the keypoints and servo points to look for.
+        n_features: ORB keypoints per image.
+        ratio: Lowe's ratio test threshold (0.8: Lowe 2004, sec. 7.1).
+        ransac_px: RANSAC inlier threshold, pixels (common practice, no source).
+        min_inliers: fewer homography inliers count as not found (common practice, no source).
+        margin: window margin when tracking, as a fraction of the points' extent.
+    """
+    kind = "textured"
+
+    def __init__(self, model: PlanarModel, *, n_features=1500, ratio=0.8, ransac_px=3.0,
+                 min_inliers=15, margin=0.6):
+        self.model = model
+        self._orb = _orb(n_features)
+        self._matcher = cv2.BFMatcher(cv2.NORM_HAMMING)
+        self.ratio, self.ransac_px, self.min_inliers = ratio, ransac_px, min_inliers
+        self.expected = len(model.keys)
+        self.margin = margin
+
+    def detect(self, image: np.ndarray, windows=None) -> Detection:
+        """The servo points in the full image, or in the window ``[(None, rect)]``."""
+        t0 = time.perf_counter()
+        grey = to_mono8(_colour_image(image))
+        x0 = y0 = 0
+        if windows is not None:
+            x0, y0, x1, y1 = _clip_rect(windows[0][1], _size(grey))
+            grey = grey[y0:y1, x0:x1]
+        kps, des = self._orb.detectAndCompute(grey, None)
+        quality = {"n_keypoints": len(kps), "n_matches": 0, "n_inliers": 0,
+                   "inlier_ratio": 0.0, "reprojection_rms_px": float("nan")}
+        empty = Detection("textured", np.zeros((0, 2)), [], _size(image), quality=quality,
+                          windowed=windows is not None)
+        if des is None or len(kps) < 4:
+            quality["reason"] = "too few keypoints"
+            return self._timed(empty, t0)
+        pairs = self._matcher.knnMatch(des, self.model.descriptors, k=2)
+        good = [p[0] for p in pairs if len(p) == 2 and p[0].distance < self.ratio * p[1].distance]
+        quality["n_matches"] = len(good)
+        if len(good) < max(self.min_inliers, 4):
+            quality["reason"] = f"{len(good)} descriptor matches, need {self.min_inliers}"
+            return self._timed(empty, t0)
+        src = self.model.keypoints[[m.trainIdx for m in good]]
+        dst = np.array([kps[m.queryIdx].pt for m in good]) + (x0, y0)
+        H, inl = cv2.findHomography(src, dst, cv2.RANSAC, self.ransac_px, maxIters=2000,
+                                    confidence=0.999)
+        inliers = 0 if inl is None else int(inl.sum())
+        quality.update(n_inliers=inliers, inlier_ratio=inliers / len(good))
+        if H is None or inliers < self.min_inliers:
+            quality["reason"] = f"{inliers} homography inliers, need {self.min_inliers}"
+            return self._timed(empty, t0)
+        inl = inl.ravel().astype(bool)
+        err = cv2.perspectiveTransform(src[inl].reshape(-1, 1, 2), H).reshape(-1, 2) - dst[inl]
+        quality["reprojection_rms_px"] = float(np.sqrt(np.mean(np.sum(err ** 2, axis=1))))
+        uv = cv2.perspectiveTransform(self.model.points.reshape(-1, 1, 2), H).reshape(-1, 2)
+        w, h = _size(image)
+        inside = (uv[:, 0] >= -0.5) & (uv[:, 0] <= w - 0.5) & (uv[:, 1] >= -0.5) & (
+            uv[:, 1] <= h - 0.5)
+        quality["outside_image"] = [k for k, ok in zip(self.model.keys, inside) if not ok]
+        det = Detection("textured", uv[inside], [k for k, ok in zip(self.model.keys, inside)
+                                                 if ok], _size(image), quality=quality,
+                        windowed=windows is not None, homography=H)
+        return self._timed(det, t0)
+
+    @staticmethod
+    def _timed(det, t0):
+        det.timings["detect_ms"] = 1e3 * (time.perf_counter() - t0)
+        return det
+
+    def windows(self, last: Detection, predicted: np.ndarray) -> list:
+        """One window around the predicted servo points, grown by ``margin`` of their extent."""
+        lo, hi = predicted.min(axis=0), predicted.max(axis=0)
+        grow = self.margin * (hi - lo).max() + 32.0
+        return [(None, (lo[0] - grow, lo[1] - grow, hi[0] + grow + 1, hi[1] + grow + 1))]
+
+
+def make_detector(target: Target, model: PlanarModel | None = None):
+    """The detector for a target's kind; textured targets use ``model`` if given (e.g. the
+    taught view), else a model of the target's texture."""
+    if target.kind == "dots":
+        return DotDetector(target)
+    if target.kind == "markers":
+        return MarkerDetector(target)
+    return TexturedDetector(model if model is not None else model_from_texture(target))
+
+
+# ============================================================================ tracking
+class Tracker:
+    """Window search between frames around predicted positions, with full-frame fallback.
+
+    The first frame, any frame after a feature went missing from its window, and, while fewer
+    features than the target has are tracked, every ``refresh_every``-th frame are searched in
+    full. Positions are predicted at constant image velocity from the last two frames when
+    both found the same features, else at the last position.
+    """
+
+    def __init__(self, detector, refresh_every=10):
+        self.detector = detector
+        self.refresh_every = refresh_every
+        self.reset()
+
+    def reset(self):
+        self._last = self._before = None
+        self._since_full = 0
+
+    def _predicted(self):
+        last, before = self._last, self._before
+        same = (before is not None and before.keys == last.keys
+                and (last.kind != "dots" or last.windowed))
+        return 2 * last.points - before.points if same else last.points
+
+    def detect(self, image: np.ndarray) -> Detection:
+        """Detect in ``image`` (same type and size each frame), in windows when possible."""
+        t0 = time.perf_counter()
+        last = self._last
+        det = None
+        want_full = (last is None or len(last) == 0 or (
+            len(last) < self.detector.expected and self._since_full >= self.refresh_every))
+        if not want_full:
+            det = self.detector.detect(image, self.detector.windows(last, self._predicted()))
+            if not set(last.keys) <= set(det.keys):
+                det = None  # a feature went missing from its window: search the full frame
+        if det is None:
+            det = self.detector.detect(image)
+            self._since_full = 0
+        else:
+            self._since_full += 1
+        det.timings["tracker_ms"] = 1e3 * (time.perf_counter() - t0)
+        self._before, self._last = last, det
+        return det

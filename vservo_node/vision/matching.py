@@ -1,0 +1,255 @@
+"""Correspondence between a detection and the taught reference.
+
+- Dots: one global assignment (Hungarian method: Kuhn, Naval Research Logistics Quarterly 2,
+  1955; scipy.optimize.linear_sum_assignment) on the CIELAB colour difference Delta E*ab
+  (CIE 15:2004), gated by ``max_delta_e``, plus the pixel distance to predicted positions when
+  the previous frame gives them. Exposure changes are absorbed by a common gain on the
+  measured colours in linear light, chosen to minimise the assignment cost. When reference
+  colours repeat (closer than ``ambiguity_delta_e``) and no prediction separates them, the
+  assignments within each colour group are tried and the one whose points fit one homography
+  to the reference best is kept (a plane's two views are related by a homography: Hartley &
+  Zisserman 2003, sec. 13.1). With five or more matches a RANSAC homography rejects points
+  that do not fit (Fischler & Bolles, Comm. ACM 24(6), 1981).
+- Markers and textured targets: by key (marker id and corner; servo point index).
+
+The result lists what was matched (current pixels and reference points in the same order),
+which reference features were not seen, and which detections were rejected and why, so the
+servo can decide. Fewer than ``min_matched`` (default 4) matches is "not ok": three points
+give several poses with the same image and singular configurations (Chaumette & Hutchinson,
+IEEE RAM 13(4), 2006, sec. IV-A).
+"""
+from __future__ import annotations
+
+import itertools
+from dataclasses import dataclass, field
+
+import cv2
+import numpy as np
+from scipy.optimize import linear_sum_assignment
+
+from vservo_node.vision.image_io import delta_e_ab, linear_rgb_to_lab
+
+MIN_MATCHED = 4
+
+
+@dataclass
+class MatchResult:
+    """Matched features, in reference order.
+
+    Attributes:
+        points: (M, 2) current pixels.
+        ref_points: (M, 2) the reference's coordinates of the same features (whatever the
+            reference uses: taught pixels, or target metres).
+        keys: M reference keys.
+        detection_index: (M,) index of each match in the detection.
+        missing: reference keys not matched.
+        rejected: (detection key, reason) for detections left out: 'colour' (no reference
+            colour within the gate), 'unassigned' (another detection fitted better),
+            'geometry' (off the homography of the others), 'not in reference'.
+        quality: figures such as 'gain', 'delta_e' (M,), 'homography_rms_px', 'ambiguous'.
+        min_matched: matches needed for ``ok``.
+    """
+    points: np.ndarray
+    ref_points: np.ndarray
+    keys: list
+    detection_index: np.ndarray
+    missing: list
+    rejected: list
+    quality: dict = field(default_factory=dict)
+    min_matched: int = MIN_MATCHED
+
+    def __len__(self):
+        return len(self.keys)
+
+    @property
+    def ok(self) -> bool:
+        return len(self) >= self.min_matched
+
+    @property
+    def reason(self) -> str:
+        """'' when ok, else why not."""
+        if self.ok:
+            return ""
+        return (f"{len(self)} features matched, need {self.min_matched}; missing "
+                f"{self.missing}")
+
+    def as_dict(self) -> dict:
+        """{key: (u, v)}: e.g. the ``predicted`` positions for the next frame's match."""
+        return {k: tuple(p) for k, p in zip(self.keys, self.points)}
+
+
+def assign(cost: np.ndarray, allowed: np.ndarray):
+    """Minimum-cost assignment among allowed pairs, with as many pairs as possible.
+
+    Forbidden pairs cost more than any full set of allowed ones, so the Hungarian method
+    first maximises the number of allowed pairs, then minimises their total cost.
+    Returns (rows, cols) of the allowed pairs chosen.
+    """
+    cost = np.asarray(cost, dtype=float)
+    allowed = np.asarray(allowed, dtype=bool)
+    if cost.size == 0:
+        return np.zeros(0, int), np.zeros(0, int)
+    big = (np.abs(cost[allowed]).sum() + 1.0) * (min(cost.shape) + 1)
+    rows, cols = linear_sum_assignment(np.where(allowed, cost, big))
+    keep = allowed[rows, cols]
+    return rows[keep], cols[keep]
+
+
+def _result(detection, ref_keys, ref_points, pairs, reasons, quality, min_matched):
+    pairs = sorted(pairs)
+    idx_ref = np.array([r for r, _ in pairs], dtype=int)
+    idx_det = np.array([d for _, d in pairs], dtype=int)
+    ref_points = np.asarray(ref_points, dtype=float).reshape(-1, 2)
+    matched = set(idx_ref.tolist())
+    used = set(idx_det.tolist())
+    return MatchResult(
+        points=detection.points[idx_det].reshape(-1, 2),
+        ref_points=ref_points[idx_ref] if len(ref_points) else np.zeros((len(pairs), 2)),
+        keys=[ref_keys[r] for r in idx_ref], detection_index=idx_det,
+        missing=[k for r, k in enumerate(ref_keys) if r not in matched],
+        rejected=[(detection.keys[j], reasons.get(j, "unassigned"))
+                  for j in range(len(detection)) if j not in used],
+        quality=quality, min_matched=min_matched)
+
+
+def match_by_key(detection, ref_keys, ref_points, *, min_matched=MIN_MATCHED) -> MatchResult:
+    """Markers and textured targets: features correspond by key."""
+    where = {k: j for j, k in enumerate(detection.keys)}
+    ref_keys = [tuple(k) for k in ref_keys]
+    pairs = [(r, where[k]) for r, k in enumerate(ref_keys) if k in where]
+    known = set(ref_keys)
+    reasons = {j: "not in reference" for j, k in enumerate(detection.keys) if k not in known}
+    return _result(detection, ref_keys, ref_points, pairs, reasons, {}, min_matched)
+
+
+# ----------------------------------------------------------------------------- dots
+def _colour_groups(ref_lab, threshold):
+    """Groups (lists of reference indices) whose colours chain within ``threshold``."""
+    n = len(ref_lab)
+    close = delta_e_ab(ref_lab[:, None], ref_lab[None]) < threshold
+    group = list(range(n))
+    for i, j in zip(*np.nonzero(close)):
+        gi, gj = group[i], group[j]
+        if gi != gj:
+            group = [gi if g == gj else g for g in group]
+    return [[i for i in range(n) if group[i] == g] for g in sorted(set(group))]
+
+
+def _homography_fit(src, dst):
+    """(rms px, orientation kept) of the least-squares homography src -> dst, or None."""
+    H, _ = cv2.findHomography(src, dst, 0)
+    if H is None:
+        return None
+    w = np.hstack([src, np.ones((len(src), 1))]) @ H[2]
+    if np.any(w * w[0] <= 0):
+        return None  # the plane would cross the line at infinity between points
+    proj = cv2.perspectiveTransform(src.reshape(-1, 1, 2), H).reshape(-1, 2)
+    rms = float(np.sqrt(np.mean(np.sum((proj - dst) ** 2, axis=1))))
+    return rms, np.linalg.det(H) * np.sign(w[0]) ** 3 > 0
+
+
+def _disambiguate(pairs, groups, allowed, points, ref_points, geometry_px, max_trials):
+    """Try the assignments within repeated-colour groups; keep the best homography fit."""
+    fixed = [(r, d) for r, d in pairs if not any(r in g for g in groups)]
+    options = []
+    for g in groups:
+        candidates = [d for d in range(allowed.shape[1]) if allowed[g, d].any()]
+        pool = candidates + [None] * max(0, len(g) - len(candidates))
+        parts = {tuple((r, d) for r, d in zip(g, perm) if d is not None and allowed[r, d])
+                 for perm in itertools.permutations(pool, len(g))}
+        options.append(sorted(parts))
+    if np.prod([len(o) for o in options], dtype=float) > max_trials:
+        return pairs, {"ambiguous": True, "candidates": None}
+    fits = []
+    for combo in itertools.product(*options):
+        trial = fixed + [pair for part in combo for pair in part]
+        if len({d for _, d in trial}) < len(trial) or len(trial) < 4:
+            continue
+        r, d = map(list, zip(*trial))
+        fit = _homography_fit(ref_points[r], points[d])
+        if fit is not None and fit[1]:
+            fits.append((fit[0], -len(trial), trial))
+    if not fits:
+        return pairs, {"ambiguous": True, "candidates": 0}
+    fits.sort(key=lambda f: (f[1], f[0]))
+    good = [f for f in fits if f[1] == fits[0][1] and f[0] <= geometry_px]
+    return fits[0][2], {"ambiguous": len(good) > 1, "candidates": len(good)}
+
+
+def match_dots(detection, ref_keys, ref_lab, ref_points=None, predicted=None, *,
+               max_delta_e=30.0, max_jump_px=40.0, px_weight=1.0, compensate_exposure=True,
+               ambiguity_delta_e=15.0, geometry_px=3.0, max_trials=5000,
+               min_matched=MIN_MATCHED) -> MatchResult:
+    """Match detected blobs to reference dots by colour, and by geometry where needed.
+
+    Args:
+        detection: a dots Detection (points and colours_linear).
+        ref_keys, ref_lab: the reference dots' keys and CIELAB colours (N, 3).
+        ref_points: the reference dots' coordinates (N, 2) on the plane or in the taught image,
+            for repeated colours and outlier rejection; None skips both.
+        predicted: {reference key: (u, v)} expected current pixels (e.g. the previous frame's
+            ``MatchResult.as_dict()``); predicted dots only match within ``max_jump_px`` and
+            pay ``px_weight`` Delta E units per pixel away.
+        max_delta_e: colour gate (Delta E*ab, after exposure compensation).
+        compensate_exposure: fit one gain in linear light (0.25 .. 4) before the colour gate.
+        ambiguity_delta_e: reference colours closer than this count as the same colour.
+        geometry_px: homography residual allowed, current-image pixels.
+    The default thresholds are common practice, no source.
+    """
+    ref_keys = [tuple(k) for k in ref_keys]
+    ref_lab = np.asarray(ref_lab, dtype=float).reshape(-1, 3)
+    n_ref, n_det = len(ref_keys), len(detection)
+    ref_points = None if ref_points is None else np.asarray(ref_points, float).reshape(-1, 2)
+    quality = {"gain": 1.0, "ambiguous": False, "homography_rms_px": float("nan")}
+    if n_det == 0 or n_ref == 0:
+        return _result(detection, ref_keys, ref_points if ref_points is not None else [], [],
+                       {}, quality, min_matched)
+
+    extra = np.zeros((n_ref, n_det))
+    gate = np.ones((n_ref, n_det), dtype=bool)
+    has_prediction = np.zeros(n_ref, dtype=bool)
+    for r, key in enumerate(ref_keys):
+        if predicted and key in predicted:
+            dist = np.linalg.norm(detection.points - np.asarray(predicted[key], float), axis=1)
+            extra[r], gate[r], has_prediction[r] = px_weight * dist, dist <= max_jump_px, True
+
+    def solve(gain):
+        de = delta_e_ab(ref_lab[:, None], linear_rgb_to_lab(detection.colours_linear * gain)[None])
+        allowed = gate & (de <= max_delta_e)
+        rows, cols = assign(de + extra, allowed)
+        return (-len(rows), float((de + extra)[rows, cols].sum())), rows, cols, de, allowed
+
+    gains = [1.0]
+    if compensate_exposure:
+        coarse = np.geomspace(0.25, 4.0, 17)
+        best = min(coarse, key=lambda g: solve(g)[0])
+        gains = np.geomspace(best / 1.19, best * 1.19, 9)
+    gain = min(gains, key=lambda g: solve(g)[0])
+    _, rows, cols, de, allowed = solve(gain)
+    quality["gain"] = float(gain)
+    pairs = list(zip(rows.tolist(), cols.tolist()))
+    reasons = {j: "colour" for j in range(n_det) if not allowed[:, j].any()}
+
+    if ref_points is not None:
+        groups = [g for g in _colour_groups(ref_lab, ambiguity_delta_e)
+                  if len(g) > 1 and not has_prediction[g].all()]
+        if groups:
+            pairs, info = _disambiguate(pairs, groups, allowed, detection.points, ref_points,
+                                        geometry_px, max_trials)
+            quality.update(info)
+        if len(pairs) >= 5:
+            r, d = map(np.array, zip(*pairs))
+            _, inl = cv2.findHomography(ref_points[r], detection.points[d], cv2.RANSAC,
+                                        geometry_px)
+            if inl is not None:
+                keep = inl.ravel().astype(bool)
+                reasons.update({int(j): "geometry" for j in d[~keep]})
+                pairs = [p for p, k in zip(pairs, keep) if k]
+        if len(pairs) >= 4:
+            r, d = map(list, zip(*pairs))
+            fit = _homography_fit(ref_points[r], detection.points[d])
+            if fit is not None:
+                quality["homography_rms_px"] = fit[0]
+    quality["delta_e"] = np.array([de[r, d] for r, d in sorted(pairs)])
+    return _result(detection, ref_keys, ref_points if ref_points is not None else [], pairs,
+                   reasons, quality, min_matched)
