@@ -126,12 +126,10 @@ class DampedInverse:
         sigma = float(S[judge]) if sigma_judge is None else float(sigma_judge)
         mu = damping.mu(sigma)
         kept = S[:rank]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            gains = np.where(kept > 0.0, kept / (kept * kept + mu * mu), 0.0)
-            condition = float(S[0] / sigma) if sigma > 0 else float("inf")
+        with np.errstate(divide="ignore", invalid="ignore"):        # 0/0 where sigma = mu = 0
+            self._gains = np.where(kept > 0.0, kept / (kept * kept + mu * mu), 0.0)
         self._U, self._Vt, self._S = U[:, :rank], Vt[:rank], kept
-        self._gains = gains
-        self.n = J.shape[1]
+        condition = float(S[0] / sigma) if sigma > 0 else float("inf")
         self.info = DlsInfo(S, judge, sigma, mu, condition)
 
     def solve(self, rhs: np.ndarray) -> np.ndarray:
@@ -216,8 +214,9 @@ def joint_limit_cost(q: np.ndarray, lower: np.ndarray, upper: np.ndarray
     (continuous joints) do not contribute.
     """
     bounded = np.isfinite(lower) & np.isfinite(upper)
-    span = np.where(bounded, upper - lower, 1.0)
-    offset = np.where(bounded, q - 0.5 * (lower + upper), 0.0) / span
+    low, high = np.where(bounded, lower, -1.0), np.where(bounded, upper, 1.0)
+    span = high - low
+    offset = np.where(bounded, q - 0.5 * (low + high), 0.0) / span
     return float(offset @ offset), 2.0 * offset / span
 
 

@@ -25,30 +25,44 @@ All static sets (all but the last) contain x = 0, so stopping is always allowed.
 
 Which limit wins, and why acceleration bounds hold
 --------------------------------------------------
-The output is ``previous + s (desired - previous)`` with the largest s in [0, 1] that meets
-every limit. Each limit alone allows s up to a fraction computed in closed form (a box gives a
+The output is ``base + s (desired - base)`` with the largest s in [0, 1] that meets every
+limit, where ``base`` is the previous command when that is feasible (the normal case, mode
+``track``). Each limit alone allows s up to a fraction computed in closed form (a box gives a
 linear bound per joint, a norm ball the larger root of a quadratic); the feasible s of the
-intersection is the minimum of these fractions, because when ``previous`` is feasible every
-constraint set is convex and contains it, so each allows an interval [0, s_c]. The limit with
-the smallest fraction is "the one that wins" (ties go to the first in :data:`LIMITS`); every
-limit with s_c < 1 "acted". The change ``s (desired - previous)`` keeps the direction of the
-requested change, and since the acceleration box is one of the constraints each joint changes
-by at most a_i dt: no separate clipping step can undo another limit.
+intersection is the minimum of these fractions, because every constraint set is convex and
+contains the base, so each allows an interval [0, s_c]. The limit with the smallest fraction
+is "the one that wins"; ties go to the first in :data:`LIMITS`, which puts the hard joint
+position limit first and the acceleration bound last, so the status names the most
+safety-relevant cause. Every limit with s_c < 1 "acted". In track mode the change
+``s (desired - previous)`` keeps the direction of the requested change, and since the
+acceleration box around the previous command is one of the constraints, each joint changes by
+at most a_i dt: no later clipping step can undo another limit.
+
+Recovery when the previous command is infeasible
+------------------------------------------------
+The previous command can leave the set without any fault: a limit or speed_scale was lowered,
+the envelope shrank as the joint approached its limit (this happens on every braking cycle),
+or the Cartesian Jacobians changed with q while moving at a Cartesian limit. Then (mode
+``recover``) the base is the previous command scaled toward zero, keeping its direction, by
+the larger of (a) the largest feasible multiple of it and (b) the smallest multiple reachable
+with every joint changing by at most a_i dt (deceleration at the maximum rate). If (b) wins,
+each joint is in addition clipped into its position envelope (then back into its acceleration
+box): a position limit must not wait for the slowest-braking joint. When the base is feasible
+the limiter then steps toward ``desired`` from it as above; when it is not (a limit was
+lowered by more than one cycle of deceleration), the base itself is the output, and the
+recovery continues on the next cycles.
 
 The envelope is exact for the discrete loop (the command is held for dt and q advances by
-command * dt): if the previous command met h at the previous q, braking by a_i dt keeps inside
-h at the new q, so the acceleration limit and the envelope never conflict and a joint stops
-before its limit. Pass limits already shrunk by whatever margin the real arm's tracking lag
-needs.
+command * dt): if the previous command met h at the previous q, the new h is at least the
+previous command minus a_i dt, so braking at the acceleration limit keeps inside the envelope
+and the joint comes to rest before its limit (POSITION_ROUNDOFF short of it, so that round-off
+in q never crosses it). Pass limits already shrunk by whatever margin the real arm's tracking
+lag needs.
 
-When the previous command is infeasible (a limit was lowered, speed_scale dropped, q moved
-past the envelope), no step toward ``desired`` starts inside the set. The limiter then
-decelerates along the previous command's direction: it scales the previous command to the
-larger of (a) the largest feasible multiple of it and (b) the smallest multiple reachable with
-every joint changing by at most a_i dt. Mode ``decelerate`` is reported until it is feasible.
-
+Faults
+------
 Non-finite values in any input array or in speed_scale give mode ``fault``: the previous
-command is ramped toward zero at the deceleration limit in the same way (to zero when the
+command is scaled toward zero at the maximum synchronized deceleration (to zero when the
 previous command itself is not finite). Wrong shapes, or dt not finite and > 0, are programming
 errors and raise ValueError.
 """
@@ -67,8 +81,10 @@ LIMITS = ("position_envelope", "joint_velocity", "tool_linear_speed", "camera_li
 EVENTS = ("previous_infeasible", "fault")
 #: Reduced-speed ceiling at the tool in manual mode, m/s: ISO 10218-1 (from memory).
 ISO_REDUCED_SPEED = 0.25
-#: Relative tolerance when judging the previous command feasible.
+#: Relative tolerance when judging a command feasible.
 FEASIBLE_TOL = 1e-9
+#: Distance (rad or m) the envelope keeps free before each position limit.
+POSITION_ROUNDOFF = 1e-9
 
 
 @dataclass(frozen=True)
@@ -122,7 +138,7 @@ class LimitSet:
             a = arrays[name]
             if not np.all(np.isfinite(a) & (a > 0)):
                 out.append(f"{name} = {a}; expected finite values > 0 for every joint")
-        elif np.any(np.isnan(self.lower) | np.isnan(self.upper) | (self.lower >= self.upper)):
+        if np.any(np.isnan(self.lower) | np.isnan(self.upper) | (self.lower >= self.upper)):
             out.append(f"lower = {self.lower}, upper = {self.upper}; expected lower < upper for "
                        "every joint (+-inf for continuous joints)")
         if not (np.isfinite(self.velocity_scale) and 0 < self.velocity_scale <= 1):
@@ -143,15 +159,19 @@ class LimitSet:
 class LimitReport:
     """What the limiter did in one call.
 
-    ``mode``: "track" (stepped toward the desired command), "decelerate" (previous command
-    infeasible) or "fault" (non-finite input). ``scale``: in track mode the fraction s of the
-    step toward the desired command, else the multiple of the previous command kept.
+    ``mode``: "track" (stepped from the previous command toward the desired one), "recover"
+    (the previous command was infeasible, see the module docstring) or "fault" (non-finite
+    input). ``base``: the command the step started from (rad/s); ``base_scale``: the multiple of
+    the previous command it was scaled to (1 in track mode); ``scale``: the fraction s of the
+    step from the base toward the desired command (0 when no step was taken).
     ``acted``: limits that cut the command; ``winner`` (and ``winner_joint`` for per-joint
-    limits): the one that cut it most. ``counts``: cumulative counts (filled by
-    :class:`Limiter`, empty from :func:`limit_command`).
+    limits): the one that set it. ``counts``: cumulative counts (filled by :class:`Limiter`,
+    empty from :func:`limit_command`).
     """
 
     mode: str
+    base: np.ndarray
+    base_scale: float
     scale: float
     acted: tuple[str, ...]
     winner: str | None
@@ -181,10 +201,14 @@ def stopping_speed(distance: np.ndarray, accel: np.ndarray, dt: float) -> np.nda
 # --------------------------------------------------------------------------------------------
 # Step fractions in closed form
 # --------------------------------------------------------------------------------------------
+#: Per limit name, the largest step fraction it allows and the joint that sets it (or None).
+Fractions = dict[str, tuple[float, int | None]]
+
+
 def _box_fraction(base: np.ndarray, delta: np.ndarray, lo: np.ndarray, hi: np.ndarray
                   ) -> tuple[float, int | None]:
     """Largest s >= 0 with lo <= base + s delta <= hi, and the joint that sets it."""
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):   # inf: no bound
         s = np.where(delta > 0, (hi - base) / delta,
                      np.where(delta < 0, (lo - base) / delta, np.inf))
     s = np.maximum(s, 0.0)
@@ -214,7 +238,7 @@ class _StaticSet:
     hi_envelope: np.ndarray
     balls: tuple[tuple[str, np.ndarray, float], ...]
 
-    def fractions(self, base: np.ndarray, delta: np.ndarray) -> dict[str, tuple[float, int | None]]:
+    def fractions(self, base: np.ndarray, delta: np.ndarray) -> Fractions:
         """Per limit, the largest step fraction from base along delta (base assumed inside)."""
         out = {"position_envelope": _box_fraction(base, delta, self.lo_envelope, self.hi_envelope),
                "joint_velocity": _box_fraction(base, delta, self.lo_velocity, self.hi_velocity)}
@@ -228,8 +252,10 @@ def _static_set(q, dt, limits: LimitSet, tool_point_jac, camera_point_jac, angul
     vmax = limits.velocity_max * speed_scale
     return _StaticSet(
         lo_velocity=-vmax, hi_velocity=vmax,
-        lo_envelope=-stopping_speed(q - limits.lower, limits.acceleration, dt),
-        hi_envelope=stopping_speed(limits.upper - q, limits.acceleration, dt),
+        lo_envelope=-stopping_speed(q - limits.lower - POSITION_ROUNDOFF, limits.acceleration,
+                                    dt),
+        hi_envelope=stopping_speed(limits.upper - q - POSITION_ROUNDOFF, limits.acceleration,
+                                   dt),
         balls=(("tool_linear_speed", tool_point_jac, limits.tool_linear_max * speed_scale),
                ("camera_linear_speed", camera_point_jac, limits.camera_linear_max * speed_scale),
                ("angular_speed", angular_jac, limits.angular_max * speed_scale)))
@@ -241,17 +267,23 @@ def _decelerated(previous: np.ndarray, accel: np.ndarray, dt: float) -> float:
     moving = speed > 0
     if not np.any(moving):
         return 0.0
-    return max(0.0, 1.0 - float(np.min(accel[moving] * dt / speed[moving])))
+    with np.errstate(over="ignore"):
+        return max(0.0, 1.0 - float(np.min(accel[moving] * dt / speed[moving])))
 
 
-def _winner(fractions: dict[str, tuple[float, int | None]]) -> tuple[str, int | None, float]:
+def _winner(fractions: Fractions) -> tuple[str, int | None, float]:
     name = min(LIMITS, key=lambda k: fractions.get(k, (np.inf, None))[0])  # first on ties
     value, joint = fractions[name]
     return name, joint, value
 
 
-def _acted(fractions: dict[str, tuple[float, int | None]]) -> tuple[str, ...]:
-    return tuple(k for k in LIMITS if k in fractions and fractions[k][0] < 1.0)
+def _acted(*fractions: Fractions) -> tuple[str, ...]:
+    return tuple(k for k in LIMITS if any(k in f and f[k][0] < 1.0 for f in fractions))
+
+
+def _feasible(fractions: Fractions) -> bool:
+    """Whether the point the fractions were taken toward (from 0) is feasible."""
+    return min(f for f, _ in fractions.values()) >= 1.0 - FEASIBLE_TOL
 
 
 # --------------------------------------------------------------------------------------------
@@ -260,15 +292,15 @@ def _acted(fractions: dict[str, tuple[float, int | None]]) -> tuple[str, ...]:
 def limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point_jac,
                   camera_point_jac, angular_jac, speed_scale: float = 1.0
                   ) -> tuple[np.ndarray, LimitReport]:
-    """The command (n,) closest to ``desired`` along the step from ``previous`` meeting every
-    limit, and a report (see the module docstring).
+    """The command (n,) nearest ``desired`` along the step from the previous command that meets
+    every limit, and a report (see the module docstring).
 
     ``desired``, ``previous`` (n,) rad/s; ``q`` (n,) rad, the position at the start of the
     cycle; ``dt`` (s) the cycle over which the command is held; Jacobians (3 x n);
     ``speed_scale`` in [0, 1] scales every speed limit (not accelerations); 0 brings the arm to
     rest at the deceleration limit.
     """
-    n = limits.n
+    n, accel = limits.n, limits.acceleration
     arrays = {"desired": desired, "previous": previous, "q": q, "tool_point_jac": tool_point_jac,
               "camera_point_jac": camera_point_jac, "angular_jac": angular_jac}
     arrays = {k: np.asarray(v, dtype=float) for k, v in arrays.items()}
@@ -281,31 +313,39 @@ def limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point_
     if bad:
         what = "non-finite " + ", ".join(bad)
         if not np.all(np.isfinite(previous)):
-            return np.zeros(n), LimitReport("fault", 0.0, (), None, None,
+            return np.zeros(n), LimitReport("fault", np.zeros(n), 0.0, 0.0, (), None, None,
                                             what + "; previous command unknown, output zero")
-        c = _decelerated(previous, limits.acceleration, dt)
-        return c * previous, LimitReport("fault", c, (), None, None,
+        c = _decelerated(previous, accel, dt)
+        return c * previous, LimitReport("fault", c * previous, c, 0.0, (), None, None,
                                          what + "; ramping down at the deceleration limit")
 
     static = _static_set(arrays["q"], dt, limits, arrays["tool_point_jac"],
                          arrays["camera_point_jac"], arrays["angular_jac"], speed_scale)
     zero = np.zeros(n)
+    accel_lo, accel_hi = previous - accel * dt, previous + accel * dt
     along_previous = static.fractions(zero, previous)
-    if min(f for f, _ in along_previous.values()) < 1.0 - FEASIBLE_TOL:
-        name, joint, c_feasible = _winner(along_previous)
-        c = max(c_feasible, _decelerated(previous, limits.acceleration, dt))
-        return c * previous, LimitReport("decelerate", c, _acted(along_previous), name, joint)
+    if _feasible(along_previous):
+        mode, base, c, recovered = "track", previous, 1.0, {}
+    else:
+        mode, recovered = "recover", along_previous
+        c_feasible = _winner(along_previous)[2]
+        c = max(c_feasible, _decelerated(previous, accel, dt))
+        base = c * previous
+        if c > c_feasible:
+            base = np.clip(np.clip(base, static.lo_envelope, static.hi_envelope),
+                           accel_lo, accel_hi)
+            if not _feasible(static.fractions(zero, base)):
+                name, joint, _ = _winner(recovered)
+                return base, LimitReport(mode, base, c, 0.0, _acted(recovered), name, joint)
 
-    delta = arrays["desired"] - previous
-    fractions = static.fractions(previous, delta)
-    with np.errstate(divide="ignore"):
-        s_accel = np.where(delta != 0, limits.acceleration * dt / np.abs(delta), np.inf)
-    joint = int(np.argmin(s_accel))
-    fractions["joint_acceleration"] = (float(s_accel[joint]), joint)
-    name, joint, s_min = _winner(fractions)
-    if s_min >= 1.0:
-        return previous + delta, LimitReport("track", 1.0, (), None, None)
-    return previous + s_min * delta, LimitReport("track", s_min, _acted(fractions), name, joint)
+    delta = arrays["desired"] - base
+    fractions = static.fractions(base, delta)
+    fractions["joint_acceleration"] = _box_fraction(base, delta, accel_lo, accel_hi)
+    name, joint, s = _winner(fractions)
+    if s >= 1.0:
+        return base + delta, LimitReport(mode, base, c, 1.0, _acted(recovered), None, None)
+    return base + s * delta, LimitReport(mode, base, c, s, _acted(recovered, fractions),
+                                         name, joint)
 
 
 def _check_shapes(arrays: dict[str, np.ndarray], n: int, dt: float, speed_scale: float) -> None:
@@ -325,7 +365,8 @@ class Limiter:
     """:func:`limit_command` with the previous command and cumulative counts held inside.
 
     Starts from a zero previous command (arm at rest). ``limits`` may be replaced at any time
-    (e.g. lowered); a previous command that no longer fits is decelerated.
+    (e.g. lowered); a previous command that no longer fits is recovered as described in the
+    module docstring.
     """
 
     def __init__(self, limits: LimitSet):
@@ -340,7 +381,7 @@ class Limiter:
                                         speed_scale)
         for name in report.acted:
             self.counts[name] += 1
-        if report.mode == "decelerate":
+        if report.mode == "recover":
             self.counts["previous_infeasible"] += 1
         elif report.mode == "fault":
             self.counts["fault"] += 1
