@@ -136,8 +136,10 @@ class RunRecorder:
             raise ValueError(f"image_format must be None, 'png' or 'jpeg', got {image_format!r}")
         self.typestore = typestore or default_typestore()
         self.split_s, self.split_bytes, self.poll_s = split_s, split_bytes, poll_s
-        self.image_every, self.image_format, self.jpeg_quality = image_every, image_format, jpeg_quality
-        self.bag_dir = self._make_folder(Path(root), scenario, started or datetime.now(timezone.utc))
+        self.image_every, self.image_format = image_every, image_format
+        self.jpeg_quality = jpeg_quality
+        self.bag_dir = self._make_folder(Path(root), scenario,
+                                         started or datetime.now(timezone.utc))
         self.scenario = scenario
         self._topics: dict[str, tuple[str, str]] = {}   # topic -> (msgtype, rihs01)
         self._counts: dict[str, int] = {}               # topic -> messages in completed splits
@@ -180,8 +182,9 @@ class RunRecorder:
         """
         topic = topic if topic.startswith("/") else "/" + topic
         if msgtype in (IMAGE, COMPRESSED_IMAGE):
-            n = self._image_seen.get(topic, 0)
-            self._image_seen[topic] = n + 1
+            with self._lock:
+                n = self._image_seen.get(topic, 0)
+                self._image_seen[topic] = n + 1
             if n % self.image_every:
                 return
         raw = (bytes(data) if isinstance(data, (bytes, bytearray, memoryview))
@@ -202,7 +205,8 @@ class RunRecorder:
                 split.connections[topic] = split.writer.add_connection(
                     topic, msgtype, typestore=self.typestore)
             split.writer.write(split.connections[topic], int(stamp_ns), raw)
-            split.start_ns, split.end_ns = min(split.start_ns, stamp_ns), max(split.end_ns, stamp_ns)
+            split.start_ns = min(split.start_ns, int(stamp_ns))
+            split.end_ns = max(split.end_ns, int(stamp_ns))
             split.count += 1
             split.nbytes += len(raw)
             split.counts[topic] = split.counts.get(topic, 0) + 1
@@ -566,7 +570,8 @@ def load_run(bag: str | Path) -> RunData:
             "width": int(info.width), "height": int(info.height),
             "K": np.asarray(info.k, float).reshape(3, 3), "D": np.asarray(info.d, float),
             "distortion_model": info.distortion_model},
-        robot_description=latest["robot_description"].data if "robot_description" in latest else None,
+        robot_description=(latest["robot_description"].data
+                           if "robot_description" in latest else None),
         params=_read_params(folder / PARAMS_FILE), result=result, skipped=skipped)
 
 
