@@ -54,6 +54,8 @@ SCHEMA: tuple[Param, ...] = (
     # --- robot model ------------------------------------------------------------------------
     _p("robot.urdf_path", str, "", "URDF file; empty: the robot_description parameter, else the "
        "robot_description topic (transient local)"),
+    _p("robot_description", str, "", "URDF XML text, as robot_state_publisher takes it; used "
+       "when robot.urdf_path is empty"),
     _p("robot.base_frame", str, "base_link", "frame the arm Jacobian is expressed in"),
     _p("robot.tool_frame", str, "tool0", "end of the servo chain (flange or tool frame)"),
     _p("robot.camera_frame", str, "camera_optical_frame",
@@ -142,6 +144,8 @@ SCHEMA: tuple[Param, ...] = (
        unit="s", low=0.01, high=10.0, tighten="down"),
     _p("io.camera_time_offset_s", float, 0.0, "added to image stamps (cameras whose stamps lag "
        "the shutter use a negative value)", unit="s", low=-1.0, high=1.0),
+    _p("io.image_rectified", bool, False, "the image topic carries rectified images "
+       "(image_rect): use camera_info's P and no distortion, never undistort twice"),
     _p("io.compressed_image", bool, False, "subscribe to sensor_msgs/CompressedImage"),
     _p("io.publish_overlay", bool, False, "publish an overlay image of detections and errors"),
 )
