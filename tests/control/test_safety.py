@@ -188,9 +188,18 @@ def test_limiter_output_meets_every_limit(case):
         assert report.mode == "recover" and np.all(out == base)
         assert np.any(np.isclose(np.abs(out - prev), limits.acceleration * dt, rtol=1e-9))
         return
-    # out = base + s (desired - base), s in [0, 1]
+    # the target is the desired command scaled into the speed limits (direction kept), and the
+    # scale is the largest: a little more breaks a speed limit
+    c = report.target_scale
+    assert 0.0 <= c <= 1.0
+    target = c * desired
+    assert not violations(target, *args)
+    if c < 1.0:
+        assert violations((c + 1e-6) * desired, *args, tol=0.0)
+    # out = base + s (target - base), s in [0, 1]
     assert 0.0 <= report.scale <= 1.0
-    np.testing.assert_allclose(out - base, report.scale * (desired - base), atol=1e-12)
+    np.testing.assert_allclose(out - base, report.scale * (target - base), atol=1e-12)
+    desired = target
     if report.scale < 1.0:
         # and s is the largest: a little more breaks a limit or the acceleration bound
         more = base + (report.scale + 1e-6) * (desired - base)
@@ -198,16 +207,30 @@ def test_limiter_output_meets_every_limit(case):
         assert report.winner in report.acted
 
 
-def test_direction_kept_for_a_cut_step():
+def test_direction_of_the_desired_command_kept_when_speed_limits_cut_it():
     limits = LimitSet(velocity=[1.0, 1.0, 1.0], acceleration=[20.0, 20.0, 20.0],
                       lower=[-3.0] * 3, upper=[3.0] * 3)
-    # fractions: velocity 0.8 / 2.8 (joint 0) < 1.0 / 2.0 (joint 2); acceleration 2.0 / 2.8
+    # desired (3, 0.5, -2) breaks the velocity box: scaled by 1/3 (joint 0) it fits; from prev
+    # the acceleration bound (2.0 per joint per cycle) allows the whole step to that target
     prev, desired = np.array([0.2, -0.1, 0.0]), np.array([3.0, 0.5, -2.0])
     out, report = limit_command(desired, prev, np.zeros(3), 0.1, limits, *ZERO_JACS)
-    step, wanted = out - prev, desired - prev
-    assert np.linalg.norm(np.cross(step, wanted)) < 1e-12 * np.linalg.norm(wanted)
+    np.testing.assert_allclose(out, desired / 3.0, atol=1e-12)
     assert report.winner == "joint_velocity" and report.winner_joint == 0
-    assert out[0] == pytest.approx(1.0)
+    assert report.target_scale == pytest.approx(1.0 / 3.0)
+
+
+def test_binding_cartesian_limit_does_not_freeze_the_command():
+    """At a binding norm limit the output must turn with the desired command. Stepping from
+    the previous command toward an infeasible desired one would give s ~ 0 on the boundary."""
+    limits = LimitSet(velocity=[5.0, 5.0, 5.0], acceleration=[100.0] * 3, lower=[-3.0] * 3,
+                      upper=[3.0] * 3, angular_max=1.0)
+    angular = np.vstack([np.eye(3)])
+    jacs = (np.zeros((3, 3)), np.zeros((3, 3)), angular)
+    prev = np.array([1.0, 0.0, 0.0])          # on the boundary of the angular ball
+    desired = np.array([0.0, 4.0, 0.0])       # outside it, in another direction
+    out, report = limit_command(desired, prev, np.zeros(3), 0.01, limits, *jacs)
+    np.testing.assert_allclose(out, [0.0, 1.0, 0.0], atol=1e-12)
+    assert report.winner == "angular_speed"
 
 
 # ---------------------------------------------------------------- closed loops, one per limit --

@@ -38,6 +38,14 @@ safety-relevant cause. Every limit with s_c < 1 "acted". In track mode the chang
 acceleration box around the previous command is one of the constraints, each joint changes by
 at most a_i dt: no later clipping step can undo another limit.
 
+The step goes toward a *target*, not toward the desired command itself: the desired command
+scaled by the largest factor in [0, 1] that meets every speed limit (all of them contain 0, so
+the direction of the desired command is kept). Both ends of the step then meet the speed
+limits, so by convexity every point between does, and in practice only the acceleration bound
+cuts the step. Stepping toward an infeasible desired command instead would pin the output to
+the boundary of a binding Cartesian limit (the feasible fraction is ~0 there) while the desired
+direction turns with the image error: the arm would keep moving the old way.
+
 Recovery when the previous command is infeasible
 ------------------------------------------------
 The previous command can leave the set without any fault: a limit or speed_scale was lowered,
@@ -163,7 +171,9 @@ class LimitReport:
     (the previous command was infeasible, see the module docstring) or "fault" (non-finite
     input). ``base``: the command the step started from (rad/s); ``base_scale``: the multiple of
     the previous command it was scaled to (1 in track mode); ``scale``: the fraction s of the
-    step from the base toward the desired command (0 when no step was taken).
+    step from the base toward the target (0 when no step was taken); ``target_scale``: the
+    multiple of the desired command the speed limits allow (the target is
+    ``target_scale * desired``, 1 when the desired command meets them).
     ``acted``: limits that cut the command; ``winner`` (and ``winner_joint`` for per-joint
     limits): the one that set it. ``counts``: cumulative counts (filled by :class:`Limiter`,
     empty from :func:`limit_command`).
@@ -177,6 +187,7 @@ class LimitReport:
     winner: str | None
     winner_joint: int | None
     fault: str | None = None
+    target_scale: float = 1.0
     counts: Mapping[str, int] = field(default_factory=lambda: MappingProxyType({}))
 
 
@@ -338,14 +349,26 @@ def limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point_
                 name, joint, _ = _winner(recovered)
                 return base, LimitReport(mode, base, c, 0.0, _acted(recovered), name, joint)
 
-    delta = arrays["desired"] - base
+    # Scale the desired command into the speed limits first (direction kept: every static set
+    # contains 0), then step toward that target. Stepping toward an infeasible desired command
+    # would freeze the output on the boundary of a binding Cartesian limit (s -> 0 there) while
+    # the desired direction keeps turning: the arm would go on moving the old way.
+    desired = arrays["desired"]
+    scaling = static.fractions(zero, desired)
+    name_d, joint_d, c_d = _winner(scaling)
+    target = desired * min(c_d, 1.0)
+    delta = target - base
     fractions = static.fractions(base, delta)
     fractions["joint_acceleration"] = _box_fraction(base, delta, accel_lo, accel_hi)
     name, joint, s = _winner(fractions)
-    if s >= 1.0:
-        return base + delta, LimitReport(mode, base, c, 1.0, _acted(recovered), None, None)
-    return base + s * delta, LimitReport(mode, base, c, s, _acted(recovered, fractions),
-                                         name, joint)
+    acted = _acted(recovered, scaling, fractions)
+    if c_d < 1.0 and (s >= 1.0 or c_d <= s):
+        name, joint = name_d, joint_d
+    elif s >= 1.0:
+        name, joint = None, None
+    s = min(s, 1.0)
+    return base + s * delta, LimitReport(mode, base, c, s, acted, name, joint,
+                                         target_scale=min(c_d, 1.0))
 
 
 def _check_shapes(arrays: dict[str, np.ndarray], n: int, dt: float, speed_scale: float) -> None:
