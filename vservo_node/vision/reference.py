@@ -133,6 +133,19 @@ def check_target(reference: Reference, target: Target):
                              f"target {target.name!r} does not have")
 
 
+def identify(target: Target, detection: Detection) -> MatchResult:
+    """Which target feature each detection is, from the target file alone (no taught view):
+    dots by their printed colours (and layout, if given), others by key. ``ref_points`` of
+    the result are target-frame metres (x, y), or zeros where the target gives no positions.
+    """
+    geometry = (target.model_points()[:, :2] if target.has_geometry
+                else np.zeros((len(target.keys()), 2)))
+    if target.kind == "dots":
+        return match_dots(detection, target.keys(), target.nominal_lab(),
+                          geometry if target.has_geometry else None)
+    return match_by_key(detection, target.keys(), geometry)
+
+
 def capture_reference(name: str, target: Target, image: np.ndarray,
                       camera: CameraModel | None = None, depths=None,
                       require_all: bool = True) -> Reference:
@@ -147,15 +160,8 @@ def capture_reference(name: str, target: Target, image: np.ndarray,
         require_all: refuse the view unless every feature of the target is seen.
     """
     _check_name(name)
-    detector = make_detector(target)
-    detection = detector.detect(image)
-    if target.kind == "dots":
-        geometry = target.model_points()[:, :2] if target.has_geometry else None
-        match = match_dots(detection, target.keys(), target.nominal_lab(), geometry)
-    else:
-        geometry = target.model_points()[:, :2] if target.has_geometry else np.zeros(
-            (len(target.keys()), 2))
-        match = match_by_key(detection, target.keys(), geometry)
+    detection = make_detector(target).detect(image)
+    match = identify(target, detection)
     if not match.ok or (require_all and match.missing):
         raise BadReferenceError(f"cannot teach {name!r}: {len(match)} of {len(target.keys())} "
                              f"features of {target.name!r} identified, missing "
