@@ -159,3 +159,55 @@ def limits_for(arm, *, velocity_scale: float = 0.5, acceleration=2.0, position_m
                     lower=arm.lower + position_margin, upper=arm.upper - position_margin,
                     velocity_scale=velocity_scale, tool_linear_max=tool_linear_max,
                     camera_linear_max=camera_linear_max, angular_max=angular_max)
+
+
+@dataclass(frozen=True)
+class PointCase:
+    """A core closed-loop case: the camera starts offset from its taught pose above four points.
+
+    Offsets are in the taught camera frame: ``rotation_deg`` about the optical axis (z),
+    ``tilt_deg`` about x, ``translation_m`` (x, y, z). The target is a centred square of
+    half-side ``half_side_m`` at ``depth_m`` in front of the taught camera. Invented demo data.
+    """
+
+    robot: str = "vs7_bench"
+    rotation_deg: float = 0.0
+    translation_m: tuple = (0.0, 0.0, 0.0)
+    tilt_deg: float = 0.0
+    estimate: str = "blended"
+    depth: str = "true"        # true: true per-point depth each image; taught: goal depths
+    half_side_m: float = 0.05
+    depth_m: float = 0.40
+    tolerance_px: float = 0.05
+    duration_s: float = 15.0
+    rate_hz: float = 100.0
+
+
+def run_point_case(case: PointCase, record: bool = False) -> EpisodeResult:
+    """Build arm, camera and scene for ``case``, solve the start pose by IK, run the episode."""
+    from vservo_node.control.kinematics import load_robot
+    from vservo_node.sim.ik import solve_camera_pose
+    from vservo_node.vision.camera import CameraModel
+
+    robot = load_robot(case.robot)
+    arm = robot.arm
+    camera = CameraModel.pinhole(640, 480, 600.0, 600.0, 319.5, 239.5)
+    T_goal = arm.camera_pose(robot.home)
+    h = case.half_side_m
+    square = np.array([[-h, -h], [h, -h], [h, h], [-h, h]])
+    points_cam = np.column_stack([square, np.full(4, case.depth_m)])
+    points_base = (T_goal[:3, :3] @ points_cam.T).T + T_goal[:3, 3]
+    scene = PointScene(points_base, camera, arm)
+    offset = frames.transform(
+        frames.rpy_to_matrix([math.radians(case.tilt_deg), 0.0,
+                              math.radians(case.rotation_deg)]), case.translation_m)
+    q0 = solve_camera_pose(arm, T_goal @ offset, robot.home, robot.home)
+    settings = ServoSettings(interaction_estimate=case.estimate,
+                             tolerance_px=case.tolerance_px, dwell_s=0.2,
+                             max_run_s=case.duration_s,
+                             depth_source="observed" if case.depth == "true" else "taught")
+    servo = Servo(arm, settings, limits_for(arm))
+    servo.set_reference(scene.taught_view(robot.home))
+    return run_episode(servo, scene.sense(depth="true" if case.depth == "true" else "none"),
+                       q0, T_goal, arm, rate_hz=case.rate_hz, duration_s=case.duration_s,
+                       record=record)
