@@ -289,11 +289,15 @@ def load_reference(path, target: Target | None = None) -> Reference:
         if not all(present):
             fail(f"'{field}' is given for some features but not all")
         try:
-            values = np.array([f[field] for f in features], dtype=float).reshape(len(features), -1)
+            values = [np.array(f[field], dtype=float).reshape(-1) for f in features]
         except (ValueError, TypeError):
-            fail(f"'{field}' must be numbers")
-        if values.shape[1] != width or not np.isfinite(values).all():
-            fail(f"'{field}' must be {width} finite number(s) per feature")
+            values = None
+        bad = [i for i, v in enumerate(values or []) if v.size != width
+               or not np.isfinite(v).all()]
+        if values is None or bad:
+            fail(f"'{field}' must be {width} finite number(s) per feature; wrong in features "
+                 f"{bad if values is not None else 'some'}")
+        values = np.array(values)
         return values if width > 1 else values.ravel()
 
     if not all(isinstance(f, dict) and isinstance(f.get("key"), list) for f in features):
