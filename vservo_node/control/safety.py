@@ -283,7 +283,8 @@ def _decelerated(previous: np.ndarray, accel: np.ndarray, dt: float) -> float:
 
 
 def _winner(fractions: Fractions) -> tuple[str, int | None, float]:
-    name = min(LIMITS, key=lambda k: fractions.get(k, (np.inf, None))[0])  # first on ties
+    name = min((k for k in LIMITS if k in fractions),
+               key=lambda k: fractions[k][0])  # first on ties
     value, joint = fractions[name]
     return name, joint, value
 
@@ -358,8 +359,10 @@ def limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point_
     name_d, joint_d, c_d = _winner(scaling)
     target = desired * min(c_d, 1.0)
     delta = target - base
-    fractions = static.fractions(base, delta)
-    fractions["joint_acceleration"] = _box_fraction(base, delta, accel_lo, accel_hi)
+    # base and target both meet the speed limits, so (convexity) every point between does:
+    # only the acceleration bound can cut the step. Not re-testing the speed limits along it
+    # also keeps round-off in those tests from cutting a step that is feasible.
+    fractions = {"joint_acceleration": _box_fraction(base, delta, accel_lo, accel_hi)}
     name, joint, s = _winner(fractions)
     acted = _acted(recovered, scaling, fractions)
     if c_d < 1.0 and (s >= 1.0 or c_d <= s):
