@@ -1,0 +1,83 @@
+"""The parameter schema: validation, live-update rules, the offline check and the README table."""
+import textwrap
+
+import pytest
+
+from vservo_node import params
+from vservo_node.cli import main
+
+
+def write(tmp_path, body):
+    path = tmp_path / "p.yaml"
+    path.write_text(textwrap.dedent(body))
+    return path
+
+
+def test_defaults_are_valid_once_the_required_acceleration_is_given():
+    assert not params.validate({}).ok          # joint acceleration has no safe default
+    result = params.validate({"limits.joint_acceleration": [2.0]})
+    assert result.ok, result.errors
+
+
+@pytest.mark.parametrize("name,value,fragment", [
+    ("control.gain_near", -1.0, "outside"),
+    ("control.interaction_estimate", "mean", "not one of"),
+    ("limits.tool_linear_speed", 0.3, "outside"),          # above 0.25 m/s (ISO 10218-1 ceiling)
+    ("robot.hand_eye", [0.0, 0.0, 0.1], "expected 0 or 7"),
+    ("limits.joint_acceleration", [2.0, -1.0], "> 0"),
+    ("control.min_features", 2.5, "not an integer"),
+])
+def test_invalid_values_are_refused_with_the_reason(name, value, fragment):
+    result = params.validate({"limits.joint_acceleration": [2.0], name: value})
+    assert not result.ok and any(fragment in e for e in result.errors), result.errors
+
+
+def test_unknown_name_suggests_the_known_one():
+    result = params.validate({"limits.joint_acceleration": [2.0], "gain_far": 0.2})
+    assert any("did you mean control.gain_far" in e for e in result.errors)
+
+
+def test_delay_bound_is_enforced():
+    # 0.3 bound (common practice, no source): 4 1/s x (0.05 + 1/30) s = 0.333 >= 0.3
+    result = params.validate({"limits.joint_acceleration": [2.0], "control.gain_near": 4.0,
+                              "control.loop_delay_s": 0.05, "io.camera_rate_hz": 30.0})
+    assert any("loop delay" in e for e in result.errors)
+    ok = params.validate({"limits.joint_acceleration": [2.0], "control.gain_near": 3.0,
+                          "control.loop_delay_s": 0.05, "io.camera_rate_hz": 30.0})
+    assert ok.ok   # 3 x 0.0833 = 0.25
+
+
+def test_limits_only_tighten_while_enabled():
+    assert params.check_change("limits.tool_linear_speed", 0.10, 0.05, True) is None
+    assert "only be lowered" in params.check_change("limits.tool_linear_speed", 0.10, 0.2, True)
+    assert params.check_change("limits.tool_linear_speed", 0.10, 0.2, False) is None
+    assert "only be raised" in params.check_change("limits.min_camera_distance_m", 0.1, 0.05, True)
+    assert "outside" in params.check_change("control.tolerance_px", 0.5, -1.0, False)
+
+
+def test_check_command_on_files(tmp_path, capsys):
+    good = write(tmp_path, """
+        vservo:
+          ros__parameters:
+            limits:
+              joint_acceleration: [2.0]
+            control:
+              gain_near: 0.8
+    """)
+    assert main(["check", str(good)]) == 0
+    assert "ok:" in capsys.readouterr().out
+    bad = write(tmp_path, """
+        /**:
+          ros__parameters:
+            control: {gain_near: 20.0}
+    """)
+    assert main(["check", str(bad)]) == 1
+    out = capsys.readouterr().out
+    assert "control.gain_near" in out and "limits.joint_acceleration: required" in out
+
+
+def test_readme_table_matches_the_schema():
+    from pathlib import Path
+    readme = (Path(__file__).resolve().parent.parent / "README.md").read_text()
+    assert params.markdown_table() in readme, "README parameter table is stale: regenerate it " \
+        "with `.venv/bin/python -c 'from vservo_node import params; print(params.markdown_table())'`"
