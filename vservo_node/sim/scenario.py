@@ -213,10 +213,11 @@ def _joints(r: _Reader, value, entry, arm: ArmModel) -> np.ndarray:
         q = arm.q_from_mapping({k: r.number(v, f"{entry}.{k}") for k, v in value.items()})
     except ValueError as exc:
         r.fail(entry, str(exc))
-    outside = [n for n, v, lo, hi in zip(arm.joint_names, q, arm.lower, arm.upper)
+    outside = [f"{n}={v:g} not in [{lo:g}, {hi:g}]"
+               for n, v, lo, hi in zip(arm.joint_names, q, arm.lower, arm.upper)
                if not lo <= v <= hi]
     if outside:
-        r.fail(entry, f"joint(s) {outside} outside their URDF limits")
+        r.fail(entry, f"outside the URDF joint limits (rad): {'; '.join(outside)}")
     return q
 
 
