@@ -83,10 +83,21 @@ def _size(image):
     return (image.shape[1], image.shape[0])
 
 
-def _clip_rect(rect, size):
-    x0, y0, x1, y1 = rect
-    return (max(0, int(x0)), max(0, int(y0)), min(size[0], int(np.ceil(x1))),
-            min(size[1], int(np.ceil(y1))))
+def _window(image, rect, min_side=4):
+    """(view, x0, y0) of ``image`` inside rect (x0, y0, x1, y1) clipped to the image, or None
+    if less than ``min_side`` pixels of it lie in the image."""
+    h, w = image.shape[:2]
+    x0, y0 = max(0, int(rect[0])), max(0, int(rect[1]))
+    x1, y1 = min(w, int(np.ceil(rect[2]))), min(h, int(np.ceil(rect[3])))
+    if x1 - x0 < min_side or y1 - y0 < min_side:
+        return None
+    return image[y0:y1, x0:x1], x0, y0
+
+
+def _search_area(grey, windows):
+    """(view, x0, y0): the full image, or its part inside the single window given; None
+    when the window lies outside the image."""
+    return (grey, 0, 0) if windows is None else _window(grey, windows[0][1], min_side=16)
 
 
 # ============================================================================ dots
@@ -211,10 +222,14 @@ class DotDetector:
                     found.append((("blob", len(found)),) + blob)
         else:
             for key, rect in windows:
-                x0, y0, x1, y1 = _clip_rect(rect, _size(image))
-                sub = image[y0:y1, x0:x1]
+                view = _window(image, rect)
+                if view is None:
+                    rejected["window"] = rejected.get("window", 0) + 1
+                    continue
+                sub, x0, y0 = view
                 score, n, labels, stats = self._components(sub, False)
-                centre = np.array([(x1 - x0 - 1) / 2, (y1 - y0 - 1) / 2])
+                centre = np.array([(rect[0] + rect[2] - 1) / 2 - x0,
+                                   (rect[1] + rect[3] - 1) / 2 - y0])
                 best = None
                 for i in range(1, n):
                     blob, _ = self._measure(sub, score, labels, stats, i, max_area)
@@ -270,12 +285,11 @@ class MarkerDetector:
     def detect(self, image: np.ndarray, windows=None) -> Detection:
         """Markers in the full image, or in the single window ``[(None, (x0, y0, x1, y1))]``."""
         t0 = time.perf_counter()
-        grey = to_mono8(_colour_image(image, allow16=True))
-        x0 = y0 = 0
-        if windows is not None:
-            x0, y0, x1, y1 = _clip_rect(windows[0][1], _size(grey))
-            grey = grey[y0:y1, x0:x1]
-        corners, ids, _ = self._aruco.detectMarkers(grey)
+        area = _search_area(to_mono8(_colour_image(image, allow16=True)), windows)
+        corners, ids, x0, y0 = (), None, 0, 0
+        if area is not None:
+            grey, x0, y0 = area
+            corners, ids, _ = self._aruco.detectMarkers(grey)
         ids = [] if ids is None else ids.ravel().tolist()
         seen, keys, points = set(), [], []
         for marker_id, quad in zip(ids, corners):
@@ -420,12 +434,11 @@ class TexturedDetector:
     def detect(self, image: np.ndarray, windows=None) -> Detection:
         """The servo points in the full image, or in the window ``[(None, rect)]``."""
         t0 = time.perf_counter()
-        grey = to_mono8(_colour_image(image))
-        x0 = y0 = 0
-        if windows is not None:
-            x0, y0, x1, y1 = _clip_rect(windows[0][1], _size(grey))
-            grey = grey[y0:y1, x0:x1]
-        kps, des = self._orb.detectAndCompute(grey, None)
+        area = _search_area(to_mono8(_colour_image(image)), windows)
+        kps, des, x0, y0 = (), None, 0, 0
+        if area is not None:
+            grey, x0, y0 = area
+            kps, des = self._orb.detectAndCompute(grey, None)
         quality = {"n_keypoints": len(kps), "n_matches": 0, "n_inliers": 0,
                    "inlier_ratio": 0.0, "reprojection_rms_px": float("nan")}
         empty = Detection("textured", np.zeros((0, 2)), [], _size(image), quality=quality,
