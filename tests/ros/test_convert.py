@@ -29,7 +29,7 @@ def _shares(view, msg):
     ("32FC1", (6, 9), np.float32)])
 def test_image_round_trip_is_exact_and_zero_copy(encoding, shape, dtype):
     pixels = (RNG.random(shape) * 200).astype(dtype)
-    msg = convert.numpy_to_image(pixels, encoding, stamp_s=12.5, frame_id="cam")
+    msg = convert.numpy_to_image(pixels, encoding, stamp=12.5, frame_id="cam")
     # sensor_msgs/msg/Image.msg: step is the full row length in bytes.
     assert msg.step == shape[1] * (shape[2] if len(shape) == 3 else 1) * np.dtype(dtype).itemsize
     assert isinstance(msg.data, array.array) and len(msg.data) == msg.step * msg.height
@@ -80,7 +80,7 @@ def test_raw_cdr_image_matches_rclpy_and_rosbags(frame_id):
     raw subscription gets) and rosbags' pure-Python CDR (rosbags.typesys serialize_cdr).
     Frame ids of 0, 1 and 20 characters move the alignment of the fields after them."""
     pixels = RNG.integers(0, 255, (7, 11, 3), dtype=np.uint8)
-    msg = convert.numpy_to_image(pixels, "rgb8", stamp_s=3.25, frame_id=frame_id)
+    msg = convert.numpy_to_image(pixels, "rgb8", stamp=3.25, frame_id=frame_id)
     wire = serialize_message(msg)
     store = get_typestore(Stores.ROS2_KILTED)
     T = store.types
@@ -122,7 +122,7 @@ def test_raw_cdr_big_endian_and_refusals():
 
 def test_compressed_image_passes_bytes_through():
     payload = bytes(RNG.integers(0, 255, 300, dtype=np.uint8))
-    msg = convert.compressed_image(payload, "jpeg", stamp_s=1.0, frame_id="cam")
+    msg = convert.compressed_image(payload, "jpeg", stamp=1.0, frame_id="cam")
     fmt, view = convert.compressed_image_bytes(msg)
     assert fmt == "jpeg" and view.tobytes() == payload
     assert np.shares_memory(view, np.frombuffer(msg.data, np.uint8))
@@ -132,7 +132,7 @@ def test_compressed_image_passes_bytes_through():
 def test_camera_info_round_trip():
     model = CameraModel(640, 480, [[600.0, 0, 319.5], [0, 602.0, 241.0], [0, 0, 1]],
                         [-0.2, 0.05, 0.001, -0.002, 0.01], "plumb_bob")
-    info = convert.model_to_camera_info(model, stamp_s=2.0, frame_id="cam_optical")
+    info = convert.model_to_camera_info(model, stamp=2.0, frame_id="cam_optical")
     assert isinstance(info, CameraInfo) and len(info.k) == 9 and len(info.p) == 12
     back = convert.camera_info_to_model(info)
     assert (back.width, back.height, back.distortion_model) == (640, 480, "plumb_bob")
@@ -171,7 +171,7 @@ def test_joint_state_missing_names_and_short_fields_are_refused():
 
 def test_joint_state_build_round_trip():
     q, dq = RNG.normal(size=6), RNG.normal(size=6)
-    msg = convert.joint_state(NAMES, q, dq, stamp_s=4.5)
+    msg = convert.joint_state(NAMES, q, dq, stamp=4.5)
     q2, dq2 = convert.joint_state_to_arrays(msg, list(reversed(NAMES)))
     np.testing.assert_array_equal(q2, q[::-1])
     np.testing.assert_array_equal(dq2, dq[::-1])
@@ -213,7 +213,7 @@ def test_pose_round_trip_and_quaternion_order_against_scipy():
     rot = Rotation.from_rotvec([0.3, -1.1, 2.0])
     T = np.eye(4)
     T[:3, :3], T[:3, 3] = rot.as_matrix(), [0.4, -0.2, 1.3]
-    msg = convert.matrix_to_pose(T, stamp_s=7.0, frame_id="base")
+    msg = convert.matrix_to_pose(T, stamp=7.0, frame_id="base")
     o = msg.pose.orientation
     # SciPy Rotation.as_quat() is scalar-last (x, y, z, w), as geometry_msgs/Quaternion.
     q_ref = rot.as_quat()
@@ -246,3 +246,15 @@ def test_time_refuses_negative_and_nan():
         with pytest.raises(ValueError, match="finite number of seconds >= 0"):
             convert.sec_to_time(bad)
     assert convert.time_to_sec(Time(sec=2, nanosec=1)) == 2.000000001
+
+
+def test_exact_nanosecond_stamps():
+    # A wall-clock float keeps ~0.24 us at 1.7e9 s (IEEE 754 binary64, 52-bit fraction);
+    # integer nanoseconds go through exactly.
+    ns = 1_700_000_000_123_456_789
+    t = convert.ns_to_time(ns)
+    assert (t.sec, t.nanosec) == (1_700_000_000, 123_456_789)
+    msg = convert.joint_state(NAMES, np.zeros(6), stamp=t)
+    assert msg.header.stamp == t
+    with pytest.raises(ValueError, match=">= 0"):
+        convert.ns_to_time(-1)

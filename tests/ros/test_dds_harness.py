@@ -57,7 +57,7 @@ PUBLISHER = textwrap.dedent("""
     frame = np.full((480, 640, 3), 7, np.uint8)
     for i in range(20):
         frame[0, 0, 0] = i
-        pub.publish(convert.numpy_to_image(frame, "rgb8", stamp_s=float(i)))
+        pub.publish(convert.numpy_to_image(frame, "rgb8", stamp=float(i)))
         time.sleep(1 / 30)
     time.sleep(1.0)
 """)

@@ -66,9 +66,19 @@ def _split_ns(seconds, what):
     return whole + nanosec // _NS_PER_S, nanosec % _NS_PER_S
 
 
-def header(stamp_s: float, frame_id: str = "") -> Header:
-    """std_msgs/Header stamped ``stamp_s`` seconds in ``frame_id``."""
-    return Header(stamp=sec_to_time(stamp_s), frame_id=frame_id)
+def ns_to_time(nanoseconds: int) -> Time:
+    """builtin_interfaces/Time of an integer count of nanoseconds (>= 0), exactly."""
+    if nanoseconds < 0:
+        raise ValueError(f"time must be >= 0, got {nanoseconds} ns")
+    sec, nanosec = divmod(int(nanoseconds), _NS_PER_S)
+    return Time(sec=sec, nanosec=nanosec)
+
+
+def header(stamp: float | Time, frame_id: str = "") -> Header:
+    """std_msgs/Header stamped ``stamp`` (seconds, or a builtin_interfaces/Time taken as is:
+    wall-clock seconds as a float keep only ~0.2 us) in ``frame_id``."""
+    return Header(stamp=stamp if isinstance(stamp, Time) else sec_to_time(stamp),
+                  frame_id=frame_id)
 
 
 # ----------------------------------------------------------------------------- images
@@ -101,7 +111,7 @@ def image_to_numpy(msg) -> np.ndarray:
     return np.ndarray(shape, dtype=dtype, buffer=buffer, strides=strides)
 
 
-def numpy_to_image(pixels: np.ndarray, encoding: str, stamp_s: float = 0.0,
+def numpy_to_image(pixels: np.ndarray, encoding: str, stamp: float | Time = 0.0,
                    frame_id: str = "") -> Image:
     """sensor_msgs/Image of ``pixels`` ((h, w) or (h, w, c), dtype per ``encoding``).
 
@@ -121,7 +131,7 @@ def numpy_to_image(pixels: np.ndarray, encoding: str, stamp_s: float = 0.0,
     pixels = np.ascontiguousarray(pixels, dtype=np.dtype(dtype).newbyteorder("<"))
     data = array.array("B")
     data.frombytes(pixels.reshape(-1).view(np.uint8))  # one memcpy, no per-element work
-    msg = Image(header=header(stamp_s, frame_id), height=pixels.shape[0],
+    msg = Image(header=header(stamp, frame_id), height=pixels.shape[0],
                 width=pixels.shape[1], encoding=encoding, is_bigendian=0,
                 step=pixels.shape[1] * channels * pixels.itemsize)
     msg.data = data
@@ -199,13 +209,13 @@ def compressed_image_bytes(msg: CompressedImage) -> tuple[str, np.ndarray]:
     return msg.format, np.frombuffer(msg.data, dtype=np.uint8)
 
 
-def compressed_image(encoded, fmt: str, stamp_s: float = 0.0,
+def compressed_image(encoded, fmt: str, stamp: float | Time = 0.0,
                      frame_id: str = "") -> CompressedImage:
     """sensor_msgs/CompressedImage carrying the encoded bytes ``encoded`` (``fmt``: 'jpeg',
     'png', ...) as they are (one copy into the message)."""
     data = array.array("B")
     data.frombytes(memoryview(encoded).cast("B"))
-    msg = CompressedImage(header=header(stamp_s, frame_id), format=fmt)
+    msg = CompressedImage(header=header(stamp, frame_id), format=fmt)
     msg.data = data
     return msg
 
@@ -218,10 +228,10 @@ def camera_info_to_model(msg: CameraInfo, rectified: bool = False) -> CameraMode
                                         rectified=rectified)
 
 
-def model_to_camera_info(model: CameraModel, stamp_s: float = 0.0,
+def model_to_camera_info(model: CameraModel, stamp: float | Time = 0.0,
                          frame_id: str = "") -> CameraInfo:
     """CameraInfo of a CameraModel (no binning, full-image region of interest)."""
-    return CameraInfo(header=header(stamp_s, frame_id), width=model.width,
+    return CameraInfo(header=header(stamp, frame_id), width=model.width,
                       height=model.height, distortion_model=model.distortion_model,
                       d=model.D.tolist(), k=model.K.ravel().tolist(),
                       r=model.R.ravel().tolist(), p=model.P.ravel().tolist())
@@ -258,11 +268,11 @@ def joint_state_to_arrays(msg: JointState, joint_names) -> tuple[np.ndarray, np.
     return q, _field_by_name(msg.velocity, idx, n, "velocities", "joint state")
 
 
-def joint_state(joint_names, q, dq=None, stamp_s: float = 0.0, frame_id: str = "") -> JointState:
+def joint_state(joint_names, q, dq=None, stamp: float | Time = 0.0, frame_id: str = "") -> JointState:
     """sensor_msgs/JointState of positions ``q`` (and velocities ``dq``) in ``joint_names``."""
     names = list(joint_names)
     q = _vector(q, len(names), "q")
-    msg = JointState(header=header(stamp_s, frame_id), name=names, position=q.tolist())
+    msg = JointState(header=header(stamp, frame_id), name=names, position=q.tolist())
     if dq is not None:
         msg.velocity = _vector(dq, len(names), "dq").tolist()
     return msg
@@ -297,7 +307,7 @@ def joint_array_values(msg: Float64MultiArray, joint_names) -> np.ndarray:
 
 
 def trajectory_point(joint_names, positions=None, velocities=None, time_from_start_s=0.0,
-                     stamp_s: float = 0.0) -> JointTrajectory:
+                     stamp: float | Time = 0.0) -> JointTrajectory:
     """trajectory_msgs/JointTrajectory with one point (positions and/or velocities)."""
     names = list(joint_names)
     if positions is None and velocities is None:
@@ -307,7 +317,7 @@ def trajectory_point(joint_names, positions=None, velocities=None, time_from_sta
         point.positions = _vector(positions, len(names), "positions").tolist()
     if velocities is not None:
         point.velocities = _vector(velocities, len(names), "velocities").tolist()
-    return JointTrajectory(header=header(stamp_s), joint_names=names, points=[point])
+    return JointTrajectory(header=header(stamp), joint_names=names, points=[point])
 
 
 def trajectory_point_values(msg: JointTrajectory, joint_names):
@@ -333,12 +343,12 @@ def pose_to_matrix(msg: PoseStamped) -> np.ndarray:
     return transform_from_xyz_quat([p.x, p.y, p.z], [o.x, o.y, o.z, o.w])
 
 
-def matrix_to_pose(T, stamp_s: float = 0.0, frame_id: str = "") -> PoseStamped:
+def matrix_to_pose(T, stamp: float | Time = 0.0, frame_id: str = "") -> PoseStamped:
     """PoseStamped of a 4x4 rigid transform ``T`` (metres), quaternion with w >= 0."""
     T = np.asarray(T, dtype=float)
     if T.shape != (4, 4):
         raise ValueError(f"pose must be a 4x4 transform, got shape {T.shape}")
-    msg = PoseStamped(header=header(stamp_s, frame_id))
+    msg = PoseStamped(header=header(stamp, frame_id))
     msg.pose.position.x, msg.pose.position.y, msg.pose.position.z = T[:3, 3].tolist()
     o = msg.pose.orientation
     o.x, o.y, o.z, o.w = matrix_to_quat(T[:3, :3]).tolist()
@@ -351,10 +361,10 @@ def twist_to_vector(msg: TwistStamped) -> np.ndarray:
     return np.array([v.x, v.y, v.z, w.x, w.y, w.z])
 
 
-def vector_to_twist(twist, stamp_s: float = 0.0, frame_id: str = "") -> TwistStamped:
+def vector_to_twist(twist, stamp: float | Time = 0.0, frame_id: str = "") -> TwistStamped:
     """TwistStamped of a twist ``[v; w]`` (6,), m/s and rad/s, expressed in ``frame_id``."""
     t = _vector(twist, 6, "twist [v; w]")
-    msg = TwistStamped(header=header(stamp_s, frame_id))
+    msg = TwistStamped(header=header(stamp, frame_id))
     v, w = msg.twist.linear, msg.twist.angular
     v.x, v.y, v.z, w.x, w.y, w.z = t.tolist()
     return msg

@@ -1,0 +1,177 @@
+"""The simulated-cell node (vservo_sim) as a separate process, over DDS, network-isolated.
+
+Free-running cell (real time, wall-clock stamps): rates, stamp consistency, velocity and
+trajectory commands, command timeout, refusals (lock-step mode: test_sim_node_lock_step.py).
+Tolerances on rates are common practice for a loaded 2-core machine (no source).
+"""
+import time
+
+import numpy as np
+import pytest
+from geometry_msgs.msg import PoseStamped
+from std_msgs.msg import Float64MultiArray, String
+from trajectory_msgs.msg import JointTrajectory
+
+from sim_helpers import (COMMAND_TIMEOUT, JOINT_STATE_RATE, Collector, config_scenario,
+                         start_sim, stamp_ns, stop_sim)
+from vservo_node import interface
+from vservo_node.ros import convert, harness, qos
+
+@pytest.fixture(scope="module")
+def scenario():
+    return config_scenario()
+
+
+@pytest.fixture(scope="module")
+def free_sim(ros_node):
+    proc = start_sim(ros_node)
+    collector = Collector(ros_node)
+    harness.spin_until(ros_node, lambda: len(collector.joints) > 0, 20.0,
+                       "a first joint state", [proc])
+    yield proc, collector
+    collector.close()
+    stop_sim(proc)
+
+
+def _names(collector):
+    return list(collector.joints[-1][1].name)
+
+
+def _publish_for(node, publisher, msg, seconds, rate, collector, proc):
+    """Publish ``msg`` at ``rate`` Hz for ``seconds`` while spinning the collector."""
+    end = time.monotonic() + seconds
+    while time.monotonic() < end:
+        publisher.publish(msg)
+        collector.spin_for(1.0 / rate, [proc])
+
+
+# ----------------------------------------------------------------------------- free-running
+def test_rates_stamps_and_frames(free_sim, scenario, ros_node):
+    proc, col = free_sim
+    col.spin_for(0.5, [proc])  # drain what queued up while nobody spun
+    col.clear()
+    col.spin_for(2.0, [proc])
+    camera_rate = scenario.fps
+    for label, got, want in (("joint states", col.joints, JOINT_STATE_RATE),
+                             ("images", col.images, camera_rate),
+                             ("camera infos", col.infos, camera_rate)):
+        rate = (len(got) - 1) / (got[-1][0] - got[0][0])  # by arrival time
+        assert abs(rate - want) <= 0.2 * want, f"{label}: {rate:.1f} Hz, expected {want:g} " \
+                                               "Hz +- 20 %"
+    # Joint states sit on the 1/250 s tick grid; each image stamp (exposure time) equals the
+    # stamp of its camera info and of a joint state (the tick it was exposed on).
+    joint_stamps = {stamp_ns(m) for _, m in col.joints}
+    info_by_stamp = {stamp_ns(m): m for _, m in col.infos}
+    ticks = np.diff(sorted(joint_stamps))
+    assert np.all(ticks % round(1e9 / JOINT_STATE_RATE) == 0)
+    inside = [meta["stamp_ns"] for _, meta in col.images
+              if min(joint_stamps) <= meta["stamp_ns"] <= max(joint_stamps)]
+    assert len(inside) >= len(col.images) - 2
+    assert set(inside) <= joint_stamps, "an image without the joint state of its instant"
+    for _, meta in col.images:
+        info = info_by_stamp.get(meta["stamp_ns"])
+        if info is None:
+            continue
+        assert meta["frame_id"] == info.header.frame_id != ""
+        assert meta["encoding"] == "rgb8"
+        assert meta["shape"] == (info.height, info.width, 3)
+        assert meta["mean"] > 0  # something was rendered
+    # Frames are exposed on the tick nearest each camera period: each interval is within one
+    # tick of the period, and the mean interval is the period.
+    frame_s = np.array([meta["stamp_ns"] for _, meta in col.images]) * 1e-9
+    assert np.all(np.abs(np.diff(frame_s) - 1 / camera_rate) <= 1 / JOINT_STATE_RATE + 1e-9)
+    mean_period = (frame_s[-1] - frame_s[0]) / (len(frame_s) - 1)
+    assert abs(mean_period - 1 / camera_rate) <= 1 / JOINT_STATE_RATE / (len(frame_s) - 1)
+
+
+def test_latched_description_and_taught_pose(free_sim, ros_node):
+    proc, _ = free_sim
+    urdf = harness.wait_for_message(ros_node, interface.TOPIC_ROBOT_DESCRIPTION, String,
+                                    qos.LATCHED, 10.0, processes=[proc])
+    assert "<robot" in urdf.data
+    taught = harness.wait_for_message(ros_node, interface.TOPIC_SIM_TAUGHT_POSE, PoseStamped,
+                                      qos.LATCHED, 10.0, processes=[proc])
+    T = convert.pose_to_matrix(taught)
+    np.testing.assert_allclose(T[:3, :3] @ T[:3, :3].T, np.eye(3), atol=1e-9)
+    truth = harness.wait_for_message(ros_node, interface.TOPIC_SIM_CAMERA_POSE_TRUTH,
+                                     PoseStamped, qos.STATE, 10.0, processes=[proc])
+    assert truth.header.frame_id == taught.header.frame_id != ""
+
+
+def test_follows_velocity_then_brakes_on_timeout(free_sim, ros_node):
+    proc, col = free_sim
+    names = _names(col)
+    dq = np.linspace(0.08, -0.08, len(names))  # rad/s (or m/s), small and safe
+    pub = ros_node.create_publisher(Float64MultiArray, interface.TOPIC_JOINT_VELOCITY_CMD,
+                                    qos.COMMANDS)
+    harness.wait_for_subscriber(ros_node, interface.TOPIC_JOINT_VELOCITY_CMD, 10.0, [proc])
+    col.clear()
+    _publish_for(ros_node, pub, convert.joint_array(dq, names), 1.2, 50.0, col, proc)
+    # Steady part: the last 0.6 s of commanding. Reported velocity equals the command and
+    # positions advance by dq * elapsed simulated time (stamps).
+    steady = [m for t, m in col.joints if t > col.joints[-1][0] - 0.6]
+    q_a, v_a = convert.joint_state_to_arrays(steady[0], names)
+    q_b, v_b = convert.joint_state_to_arrays(steady[-1], names)
+    elapsed = (stamp_ns(steady[-1]) - stamp_ns(steady[0])) * 1e-9
+    assert elapsed > 0.4
+    np.testing.assert_allclose(v_b, dq, atol=1e-3)
+    np.testing.assert_allclose(q_b - q_a, dq * elapsed, atol=0.03 * np.abs(dq).max() * elapsed
+                               + 1e-4)
+    # Stop commanding: after the timeout the cell brakes to rest.
+    col.clear()
+    col.spin_for(COMMAND_TIMEOUT + 0.6, [proc])
+    _, v_end = convert.joint_state_to_arrays(col.joints[-1][1], names)
+    np.testing.assert_allclose(v_end, 0.0, atol=1e-6)
+    ros_node.destroy_publisher(pub)
+
+
+def test_follows_single_point_trajectory(free_sim, ros_node):
+    proc, col = free_sim
+    names = _names(col)
+    q0, _ = col.last_q(names)
+    target = q0 + np.where(np.arange(len(names)) % 2 == 0, 0.03, -0.03)
+    pub = ros_node.create_publisher(JointTrajectory,
+                                    interface.TOPIC_JOINT_TRAJECTORY_CMD, qos.COMMANDS)
+    harness.wait_for_subscriber(ros_node, interface.TOPIC_JOINT_TRAJECTORY_CMD, 10.0, [proc])
+    shuffled = names[::-1]  # joints by name: the order in the message must not matter
+    msg = convert.trajectory_point(shuffled, positions=target[::-1])
+    _publish_for(ros_node, pub, msg, 1.5, 20.0, col, proc)
+    q1, _ = col.last_q(names)
+    np.testing.assert_allclose(q1, target, atol=1e-3)
+    ros_node.destroy_publisher(pub)
+
+
+def test_refused_command_is_logged_and_ignored(free_sim, ros_node):
+    proc, col = free_sim
+    names = _names(col)
+    q0, _ = col.last_q(names)
+    pub = ros_node.create_publisher(Float64MultiArray, interface.TOPIC_JOINT_VELOCITY_CMD,
+                                    qos.COMMANDS)
+    harness.wait_for_subscriber(ros_node, interface.TOPIC_JOINT_VELOCITY_CMD, 10.0, [proc])
+    wrong = Float64MultiArray(data=[0.2] * (len(names) + 1))
+    _publish_for(ros_node, pub, wrong, 0.3, 20.0, col, proc)
+    harness.wait_until(lambda: "velocity command refused" in proc.output(), 5.0,
+                       "the refusal in the node's log", [proc])
+    assert f"expected {len(names)}" in proc.output()
+    q1, _ = col.last_q(names)
+    np.testing.assert_allclose(q1, q0, atol=1e-3)  # 0.2 rad/s for 0.3 s would move 0.06
+    ros_node.destroy_publisher(pub)
+
+
+@pytest.mark.parametrize("overrides,reason", [
+    (["lock_step:=true"], "needs publish_clock: true"),
+    (["scenario:=no_such_cell"], "no scenarios entry named 'no_such_cell'; available:"),
+    (["joint_state_rate:=5000.0"], "joint_state_rate"),
+    (["command_joint_order:=[vs7_j1, vs7_j2]"], "must name each arm joint once"),
+])
+def test_bad_parameters_refuse_to_start_with_reason(overrides, reason):
+    harness.require_isolation()
+    params = [item for o in overrides for item in ("-p", o)]
+    proc = harness.start_module("vservo_node.ros.sim_node", ros_args=params, name="vservo_sim")
+    try:
+        code = proc.popen.wait(30.0)
+        output = proc.output()
+    finally:
+        proc.stop()
+        proc.remove_log()
+    assert code == 2 and "vservo_sim: cannot start:" in output and reason in output, output

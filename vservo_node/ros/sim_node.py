@@ -1,0 +1,354 @@
+"""The simulated cell as a ROS 2 node (executable ``vservo_sim``): a thin shell around
+``vservo_node.sim.SimCell``.
+
+Time: the cell advances on a grid of joint-state ticks (``1 / joint_state_rate`` s). A camera
+frame is exposed on the tick nearest to each multiple of the camera period, so every image
+stamp (the exposure time) equals the stamp of a joint state published on the same tick. With
+``publish_clock`` the stamps are simulated time from 0 and ``/clock`` carries it (subscribers
+set ``use_sim_time``); without it they are the wall clock at start plus simulated time, which
+only stays honest at ``real_time_factor`` 1 in free-running mode, so other settings require
+``publish_clock``.
+
+Modes:
+- free-running: one loop thread steps the cell tick by tick, paced to ``real_time_factor``
+  (0: as fast as the machine goes), applying the newest command at each tick.
+- ``lock_step``: after publishing a frame the loop waits for one controller command, applies
+  it, then advances exactly one camera period (publishing every joint state and clock tick on
+  the way) and publishes the next frame. Deterministic and as fast as the controller. If no
+  command comes for ``lock_step_resend`` s of wall time the current frame is sent again, so a
+  controller that subscribed late still gets a first image.
+
+Commands (reliable QoS): joint velocities as std_msgs/Float64MultiArray in
+``command_joint_order`` (default: the arm's chain order), or a single-point
+trajectory_msgs/JointTrajectory (positions or velocities, joints by name). A refused command is
+logged with its reason and ignored; the cell brakes by itself once ``command_timeout`` passes
+without a command.
+"""
+from __future__ import annotations
+
+import sys
+import threading
+import time
+from dataclasses import dataclass
+
+import numpy as np
+import rclpy
+from rcl_interfaces.msg import FloatingPointRange, ParameterDescriptor
+from rclpy.exceptions import ParameterException
+from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
+from rclpy.node import Node
+from rclpy.parameter import Parameter
+from rosgraph_msgs.msg import Clock
+from sensor_msgs.msg import CameraInfo, Image, JointState
+from geometry_msgs.msg import PoseStamped
+from std_msgs.msg import Float64MultiArray, String
+from trajectory_msgs.msg import JointTrajectory
+
+from vservo_node import interface
+from vservo_node.ros import convert, dds, qos
+from vservo_node.sim import SimCell, load_scenario
+
+
+@dataclass(frozen=True)
+class _Spec:
+    default: object
+    description: str
+    low: float | None = None
+    high: float | None = None
+
+
+# Read-only: the loop is built around them at start (change them by restarting the node).
+PARAMETERS = {
+    "scenario": _Spec("tray_offset", "scenario: shipped name or path of a scenario YAML"),
+    "joint_state_rate": _Spec(250.0, "joint state publication and integration rate, Hz "
+                              "(>= the scenario's camera rate)", 1.0, 2000.0),
+    "lock_step": _Spec(False, "advance exactly one camera frame per received command"),
+    "lock_step_resend": _Spec(0.5, "lock-step: wall seconds without a command before the "
+                              "current frame is sent again", 0.05, 60.0),
+    "publish_clock": _Spec(False, "publish simulated time on /clock and stamp with it"),
+    "real_time_factor": _Spec(1.0, "simulated seconds per wall second; 0 = as fast as "
+                              "possible (needs publish_clock unless 1)", 0.0, 100.0),
+    "command_timeout": _Spec(0.0, "seconds of simulated time without a velocity command "
+                             "before the arm brakes to rest; 0 = the scenario's", 0.0, 10.0),
+    "command_joint_order": _Spec(Parameter.Type.STRING_ARRAY, "joint names in the order of "
+                                 "the values of Float64MultiArray velocity commands; unset: "
+                                 "the arm's chain order"),
+}
+
+
+def _descriptor(name: str, spec: _Spec) -> ParameterDescriptor:
+    d = ParameterDescriptor(name=name, description=spec.description, read_only=True)
+    if spec.low is not None:
+        d.floating_point_range = [FloatingPointRange(from_value=float(spec.low),
+                                                     to_value=float(spec.high))]
+    return d
+
+
+class TickSchedule:
+    """Simulated time on a grid of ticks of ``1 / tick_rate`` s; camera frame ``k`` is exposed
+    on tick ``round(k * tick_rate / camera_rate)``."""
+
+    def __init__(self, tick_rate: float, camera_rate: float):
+        if not 0 < camera_rate <= tick_rate:
+            raise ValueError(f"camera rate {camera_rate} Hz must be > 0 and <= the joint "
+                             f"state rate {tick_rate} Hz")
+        self.tick_rate, self.camera_rate = float(tick_rate), float(camera_rate)
+        self.dt = 1.0 / self.tick_rate
+
+    def time(self, tick: int) -> float:
+        """Simulated time of ``tick``, s."""
+        return tick * self.dt
+
+    def frame_tick(self, frame: int) -> int:
+        return int(round(frame * self.tick_rate / self.camera_rate))
+
+
+@dataclass
+class _Command:
+    kind: str                 # "velocity" or "position"
+    values: np.ndarray        # in the arm's joint order
+    duration: float | None = None  # position: time to reach the goal, s (None: the cell's)
+
+
+class SimCellNode(Node):
+    """Publishes the cell's joint states, camera images and ground truth; follows commands."""
+
+    def __init__(self, **node_kwargs):
+        super().__init__(interface.SIM_NODE, **node_kwargs)
+        p = {name: self.declare_parameter(name, spec.default, _descriptor(name, spec)).value
+             for name, spec in PARAMETERS.items()}
+        self._check_timing(p)
+        self.cell = SimCell(load_scenario(p["scenario"]),
+                            command_timeout=p["command_timeout"] or None)
+        self.joint_names = list(self.cell.joint_names)
+        self.command_order = list(p["command_joint_order"] or self.joint_names)
+        if sorted(self.command_order) != sorted(self.joint_names):
+            raise ValueError(f"command_joint_order {self.command_order} must name each arm "
+                             f"joint once: {self.joint_names}")
+        self._to_arm = [self.command_order.index(n) for n in self.joint_names]
+        self.schedule = TickSchedule(p["joint_state_rate"], self.cell.camera_rate)
+        self.lock_step, self.resend_s = p["lock_step"], p["lock_step_resend"]
+        self.publish_clock, self.rtf = p["publish_clock"], p["real_time_factor"]
+        self._stamp_origin_ns = 0 if self.publish_clock else time.time_ns()
+
+        self._pending: _Command | None = None
+        self._command_ready = threading.Condition()
+        self._stop = threading.Event()
+        self.failure: Exception | None = None
+
+        self._pub_joints = self.create_publisher(JointState, interface.TOPIC_JOINT_STATES,
+                                                 qos.STATE)
+        self._pub_image = self.create_publisher(Image, interface.TOPIC_IMAGE, qos.SENSOR_DATA)
+        self._pub_info = self.create_publisher(CameraInfo, interface.TOPIC_CAMERA_INFO,
+                                               qos.SENSOR_DATA)
+        self._pub_camera_truth = self.create_publisher(
+            PoseStamped, interface.TOPIC_SIM_CAMERA_POSE_TRUTH, qos.STATE)
+        self._pub_target_truth = self.create_publisher(
+            PoseStamped, interface.TOPIC_SIM_TARGET_POSE_TRUTH, qos.STATE)
+        self._pub_clock = (self.create_publisher(Clock, "/clock", qos.CLOCK)
+                           if self.publish_clock else None)
+        self._publish_latched()
+        self.create_subscription(Float64MultiArray, interface.TOPIC_JOINT_VELOCITY_CMD,
+                                 self._on_velocity, qos.COMMANDS)
+        self.create_subscription(JointTrajectory, interface.TOPIC_JOINT_TRAJECTORY_CMD,
+                                 self._on_trajectory, qos.COMMANDS)
+        self._loop = threading.Thread(target=self._run, name="vservo_sim_loop", daemon=True)
+        self.get_logger().info(
+            f"scenario {p['scenario']!r}: camera {self.cell.camera_rate:g} Hz, joint states "
+            f"{self.schedule.tick_rate:g} Hz, {'lock-step' if self.lock_step else 'free-running'}"
+            f", real-time factor {self.rtf:g}, clock {'on' if self.publish_clock else 'off'}")
+
+    @staticmethod
+    def _check_timing(p):
+        needs_clock = p["lock_step"] or p["real_time_factor"] != 1.0
+        if needs_clock and not p["publish_clock"]:
+            raise ValueError("lock_step or real_time_factor != 1 needs publish_clock: true "
+                             "(stamps would otherwise drift from the wall clock)")
+
+    # ----------------------------------------------------------------- life cycle
+    def start(self) -> None:
+        self._loop.start()
+
+    def stop(self) -> None:
+        self._stop.set()
+        with self._command_ready:
+            self._command_ready.notify_all()
+        if self._loop.is_alive():
+            self._loop.join(timeout=5.0)
+
+    # ----------------------------------------------------------------- commands
+    def _on_velocity(self, msg: Float64MultiArray) -> None:
+        try:
+            values = convert.joint_array_values(msg, self.command_order)[self._to_arm]
+        except ValueError as exc:
+            self.get_logger().error(f"velocity command refused: {exc}", throttle_duration_sec=1)
+            return
+        self._submit(_Command("velocity", values))
+
+    def _on_trajectory(self, msg: JointTrajectory) -> None:
+        try:
+            positions, velocities, reach_s = convert.trajectory_point_values(msg, self.joint_names)
+        except ValueError as exc:
+            self.get_logger().error(f"trajectory command refused: {exc}",
+                                    throttle_duration_sec=1)
+            return
+        if positions is not None:
+            self._submit(_Command("position", positions, reach_s or None))
+        else:
+            self._submit(_Command("velocity", velocities))
+
+    def _submit(self, command: _Command) -> None:
+        if not np.isfinite(command.values).all():
+            self.get_logger().error(f"{command.kind} command refused: non-finite values "
+                                    f"{command.values.tolist()}", throttle_duration_sec=1)
+            return
+        with self._command_ready:
+            self._pending = command
+            self._command_ready.notify_all()
+
+    def _take_command(self, wait_s: float | None) -> _Command | None:
+        """The newest unapplied command; waits up to ``wait_s`` wall seconds if given."""
+        with self._command_ready:
+            if wait_s is not None and self._pending is None and not self._stop.is_set():
+                self._command_ready.wait(wait_s)
+            command, self._pending = self._pending, None
+        return command
+
+    def _apply(self, command: _Command | None, t: float) -> None:
+        if command is None:
+            return
+        try:
+            if command.kind == "velocity":
+                self.cell.command_velocity(command.values, t)
+            else:
+                self.cell.command_position(command.values, t, command.duration)
+        except ValueError as exc:  # the cell refuses e.g. out-of-limit targets
+            self.get_logger().error(f"{command.kind} command refused by the cell: {exc}",
+                                    throttle_duration_sec=1)
+
+    # ----------------------------------------------------------------- loop
+    def _run(self) -> None:
+        try:
+            if self.lock_step:
+                self._run_lock_step()
+            else:
+                self._run_free()
+        except Exception as exc:  # report and end the process rather than freeze silently
+            if not self.context.ok():
+                return  # the process is shutting down (SIGINT): publishing just failed
+            self.failure = exc
+            self.get_logger().fatal(f"simulation loop stopped: {type(exc).__name__}: {exc}")
+            rclpy.try_shutdown(context=self.context)
+
+    def _run_free(self) -> None:
+        tick, frame = 0, 0
+        pace = _Pacer(self.rtf)
+        self._publish_tick(tick, with_frame=True)
+        while not self._stop.is_set():
+            self._apply(self._take_command(None), self.schedule.time(tick))
+            self.cell.step(self.schedule.dt)
+            tick += 1
+            exposed = tick == self.schedule.frame_tick(frame + 1)
+            frame += exposed
+            pace.wait_until(self.schedule.time(tick))
+            self._publish_tick(tick, with_frame=exposed)
+
+    def _run_lock_step(self) -> None:
+        tick, frame = 0, 0
+        pace = _Pacer(self.rtf)
+        self._publish_tick(tick, with_frame=True)
+        while not self._stop.is_set():
+            command = self._take_command(self.resend_s)
+            if command is None:
+                if not self._stop.is_set():  # nobody answered: send the tick again
+                    self._publish_tick(tick, with_frame=True)
+                continue
+            self._apply(command, self.schedule.time(tick))
+            frame += 1
+            while tick < self.schedule.frame_tick(frame) and not self._stop.is_set():
+                self.cell.step(self.schedule.dt)
+                tick += 1
+                pace.wait_until(self.schedule.time(tick))
+                self._publish_tick(tick, with_frame=tick == self.schedule.frame_tick(frame))
+
+    # ----------------------------------------------------------------- publishing
+    def _stamp(self, t: float):
+        """builtin Time of simulated time ``t``, exact to the nanosecond."""
+        return convert.ns_to_time(self._stamp_origin_ns + round(t * 1e9))
+
+    def _publish_tick(self, tick: int, with_frame: bool) -> None:
+        t = self.schedule.time(tick)
+        stamp = self._stamp(t)
+        if self._pub_clock is not None:
+            self._pub_clock.publish(Clock(clock=stamp))
+        q, dq = self.cell.joint_state(t)
+        self._pub_joints.publish(convert.joint_state(self.joint_names, q, dq, stamp))
+        if with_frame:
+            self._publish_frame(tick)
+
+    def _publish_frame(self, tick: int) -> None:
+        """Ground truth, camera info and the image exposed at ``tick``, all with its stamp."""
+        t = self.schedule.time(tick)
+        stamp = self._stamp(t)
+        base = self.cell.base_frame
+        self._pub_camera_truth.publish(convert.matrix_to_pose(self.cell.camera_pose(t), stamp,
+                                                              base))
+        self._pub_target_truth.publish(convert.matrix_to_pose(self.cell.T_base_target, stamp,
+                                                              base))
+        camera_frame = self.cell.camera_frame
+        self._pub_info.publish(convert.model_to_camera_info(self.cell.camera_info, stamp,
+                                                            camera_frame))
+        self._pub_image.publish(convert.numpy_to_image(self.cell.render(t), "rgb8", stamp,
+                                                       camera_frame))
+
+    def _publish_latched(self) -> None:
+        """robot_description and the taught camera pose, once, for late joiners too."""
+        description = self.create_publisher(String, interface.TOPIC_ROBOT_DESCRIPTION,
+                                            qos.LATCHED)
+        description.publish(String(data=self.cell.urdf))
+        taught = self.create_publisher(PoseStamped, interface.TOPIC_SIM_TAUGHT_POSE, qos.LATCHED)
+        taught.publish(convert.matrix_to_pose(self.cell.taught_camera_pose, self._stamp(0.0),
+                                              self.cell.base_frame))
+
+
+class _Pacer:
+    """Sleeps so that simulated time advances ``rtf`` times as fast as the wall clock
+    (rtf 0: never sleeps)."""
+
+    def __init__(self, rtf: float):
+        self.rtf = rtf
+        self.wall_start = time.monotonic()
+
+    def wait_until(self, sim_time: float) -> None:
+        if self.rtf > 0:
+            delay = self.wall_start + sim_time / self.rtf - time.monotonic()
+            if delay > 0:
+                time.sleep(delay)
+
+
+def main(args=None) -> int:
+    """Console entry point of ``vservo_sim``: parameters from ``--ros-args``."""
+    dds.use_shm_profile()
+    rclpy.init(args=args)
+    try:
+        node = SimCellNode()
+    except (ValueError, FileNotFoundError, ParameterException) as exc:
+        print(f"vservo_sim: cannot start: {exc}", file=sys.stderr)
+        rclpy.try_shutdown()
+        return 2
+    executor = SingleThreadedExecutor()
+    executor.add_node(node)
+    node.start()
+    try:
+        executor.spin()
+    except (KeyboardInterrupt, ExternalShutdownException):
+        pass
+    finally:
+        node.stop()
+        node.destroy_node()
+        rclpy.try_shutdown()
+    return 1 if node.failure else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
