@@ -128,7 +128,8 @@ def test_predictions_separate_repeated_colours_without_layout():
     assert m.keys == KEYS and np.allclose(m.points, moved)
     # a prediction farther than max_jump_px leaves the dot unmatched
     far = {k: p + 1000.0 for k, p in predicted.items()}
-    assert len(match_dots(det, KEYS, srgb_to_lab(cols), None, far)) == 0
+    lost = match_dots(det, KEYS, srgb_to_lab(cols), None, far)
+    assert len(lost) == 0 and {why for _, why in lost.rejected} == {"position"}
 
 
 def test_too_few_matches_is_not_ok_and_says_why():

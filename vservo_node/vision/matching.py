@@ -44,7 +44,8 @@ class MatchResult:
         detection_index: (M,) index of each match in the detection.
         missing: reference keys not matched.
         rejected: (detection key, reason) for detections left out: 'colour' (no reference
-            colour within the gate), 'unassigned' (another detection fitted better),
+            colour within the gate), 'position' (too far from every prediction of a dot of
+            its colour), 'unassigned' (another detection fitted better),
             'geometry' (off the homography of the others), 'not in reference'.
         quality: figures such as 'gain', 'delta_e' (M,), 'homography_rms_px', 'ambiguous'.
         min_matched: matches needed for ``ok``.
@@ -182,12 +183,13 @@ _GAINS = np.geomspace(0.25, 4.0, 65)
 
 def _exposure_gain(ref_lab, colours_linear, extra, gate, max_delta_e):
     """The gain on measured colours that lets most reference dots find a colour within the
-    gate, and among those the smallest sum of each dot's best cost."""
+    gate, and among those the smallest sum of each dot's best cost (then the nearest to 1)."""
     lab = linear_rgb_to_lab(_GAINS[:, None, None] * colours_linear[None])
     de = delta_e_ab(ref_lab[None, :, None], lab[:, None])     # gains x refs x detections
     cost = np.where(gate & (de <= max_delta_e), de + extra, np.inf).min(axis=2)
     found = np.isfinite(cost)
-    order = np.lexsort((np.where(found, cost, 0.0).sum(axis=1), -found.sum(axis=1)))
+    order = np.lexsort((np.abs(np.log(_GAINS)), np.where(found, cost, 0.0).sum(axis=1),
+                        -found.sum(axis=1)))  # ties: the gain nearest 1
     return float(_GAINS[order[0]])
 
 
@@ -235,7 +237,8 @@ def match_dots(detection, ref_keys, ref_lab, ref_points=None, predicted=None, *,
     rows, cols = assign(de + extra, allowed)
     quality["gain"] = gain
     pairs = list(zip(rows.tolist(), cols.tolist()))
-    reasons = {j: "colour" for j in range(n_det) if not allowed[:, j].any()}
+    reasons = {j: "colour" if not (de[:, j] <= max_delta_e).any() else "position"
+               for j in range(n_det) if not allowed[:, j].any()}
 
     if ref_points is not None:
         groups = [g for g in _colour_groups(ref_lab, ambiguity_delta_e)
