@@ -46,3 +46,19 @@ def test_bad_input_exits_2(tmp_path, capsys):
     cv2.imwrite(str(tmp_path / "blank.png"), np.zeros((48, 64, 3), np.uint8))
     assert main(["detect", str(tmp_path / "blank.png"), "--target", "tray_tags", "--out",
                  str(tmp_path)]) == 1
+
+
+def test_camera_files_in_both_layouts(tmp_path):
+    from vservo_node.commands.detect import load_camera
+    camera = CameraModel(640, 480, K, [-0.2, 0.05, 0.001, 0.0, 0.0], "plumb_bob")
+    (tmp_path / "ours.yaml").write_text(yaml.safe_dump(camera.to_dict()))
+    # the layout written by ROS camera_calibration (image_width, camera_matrix: {data}, ...)
+    (tmp_path / "ros.yaml").write_text(yaml.safe_dump({
+        "image_width": 640, "image_height": 480, "camera_name": "cam",
+        "camera_matrix": {"rows": 3, "cols": 3, "data": K.ravel().tolist()},
+        "distortion_model": "plumb_bob",
+        "distortion_coefficients": {"rows": 1, "cols": 5, "data": camera.D.tolist()},
+        "rectification_matrix": {"rows": 3, "cols": 3, "data": np.eye(3).ravel().tolist()},
+        "projection_matrix": {"rows": 3, "cols": 4, "data": camera.P.ravel().tolist()}}))
+    for name in ("ours.yaml", "ros.yaml"):
+        assert load_camera(tmp_path / name).to_dict() == camera.to_dict()
