@@ -7,10 +7,7 @@ Budget: the camera lands within 0.1 mm and 0.01 deg of the requested pose.
 """
 from __future__ import annotations
 
-import functools
-
 import numpy as np
-import pinocchio as pin
 import pytest
 import yaml
 from scipy.spatial.transform import Rotation
@@ -19,43 +16,10 @@ from vservo_node import paths
 from vservo_node.sim.ik import solve_camera_pose
 from vservo_node.sim.scenario import load_scenario, scenario_from_dict
 
+from sim_reference import assert_same_pose, camera_in_base, rigid
+
 OFFSET_SCENARIOS = ["tray_twist", "tray_offset", "tray_combined", "tray_tags_offset",
                     "tray_poster_offset", "vs6_tray_offset", "vs6_tray_twist"]
-
-
-@functools.cache
-def full_model(urdf_path):
-    model = pin.buildModelFromUrdf(str(urdf_path))
-    return model, model.createData()
-
-
-def camera_in_base(scenario, q, perturbation=np.eye(4)):
-    """T_base_camera by pinocchio on the full URDF model, joints set by name."""
-    model, data = full_model(scenario.urdf_path)
-    q_full = pin.neutral(model)
-    for name, value in zip(scenario.joint_names, q):
-        joint = model.joints[model.getJointId(name)]
-        if joint.nq == 2:   # continuous joint: (cos, sin)
-            q_full[joint.idx_q:joint.idx_q + 2] = np.cos(value), np.sin(value)
-        else:
-            q_full[joint.idx_q] = value
-    pin.framesForwardKinematics(model, data, q_full)
-    base = data.oMf[model.getFrameId(scenario.base_frame)]
-    camera = data.oMf[model.getFrameId(scenario.camera_frame)]
-    return (base.inverse() * camera).homogeneous @ perturbation
-
-
-def rigid(R, t):
-    T = np.eye(4)
-    T[:3, :3], T[:3, 3] = R, t
-    return T
-
-
-def assert_same_pose(T_expected, T, what):
-    translation_mm = np.linalg.norm(T[:3, 3] - T_expected[:3, 3]) * 1e3
-    angle_deg = np.degrees(Rotation.from_matrix(T_expected[:3, :3].T @ T[:3, :3]).magnitude())
-    assert translation_mm < 0.1 and angle_deg < 0.01, \
-        f"{what}: {translation_mm:.4f} mm, {angle_deg:.5f} deg from the requested pose"
 
 
 def scenario_yaml(name):

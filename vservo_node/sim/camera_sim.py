@@ -131,8 +131,8 @@ class SimCamera:
             rng = np.random.default_rng(frame_seed(self.seed, t))
             dy, dx = rng.integers(0, _NOISE_PAD, 2)
             h, w = image.shape[:2]
+            # One offset for both parts: together they are the same signed noise sample.
             cv2.add(image, self._noise[0][dy:dy + h, dx:dx + w], dst=image)
-            dy, dx = rng.integers(0, _NOISE_PAD, 2)
             cv2.subtract(image, self._noise[1][dy:dy + h, dx:dx + w], dst=image)
         return image
 
