@@ -67,3 +67,26 @@ def test_projected_points_match_opencv_and_mark_points_behind():
     expected, _ = cv2.projectPoints(points[:2], np.zeros(3), np.zeros(3), cam.K, cam.D)
     assert np.allclose(uv[:2], expected.reshape(-1, 2), atol=1e-9)
     assert np.isnan(uv[2]).all()
+
+
+def test_a_ray_the_lens_model_folds_into_the_image_is_not_in_view():
+    """A strong barrel polynomial (k2 < 0) folds rays far off-axis back into the image; such a
+    point lands on a pixel whose own ray is another one, so it is out of view."""
+    from vservo_node.sim.truth import frame_truth
+    from vservo_node.vision.targets import target_from_dict
+
+    cam = CameraModel(640, 480, K, [-0.3, -0.2, 0.0, 0.0, 0.0], "plumb_bob")
+    # r + k1 r^3 + k2 r^5 peaks at r = 0.80 (0.58) and is 0.29 again at r = 1.15 (49 deg
+    # off-axis), which lands at u = 318 + 600 * 0.29, inside the image.
+    far = np.array([1.15, 0.0, 1.0])
+    uv = project_points(cam, far[None])[0]
+    assert 0 <= uv[0] < 640 and 0 <= uv[1] < 480, "the fold-back this test needs is gone"
+    target = target_from_dict({"name": "t", "kind": "dots", "board": {"width": 1, "height": 1},
+                               "dots": [{"id": i, "colour": [0, 0, 0], "centre": c,
+                                         "radius": 0.01}
+                                        for i, c in enumerate([(1.15, 0.0), (0.0, 0.0),
+                                                               (0.05, 0.0)])]})
+    T_base_target = np.eye(4)
+    T_base_target[2, 3] = 1.0     # target plane z = 1 in the camera (= base) frame
+    truth = frame_truth(0.0, [], [], cam, target, np.eye(4), T_base_target)
+    assert truth.in_view.tolist() == [False, True, True]

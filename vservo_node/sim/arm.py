@@ -35,7 +35,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from vservo_node.sim.camera_sim import frame_seed
+from vservo_node.sim import seeding
 
 
 @dataclass(frozen=True)
@@ -299,7 +299,7 @@ class SimArm:
         q, dq = self.true_state(t)
         d = self.dynamics
         if d.joint_noise_std > 0 or d.velocity_noise_std > 0:
-            rng = np.random.default_rng(frame_seed(d.seed, t))
+            rng = np.random.default_rng(seeding.seed_material(d.seed, seeding.JOINT_NOISE, t))
             q = q + rng.normal(0.0, d.joint_noise_std, self.n)
             dq = dq + rng.normal(0.0, d.velocity_noise_std, self.n)
         return q, dq

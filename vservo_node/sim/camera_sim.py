@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 import cv2
 import numpy as np
 
+from vservo_node.sim import seeding
 from vservo_node.sim.render import PlanarTexture, PlaneRenderer
 
 # Noise tiles are this many pixels larger than the image; each frame reads them at a random
@@ -69,12 +70,6 @@ class Photometric:
             raise ValueError(f"gain must be > 0, got {self.gain!r}")
 
 
-def frame_seed(seed: int, t: float) -> list:
-    """Seed material for the random numbers of the frame exposed at ``t`` (seconds): the same
-    (seed, t) always gives the same frame, whatever was rendered before."""
-    return [int(seed), int(round(t * 1e9)) & 0xFFFFFFFFFFFFFFFF]
-
-
 class SimCamera:
     """Renders a planar target seen by one camera.
 
@@ -93,7 +88,7 @@ class SimCamera:
         self.photometric = photometric
         self.seed = int(seed)
         self._renderer = PlaneRenderer(model)
-        rng = np.random.default_rng([self.seed, 1])
+        rng = np.random.default_rng(seeding.seed_material(self.seed, seeding.TABLE))
         self._table = self._table_image(rng)
         self._noise = self._noise_tiles(rng) if photometric.noise_std > 0 else None
 
@@ -128,7 +123,7 @@ class SimCamera:
         if p.gain != 1.0:
             cv2.convertScaleAbs(image, dst=image, alpha=p.gain)
         if self._noise is not None:
-            rng = np.random.default_rng(frame_seed(self.seed, t))
+            rng = np.random.default_rng(seeding.seed_material(self.seed, seeding.IMAGE_NOISE, t))
             dy, dx = rng.integers(0, _NOISE_PAD, 2)
             h, w = image.shape[:2]
             # One offset for both parts: together they are the same signed noise sample.

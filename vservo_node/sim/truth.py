@@ -82,6 +82,17 @@ def disc_image_centroid(camera, T_camera_target, centre_xy, radius) -> np.ndarra
     return polygon_centroid(camera.project(rim_camera))
 
 
+def _unambiguous(camera, points_camera, uv) -> np.ndarray:
+    """False for points whose pixel the lens model reached by folding back (far outside the
+    field of view a polynomial distortion can map rays into the image): undistorting the pixel
+    must give the point's own ray back."""
+    if len(uv) == 0:
+        return np.zeros(0, dtype=bool)
+    xy = points_camera[:, :2] / points_camera[:, 2:]
+    back = camera.pixels_to_normalized(uv)
+    return np.linalg.norm(back - xy, axis=1) < 1e-6 * (1.0 + np.linalg.norm(xy, axis=1))
+
+
 def frame_truth(t, q, dq, camera, target, T_base_camera, T_base_target) -> Truth:
     """Ground truth for a camera at ``T_base_camera`` seeing ``target``
     (``vision.targets.Target``) placed at ``T_base_target``."""
@@ -92,6 +103,7 @@ def frame_truth(t, q, dq, camera, target, T_base_camera, T_base_target) -> Truth
     uv = project_points(camera, points_camera)
     inside = ((uv[:, 0] >= -0.5) & (uv[:, 0] <= camera.width - 0.5)
               & (uv[:, 1] >= -0.5) & (uv[:, 1] <= camera.height - 0.5))
+    inside[inside] = _unambiguous(camera, points_camera[inside], uv[inside])
     centroids = None
     if target.kind == "dots":
         centroids = np.array([disc_image_centroid(camera, T_camera_target, d.centre, d.radius)
