@@ -1,0 +1,218 @@
+"""`vservo demo`: the simulated cell and the controller as separate processes over real DDS.
+
+What an operator would do, scripted:
+1. teach: render the scenario's taught view and capture the reference from it (the same
+   `Perception.capture` the node's `servo/capture_reference` service runs);
+2. start `vservo_sim` (scenario), `vservo_node` (config/vservo_sim.yaml plus the taught
+   reference) and, when present, `vservo_recorder`, as child processes;
+3. enable motion, start the run, follow status and the run result;
+4. print the summary (and write it as JSON), stop the processes.
+
+Must run network-isolated (tools/isolated, as `make demo` does).
+"""
+from __future__ import annotations
+
+import json
+import math
+import time
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+import rclpy
+import yaml
+from rclpy.node import Node
+from sensor_msgs.msg import JointState
+from std_msgs.msg import String
+from std_srvs.srv import SetBool, Trigger
+
+from vservo_node import interface
+from vservo_node.paths import config_dir
+from vservo_node.perception import Perception
+from vservo_node.ros import harness, qos
+from vservo_node.sim import SimCell, load_scenario
+from vservo_node.vision.image_io import to_bgr_or_mono
+from vservo_node.vision.reference import save_reference
+
+SUMMARY_KEYS = ("converged", "time_s", "final_rms_px", "final_pose_error_mm",
+                "final_pose_error_deg", "peak_joint_speed_ratio", "peak_tcp_speed_mps",
+                "halt_reason")
+
+
+def teach(scenario, folder: Path) -> Path:
+    """Capture the reference at the scenario's taught pose; returns the reference file."""
+    cell = SimCell(scenario, q0=scenario.q_taught)
+    rgb = cell.render_at(scenario.q_taught, 0.0)   # what the camera topic carries (rgb8)
+    h, w = rgb.shape[:2]
+    image = to_bgr_or_mono(rgb, "rgb8", w, h)       # as the node decodes it
+    perception = Perception(scenario.target, scenario.camera)
+    reference = perception.capture(image, f"{scenario.name}_station")
+    return save_reference(reference, folder / f"{scenario.name}_station.yaml")
+
+
+def controller_overrides(scenario, reference_file: Path, folder: Path) -> Path:
+    """A parameter file layered over config/vservo_sim.yaml for this scenario."""
+    values = {
+        "robot": {"urdf_path": str(scenario.urdf_path), "base_frame": scenario.base_frame,
+                  "tool_frame": scenario.tool_frame, "camera_frame": scenario.camera_frame},
+        "target": {"file": str(scenario.target.source) if getattr(scenario.target, "source", None)
+                   else scenario.target.name},
+        "reference": {"file": str(reference_file)},
+        "io": {"camera_rate_hz": float(scenario.fps)},
+        "limits": {"max_rotation_deg": 150.0},
+        "control": {"tolerance_px": 0.1},
+    }
+    path = folder / "controller_overrides.yaml"
+    path.write_text(yaml.safe_dump({"vservo": {"ros__parameters": values}}))
+    return path
+
+
+class _Watcher(Node):
+    """Client side of the demo: services, status, result, joint states."""
+
+    def __init__(self, arm):
+        super().__init__("vservo_demo")
+        self.arm = arm
+        self.result = None
+        self.status = None
+        self.q = None
+        self.peak_joint_ratio = 0.0
+        self.peak_tcp = 0.0
+        self.create_subscription(String, interface.TOPIC_RUN_RESULT, self._on_result,
+                                 qos.LATCHED)
+        self.create_subscription(String, interface.TOPIC_STATUS, self._on_status,
+                                 qos.STATE)
+        self.create_subscription(JointState, interface.TOPIC_JOINT_STATES, self._on_joints,
+                                 qos.STATE)
+        self.enable = self.create_client(SetBool, interface.SRV_ENABLE_MOTION)
+        self.start = self.create_client(Trigger, interface.SRV_START)
+
+    def _on_result(self, msg):
+        self.result = json.loads(msg.data)
+
+    def _on_joints(self, msg):
+        index = {n: i for i, n in enumerate(msg.name)}
+        if all(n in index for n in self.arm.joint_names):
+            self.q = np.array([msg.position[index[n]] for n in self.arm.joint_names])
+
+    def _on_status(self, msg):
+        status = json.loads(msg.data)
+        self.status = status
+        dq = status.get("dq")
+        if dq and self.q is not None and status.get("state") in ("servoing", "settling",
+                                                                 "braking"):
+            dq = np.array([0.0 if v is None else v for v in dq])
+            self.peak_joint_ratio = max(self.peak_joint_ratio,
+                                        float(np.max(np.abs(dq) / self.arm.velocity_limits)))
+            v = self.arm.point_jacobian_base(self.q, "tool", np.zeros(3)) @ dq
+            self.peak_tcp = max(self.peak_tcp, float(np.linalg.norm(v)))
+
+
+def _call(node, client, request, processes, timeout=10.0):
+    harness.wait_until(lambda: client.service_is_ready(), timeout,
+                       f"service {client.srv_name}", processes)
+    future = client.call_async(request)
+    harness.spin_until(node, future.done, timeout, f"a reply from {client.srv_name}", processes)
+    return future.result()
+
+
+def run_cell_demo(args) -> int:
+    harness.require_isolation()
+    scenario = load_scenario(args.scenario)
+    stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+    folder = Path(args.runs_dir) / f"{stamp}_{scenario.name}_demo"
+    folder.mkdir(parents=True, exist_ok=True)
+    reference_file = teach(scenario, folder)
+    overrides = controller_overrides(scenario, reference_file, folder)
+    base_params = config_dir() / "vservo_sim.yaml"
+    print(f"scenario {scenario.name}: {scenario.description.strip()}")
+    print(f"taught reference: {reference_file}")
+
+    t_wall = time.monotonic()
+    processes = [
+        harness.start_module("vservo_node.ros.sim_node", ros_args=[
+            "--params-file", str(config_dir() / "sim_cell.yaml"), "-p",
+            f"scenario:={scenario.source or scenario.name}"], name="vservo_sim"),
+        harness.start_module("vservo_node.ros.controller_node", ros_args=[
+            "--params-file", str(base_params), "--params-file", str(overrides)],
+            name="vservo_node"),
+    ]
+    recorder = _start_recorder(scenario, args)
+    if recorder:
+        processes.append(recorder)
+    rclpy.init()
+    node = _Watcher(scenario.arm_model("belief"))
+    summary = {k: None for k in SUMMARY_KEYS}
+    try:
+        deadline = t_wall + args.timeout
+        reply = None
+        while time.monotonic() < deadline:   # inputs need a moment to become fresh
+            reply = _call(node, node.enable, SetBool.Request(data=True), processes)
+            if reply.success:
+                break
+            end = time.monotonic() + 0.5
+            while time.monotonic() < end:
+                rclpy.spin_once(node, timeout_sec=0.05)
+        if not reply or not reply.success:
+            raise RuntimeError(f"enable_motion refused: {reply.message if reply else '?'}")
+        print(f"enable_motion: {reply.message}")
+        reply = _call(node, node.start, Trigger.Request(), processes)
+        if not reply.success:
+            raise RuntimeError(f"start refused: {reply.message}")
+        print(f"start: {reply.message}")
+        harness.spin_until(node, lambda: node.result is not None,
+                           max(1.0, deadline - time.monotonic()), "the run result", processes)
+        result = node.result
+        summary.update({
+            "converged": bool(result.get("converged")),
+            "time_s": result.get("time_s"),
+            "final_rms_px": result.get("final_rms_px"),
+            "final_pose_error_mm": result.get("final_pose_error_mm"),
+            "final_pose_error_deg": result.get("final_pose_error_deg"),
+            "peak_joint_speed_ratio": node.peak_joint_ratio,
+            "peak_tcp_speed_mps": node.peak_tcp,
+            "halt_reason": result.get("reason") or None,
+        })
+        if recorder:
+            time.sleep(1.0)   # let the recorder close the bag and write the report
+    finally:
+        node.destroy_node()
+        rclpy.shutdown()
+        for proc in reversed(processes):
+            proc.stop()
+    wall = time.monotonic() - t_wall
+    _print_summary(scenario.name, summary, wall)
+    reports = sorted(Path(args.runs_dir).glob(f"*_{scenario.name}/report/*.html"))
+    if reports:
+        print(f"report of the run: {reports[-1]}")
+    if args.json:
+        Path(args.json).write_text(json.dumps(summary, indent=2))
+    return 0 if summary["converged"] else 1
+
+
+def _start_recorder(scenario, args):
+    try:
+        import vservo_node.ros.recorder_node  # noqa: F401  (present once recording lands)
+    except ImportError:
+        return None
+    return harness.start_module("vservo_node.ros.recorder_node", ros_args=[
+        "-p", f"scenario:={scenario.name}", "-p", f"output_dir:={args.runs_dir}"],
+        name="vservo_recorder")
+
+
+def _fmt(value, spec):
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "n/a"
+    return format(value, spec)
+
+
+def _print_summary(name, s, wall):
+    print(f"\n== vservo demo: {name} (wall time {wall:.1f} s) ==")
+    print(f"converged            {s['converged']}")
+    print(f"time to converge     {_fmt(s['time_s'], '.2f')} s")
+    print(f"final RMS error      {_fmt(s['final_rms_px'], '.3f')} px")
+    print(f"final pose error     {_fmt(s['final_pose_error_mm'], '.3f')} mm, "
+          f"{_fmt(s['final_pose_error_deg'], '.3f')} deg (ground truth)")
+    print(f"peak joint speed     {_fmt(s['peak_joint_speed_ratio'], '.2f')} of the URDF limit")
+    print(f"peak tool speed      {_fmt(s['peak_tcp_speed_mps'], '.3f')} m/s")
+    print(f"halt reason          {s['halt_reason'] or '-'}")
