@@ -34,8 +34,10 @@ are relative to the package's config folder)::
       # joints: {joint name: rad, ...}
     arm: {velocity_lag_s: 0.02, command_latency_s: 0.0, command_timeout_s: 0.2,
           decel_limit: 3.0, joint_noise_std: 0.0, velocity_noise_std: 0.0}
-    image: {noise_std: 2.0, blur_sigma_px: 0.0, gain: 1.0,
-            occlusions: [{rect_px: [x0, y0, x1, y1], from_s: 0, until_s: 5}]}
+    image: {noise_std: 2.0, blur_sigma_px: 0.0, gain: 1.0,   # grey levels, pixels
+            table_rgb: [150, 136, 118], table_texture: 6.0,
+            occlusions: [{rect_px: [x0, y0, x1, y1], colour: [60, 60, 65],
+                          from_s: 0, until_s: 5}]}
     true_hand_eye: {translation: [dx, dy, dz], rotation_deg: [rx, ry, rz]}
     controller_belief:
       hand_eye_error: {translation: [dx, dy, dz], rotation_deg: [rx, ry, rz]}
