@@ -268,7 +268,8 @@ def joint_state_to_arrays(msg: JointState, joint_names) -> tuple[np.ndarray, np.
     return q, _field_by_name(msg.velocity, idx, n, "velocities", "joint state")
 
 
-def joint_state(joint_names, q, dq=None, stamp: float | Time = 0.0, frame_id: str = "") -> JointState:
+def joint_state(joint_names, q, dq=None, stamp: float | Time = 0.0,
+                frame_id: str = "") -> JointState:
     """sensor_msgs/JointState of positions ``q`` (and velocities ``dq``) in ``joint_names``."""
     names = list(joint_names)
     q = _vector(q, len(names), "q")
