@@ -118,7 +118,7 @@ def _run_pair(size, config, qos_name, raw, frames, rate):
 def _orchestrate(args):
     from vservo_node.ros import dds
 
-    print(f"image latency, {args.frames} frames at {args.rate} Hz per row, sensor-data QoS, "
+    print(f"image latency, {args.frames} frames at {args.rate} Hz per row, "
           f"isolation={os.environ.get('VSERVO_ISOLATION')}, profile={dds.shm_profile_path()}")
     print(f"{'size':>10} {'transport':>12} {'qos':>12} {'subscription':>12} {'received':>9} "
           f"{'cb median':>10} {'cb p95':>8} {'view p95':>9}   (ms)")
