@@ -211,3 +211,211 @@ def run_point_case(case: PointCase, record: bool = False) -> EpisodeResult:
     return run_episode(servo, scene.sense(depth="true" if case.depth == "true" else "none"),
                        q0, T_goal, arm, rate_hz=case.rate_hz, duration_s=case.duration_s,
                        record=record)
+
+
+# ----------------------------------------------------------------------------- scenario episodes
+# The one required parameter without a default (vservo_node.params: limits.joint_acceleration);
+# headless episodes use the 2 rad/s^2 that limits_for() uses for the core cases.
+EPISODE_PARAMS = {"limits.joint_acceleration": [2.0]}
+# The reference is taught from an image exposed this long before the run starts (s), so its
+# image noise is drawn for another instant than the first frame's.
+TEACH_TIME_S = -1.0
+
+
+def episode_params(overrides: dict | None = None, camera_rate_hz: float | None = None) -> dict:
+    """Validated controller parameters (vservo_node.params names) for a headless episode:
+    the schema defaults, :data:`EPISODE_PARAMS`, ``io.camera_rate_hz`` = ``camera_rate_hz``
+    (the simulated camera's rate) when given, then ``overrides``. ValueError lists what the
+    schema refuses."""
+    from vservo_node import params
+
+    base = dict(EPISODE_PARAMS)
+    if camera_rate_hz is not None:
+        base["io.camera_rate_hz"] = float(camera_rate_hz)
+    checked = params.validate({**base, **(overrides or {})})
+    if not checked.ok:
+        raise ValueError("episode parameters refused: " + "; ".join(checked.errors))
+    return checked.values
+
+
+def servo_from_params(arm, values: dict) -> Servo:
+    """A Servo for ``arm`` (the hand-eye it believes) from validated parameter values: the
+    settings of ``ServoSettings.from_params`` and a LimitSet from the ``limits.*`` entries."""
+    acceleration = values["limits.joint_acceleration"]
+    if len(acceleration) not in (1, arm.n):
+        raise ValueError(f"limits.joint_acceleration has {len(acceleration)} values; expected 1 "
+                         f"or {arm.n} (one per joint of {', '.join(arm.joint_names)})")
+    limits = limits_for(arm, velocity_scale=values["limits.joint_velocity_scale"],
+                        acceleration=acceleration,
+                        position_margin=values["limits.position_margin"],
+                        tool_linear_max=values["limits.tool_linear_speed"],
+                        camera_linear_max=values["limits.camera_linear_speed"],
+                        angular_max=values["limits.angular_speed"])
+    return Servo(arm, ServoSettings.from_params(values), limits, values["robot.tool_point"])
+
+
+def focal_scaled(camera, scale: float):
+    """``camera`` (a CameraModel) with focal lengths fx, fy (in K and P) times ``scale``: the
+    intrinsics a controller with a focal-length calibration error believes."""
+    from vservo_node.vision.camera import CameraModel
+
+    data = camera.to_dict()
+    for key, (i, j) in (("k", (0, 4)), ("p", (0, 5))):
+        data[key][i] *= scale
+        data[key][j] *= scale
+    return CameraModel.from_dict(data)
+
+
+def _reseeded(scenario, seed: int):
+    """``scenario`` with its image and joint-state noise seeded by (scenario seed, ``seed``)."""
+    import dataclasses
+
+    mixed = int(np.random.SeedSequence([scenario.seed, int(seed)]).generate_state(1)[0])
+    return dataclasses.replace(
+        scenario, seed=mixed,
+        arm_dynamics=dataclasses.replace(scenario.arm_dynamics, seed=mixed))
+
+
+def _depth_scaled(view_or_obs, scale: float):
+    """A TaughtView / Observation whose depths (when it has any) are ``scale`` times its own."""
+    import dataclasses
+
+    if scale == 1.0 or view_or_obs is None or view_or_obs.depth is None:
+        return view_or_obs
+    return dataclasses.replace(view_or_obs, depth=np.asarray(view_or_obs.depth) * scale)
+
+
+class _Meter:
+    """Peaks and margins of the true arm motion at the output ticks of a scenario episode."""
+
+    def __init__(self, arm_true, T_base_camera_goal, q0, tool_point):
+        self.arm = arm_true
+        self.tool_point = np.asarray(tool_point, dtype=float)
+        self.axis = T_base_camera_goal[:3, 2]
+        self.depth0 = float(self.axis @ arm_true.camera_pose(q0)[:3, 3])
+        self.finite = np.isfinite(arm_true.lower)
+        self.peaks = dict(joint=0.0, tool=0.0, camera=0.0, angular=0.0)
+        self.margin = math.inf
+        self.depth_dev = 0.0
+
+    def add(self, q, dq) -> np.ndarray:
+        """Account for the true state (q, dq); returns T_base_camera at q."""
+        arm, p = self.arm, self.peaks
+        p["joint"] = max(p["joint"], float(np.max(np.abs(dq) / arm.velocity_limits)))
+        p["tool"] = max(p["tool"], float(np.linalg.norm(
+            arm.point_jacobian_base(q, "tool", self.tool_point) @ dq)))
+        p["camera"] = max(p["camera"], float(np.linalg.norm(
+            arm.point_jacobian_base(q, "camera", np.zeros(3)) @ dq)))
+        p["angular"] = max(p["angular"], float(np.linalg.norm(arm.jacobian_base(q)[3:] @ dq)))
+        self.margin = min(self.margin, float(np.min(np.concatenate([
+            (q - arm.lower)[self.finite], (arm.upper - q)[self.finite]]))))
+        T_cam = arm.camera_pose(q)
+        self.depth_dev = max(self.depth_dev, abs(float(self.axis @ T_cam[:3, 3]) - self.depth0))
+        return T_cam
+
+
+def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
+                         record: bool = False, *, focal_scale: float = 1.0) -> EpisodeResult:
+    """One run of a scenario through the node's code path, without ROS or clocks.
+
+    ``scenario``: a shipped name, a path or a loaded ``sim.Scenario``. ``overrides``: controller
+    parameters by their schema names (vservo_node.params) over :func:`episode_params`.
+    ``seed``: mixed with the scenario's seed for the image and joint-state noise.
+    ``focal_scale``: the controller believes focal lengths ``focal_scale`` times the true ones
+    (the scenario format has no entry for it).
+
+    The SimCell drives the true arm (true hand-eye, the scenario's lag, latency and joint
+    noise) and renders the true camera. The controller side is built as the node builds it:
+    an ArmModel with the scenario's *believed* hand-eye, a Perception on the believed camera
+    model, and a reference taught by ``Perception.capture`` from an image of the taught pose
+    (:data:`TEACH_TIME_S`); the believed depth scale multiplies every depth the servo gets
+    (taught and observed). The run starts at rest at the scenario's start pose. Then, on one
+    time line: each camera frame (scenario fps) is rendered, converted from rgb8 as the node
+    converts images, turned into an Observation (an empty one when nothing matched, as the
+    node does) and observed with the reported joints at the frame time; every output period
+    (``io.output_rate_hz``) the servo commands from the latest reported joints and the
+    command goes to the drives. The run ends when the servo converges or halts, or after the
+    scenario's ``duration_s`` (reason ``episode_timeout``).
+
+    Speeds, margins and the pose error (mm, deg) are of the true arm: ``peak_*`` from the true
+    joint velocities at the output ticks, the pose error between the true camera pose at the
+    end and the true taught camera pose.
+    """
+    import tempfile
+
+    from vservo_node.perception import DepthSettings, Perception, taught_view
+    from vservo_node.sim import Scenario, SimCell, load_scenario
+    from vservo_node.vision import image_io
+    from vservo_node.vision.reference import load_reference, save_reference
+
+    sc = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
+    sc = _reseeded(sc, seed)
+    values = episode_params(overrides, camera_rate_hz=sc.fps)
+    cell = SimCell(sc)
+    camera = focal_scaled(sc.camera, focal_scale) if focal_scale != 1.0 else sc.camera
+    servo = servo_from_params(sc.arm_model("belief"), values)
+    depth = DepthSettings.from_params(values)
+    width, height = camera.width, camera.height
+
+    def bgr(rgb):  # the node reads the sim's rgb8 images this way
+        return image_io.to_bgr_or_mono(rgb, "rgb8", width, height)
+
+    # teach: capture, save and load the reference, then rebuild perception with it (the node's
+    # capture_reference service followed by its reference.file update)
+    taught_image = bgr(cell.render_at(sc.q_taught, TEACH_TIME_S))
+    reference = Perception(sc.target, camera, None, depth).capture(taught_image, "episode")
+    with tempfile.TemporaryDirectory() as folder:
+        reference = load_reference(save_reference(reference, f"{folder}/episode.yaml"),
+                                   sc.target)
+    perception = Perception(sc.target, camera, reference, depth)
+    servo.set_reference(_depth_scaled(taught_view(reference, camera), sc.depth_scale_belief))
+
+    T_goal = cell.taught_camera_pose
+    meter = _Meter(cell.arm_model, T_goal, sc.q_start, values["robot.tool_point"])
+    period = 1.0 / values["io.output_rate_hz"]
+    frame_period = 1.0 / sc.fps
+    no_features = Observation((), np.zeros((0, 2)), np.zeros((0, 2)))
+    servo.enable(True, 0.0)
+    ok, why = servo.start(cell.joint_state(0.0)[0], 0.0)
+    if not ok:
+        raise RuntimeError(f"servo refused to start: {why}")
+    statuses, qs, cams = [], [], []
+    initial_rms = math.nan
+    status = None
+    frame = 0
+    t = 0.0
+    for k in range(int(math.floor(sc.duration_s / period)) + 1):
+        t = k * period
+        while frame * frame_period <= t + 1e-12:
+            t_frame = frame * frame_period
+            cell.step(t_frame - cell.t)
+            obs, _ = perception.process(bgr(cell.render(t_frame)), t_frame)
+            servo.observe(_depth_scaled(obs, sc.depth_scale_belief) or no_features,
+                          cell.joint_state(t_frame)[0], t_frame)
+            frame += 1
+        cell.step(t - cell.t)
+        cmd, status = servo.command(cell.joint_state(t)[0], t, period)
+        cell.command_velocity(cmd, t)
+        if math.isnan(initial_rms) and not math.isnan(status["rms_px"]):
+            initial_rms = status["rms_px"]
+        q_true, dq_true = cell.arm.true_state(t)
+        T_cam = meter.add(q_true, dq_true)
+        if record:
+            statuses.append(status)
+            qs.append(q_true)
+            cams.append(T_cam[:3, 3].copy())
+        if servo.state in ("converged", "halted"):
+            break
+    moved_m, turned = frames.pose_error(T_goal, cell.camera_pose(t))
+    result = servo.result or {"converged": False, "reason": "episode_timeout",
+                              "final_rms_px": status["rms_px"], "time_s": t}
+    return EpisodeResult(
+        converged=bool(result["converged"]), reason=result["reason"] or "",
+        time_s=float(result["time_s"]), final_rms_px=float(result["final_rms_px"]),
+        pose_error_mm=moved_m * 1e3, pose_error_deg=math.degrees(turned),
+        peak_joint_speed_ratio=meter.peaks["joint"], peak_tool_speed=meter.peaks["tool"],
+        peak_camera_speed=meter.peaks["camera"], peak_angular_speed=meter.peaks["angular"],
+        min_limit_margin=meter.margin, initial_rms_px=initial_rms,
+        camera_depth_change_max=meter.depth_dev, statuses=statuses,
+        q_trace=np.array(qs) if record else None,
+        camera_trace=np.array(cams) if record else None)
