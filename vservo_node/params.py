@@ -139,7 +139,8 @@ SCHEMA: tuple[Param, ...] = (
        low=0.01, high=5.0, tighten="down"),
     _p("io.joint_state_timeout_s", float, 0.1, "halt when no joint state arrived for this long",
        unit="s", low=0.005, high=5.0, tighten="down"),
-    _p("io.require_permit", bool, False, "require a fresh True on cell/motion_permit to move"),
+    _p("io.require_permit", bool, False, "require a fresh True on cell/motion_permit to move",
+       tighten="up"),
     _p("io.permit_timeout_s", float, 0.5, "a permit older than this counts as withdrawn",
        unit="s", low=0.01, high=10.0, tighten="down"),
     _p("io.camera_time_offset_s", float, 0.0, "added to image stamps (cameras whose stamps lag "
@@ -229,7 +230,9 @@ def check_change(name: str, old: Any, new: Any, motion_enabled: bool) -> str | N
     if motion_enabled and param.tighten:
         loosens = _loosens(param, old, value)
         if loosens:
-            return (f"{name}: may only be {'lowered' if param.tighten == 'down' else 'raised'} "
+            verbs = ("switched off", "switched on") if param.type is bool else ("lowered",
+                                                                                "raised")
+            return (f"{name}: may only be {verbs[param.tighten == 'up']} "
                     f"while motion is enabled ({old} -> {value}); disable motion first")
     return None
 

@@ -28,16 +28,18 @@ import numpy as np
 import pytest
 import rclpy
 import yaml
+from scipy.spatial.transform import Rotation
 from rcl_interfaces.srv import DescribeParameters, GetParameters, SetParameters
 from rclpy.parameter import Parameter
 from sensor_msgs.msg import Image
-from std_msgs.msg import Float64, Float64MultiArray, String
+from std_msgs.msg import Bool, Float64, Float64MultiArray, String
 from std_srvs.srv import SetBool, Trigger
 
 from vservo_node import interface as itf
 from vservo_node import params
-from vservo_node.ros import harness, qos
-from vservo_node.ros.controller_node import READ_ONLY, JointHistory, ros_type
+from vservo_node.control.kinematics import load_robot
+from vservo_node.ros import convert, harness, qos
+from vservo_node.ros.controller_node import READ_ONLY, CommandOutput, JointHistory, ros_type
 
 ROOT = Path(__file__).resolve().parents[2]
 URDF = ROOT / "config" / "robots" / "vs7_bench.urdf"
@@ -298,6 +300,60 @@ def test_joint_history_interpolates_by_stamp_and_wraps_continuous_joints():
     assert h.at(10.05) is None
 
 
+@pytest.fixture(scope="module")
+def arm():
+    return load_robot("vs7_bench")
+
+
+def test_velocity_command_in_the_downstream_joint_order(arm):
+    order = list(reversed(arm.arm.joint_names)) + ["gripper"]
+    out = CommandOutput("joint_velocity", arm.arm, order, 0.01, "base_link", "cam")
+    cmd = np.arange(1.0, 8.0) / 10
+    msg = out.message(cmd, arm.home, 0.0)
+    assert list(msg.data) == list(cmd[::-1]) + [0.0]
+    with pytest.raises(ValueError, match=r"lacks chain joint\(s\) \['vs7_j7'\]"):
+        CommandOutput("joint_velocity", arm.arm, order[1:], 0.01, "base_link", "cam")
+
+
+def test_trajectory_points_integrate_the_commanded_not_the_measured_position(arm):
+    out = CommandOutput("joint_trajectory", arm.arm, [], 0.01, "base_link", "cam")
+    cmd = np.full(7, 0.2)
+    first = out.message(cmd, arm.home, 5.0)
+    measured_elsewhere = arm.home + 0.05      # the arm lags: the next point ignores it
+    second = out.message(cmd, measured_elsewhere, 5.01)
+    for msg in (first, second):
+        assert msg.header.stamp.sec == 0 and msg.header.stamp.nanosec == 0   # start now
+        assert len(msg.points) == 1 and list(msg.joint_names) == arm.arm.joint_names
+        point = msg.points[0]
+        assert point.time_from_start.nanosec == 10_000_000 and list(point.velocities) \
+            == list(cmd)
+    np.testing.assert_allclose(first.points[0].positions, arm.home + 0.002)
+    np.testing.assert_allclose(second.points[0].positions, arm.home + 0.004)
+    out.reset()   # a new run starts from the measured position
+    np.testing.assert_allclose(out.message(cmd, measured_elsewhere, 6.0).points[0].positions,
+                               measured_elsewhere + 0.002)
+
+
+@pytest.mark.parametrize("kind, frame", [("tool_twist", "tool"), ("camera_twist", "camera")])
+def test_cartesian_commands_are_the_frame_twist(arm, kind, frame):
+    """The twist [v; w] of the frame for the joint velocity, by finite differences of the
+    frame's pose: v = dp/dt, [w] = dR/dt R^T (Lynch & Park 2017, Modern Robotics, sec. 3.2.2
+    and 3.3.2); the tool twist in base axes, the camera twist in camera axes."""
+    out = CommandOutput(kind, arm.arm, [], 0.01, "base_link", "camera_optical_frame")
+    cmd = np.array([0.1, -0.2, 0.15, 0.05, -0.1, 0.2, 0.3])
+    msg = out.message(cmd, arm.home, 3.0)
+    assert msg.header.frame_id == ("base_link" if kind == "tool_twist"
+                                   else "camera_optical_frame")
+    h = 1e-6
+    T0, T1 = arm.arm.fk(arm.home, frame), arm.arm.fk(arm.home + h * cmd, frame)
+    v = (T1[:3, 3] - T0[:3, 3]) / h
+    w = Rotation.from_matrix(T1[:3, :3] @ T0[:3, :3].T).as_rotvec() / h
+    if kind == "camera_twist":
+        v, w = T0[:3, :3].T @ v, T0[:3, :3].T @ w
+    np.testing.assert_allclose(convert.twist_to_vector(msg), np.concatenate([v, w]),
+                               atol=1e-6)
+
+
 def test_parameters_declared_with_schema_ranges_and_read_only(rig):
     names = [p.name for p in params.SCHEMA]
     response = rig.call(DescribeParameters, "/vservo/describe_parameters",
@@ -451,7 +507,7 @@ def test_state_service_table(rig):
     expect(rig.enable(True), True, "motion enabled")
 
 
-def _halt_on(rig, order: dict, reason: str, restore: dict):
+def _halt_on(rig, cut, reason: str, restore):
     """Run, break an input through the stub, and check the halt: braking within the
     deceleration limit with speeds non-increasing, then one explicit zero and silence.
     The acceleration limit is lowered (allowed while enabled) so braking takes many steps."""
@@ -459,7 +515,7 @@ def _halt_on(rig, order: dict, reason: str, restore: dict):
     _begin_run(rig, LARGE_OFFSET)
     rig.spin(0.4)
     t0 = time.monotonic()
-    rig.stub(**order)
+    cut()
     braking = rig.wait_state("braking", reason=reason)
     rig.wait_state("halted", reason=reason)
     rig.spin(0.4)
@@ -472,23 +528,52 @@ def _halt_on(rig, order: dict, reason: str, restore: dict):
     assert np.max(np.abs(np.diff(ramp, axis=0))) <= HALT_ACCELERATION / OUTPUT_RATE + 1e-9
     assert np.all(ramp[-1] == 0.0) and len(ramp) >= 5
     assert np.count_nonzero(np.all(ramp == 0.0, axis=1)) == 1   # one explicit zero, then quiet
-    rig.stub(**restore)
+    restore()
     rig.spin(0.3)
 
 
 def test_image_stream_stopped_halts_image_stale(rig):
-    _halt_on(rig, {"images": False}, "image_stale", {"images": True})
+    _halt_on(rig, lambda: rig.stub(images=False), "image_stale",
+             lambda: rig.stub(images=True))
 
 
 def test_joint_states_stopped_halt_joints_stale(rig):
-    _halt_on(rig, {"joints": False}, "joints_stale", {"joints": True})
+    _halt_on(rig, lambda: rig.stub(joints=False), "joints_stale",
+             lambda: rig.stub(joints=True))
 
 
 def test_camera_info_of_another_size_halts_camera_info_invalid(rig):
-    _halt_on(rig, {"info_size": [640, 480]}, "camera_info_invalid", {"info_size": None})
+    _halt_on(rig, lambda: rig.stub(info_size=[640, 480]), "camera_info_invalid",
+             lambda: rig.stub(info_size=None))
     expect(rig.enable(False), True)
     rig.wait_state("disabled")
     expect(rig.enable(True), True, "motion enabled")  # camera_info consistent again
+
+
+def test_permit_required_then_withdrawn_halts(rig):
+    """io.require_permit may be switched on while enabled (it tightens), not off."""
+    assert rig.set_params(io__require_permit=True)[0].successful
+    expect(rig.trigger(itf.SRV_START), False, "permit: no fresh True on cell/motion_permit")
+    beating = {"on": True}
+    publisher = rig.node.create_publisher(Bool, itf.TOPIC_MOTION_PERMIT, qos.STATE)
+    timer = rig.node.create_timer(
+        0.05, lambda: beating["on"] and publisher.publish(Bool(data=True)))
+    rig.spin(0.3)
+    _halt_on(rig, lambda: beating.update(on=False), "permit_withdrawn",
+             lambda: beating.update(on=True))
+    result, = rig.set_params(io__require_permit=False)
+    assert not result.successful and "may only be switched on" in result.reason
+    expect(rig.enable(False), True)
+    assert rig.set_params(io__require_permit=False)[0].successful
+    rig.node.destroy_timer(timer)
+    rig.node.destroy_publisher(publisher)
+
+
+def test_overlay_published_on_request(rig):
+    assert rig.set_params(io__publish_overlay=True)[0].successful
+    msg = harness.wait_for_message(rig.node, itf.TOPIC_OVERLAY, Image, qos.SENSOR_DATA, 10.0,
+                                   processes=rig.procs)
+    assert (msg.width, msg.height, msg.encoding) == (320, 240, "bgr8")
 
 
 if __name__ == "__main__" and "--stub" in sys.argv:

@@ -201,8 +201,8 @@ def descriptor(param: params.Param) -> ParameterDescriptor:
     if param.length:
         notes.append("length " + " or ".join(map(str, param.length)))
     if param.tighten:
-        notes.append("while motion is enabled may only be "
-                     + ("lowered" if param.tighten == "down" else "raised"))
+        verbs = ("switched off", "switched on") if param.type is bool else ("lowered", "raised")
+        notes.append("while motion is enabled may only be " + verbs[param.tighten == "up"])
     if param.required:
         notes.append("required")
     d = ParameterDescriptor(name=param.name, description=text,
@@ -277,6 +277,59 @@ class JointHistory:
         step = q1 - q0
         step[self.continuous] = (step[self.continuous] + np.pi) % (2 * np.pi) - np.pi
         return q0 + (t - t0) / (t1 - t0) * step
+
+
+class CommandOutput:
+    """The command message of one output cycle for ``kind`` (``params.COMMAND_INTERFACES``),
+    from the limited joint velocity ``cmd`` (rad/s or m/s, chain order) at joints ``q``.
+
+    - joint_velocity: Float64MultiArray in ``joint_order`` (empty: chain order; names off the
+      chain get 0).
+    - joint_trajectory: one JointTrajectory point, header stamp zero (start now): positions
+      ``p_k = p_(k-1) + cmd * period`` from the previous commanded position (from ``q`` at the
+      first call after ``reset``), velocities ``cmd``, time_from_start one period.
+    - tool_twist: TwistStamped [v; w] of the tool origin in ``base_frame`` axes.
+    - camera_twist: TwistStamped [v; w] of the camera in its optical frame ``camera_frame``.
+    """
+
+    def __init__(self, kind: str, arm: ArmModel, joint_order, period: float, base_frame: str,
+                 camera_frame: str):
+        if kind not in params.COMMAND_INTERFACES:
+            raise ValueError(f"unknown command interface {kind!r}; expected one of "
+                             f"{', '.join(params.COMMAND_INTERFACES)}")
+        self.check_order(joint_order, arm.joint_names)
+        self.kind, self.arm, self.period = kind, arm, period
+        self.order = list(joint_order) or list(arm.joint_names)
+        self._index = [self.order.index(name) for name in arm.joint_names]
+        self.base_frame, self.camera_frame = base_frame, camera_frame
+        self._position = None
+
+    @staticmethod
+    def check_order(joint_order, joint_names) -> None:
+        """ValueError unless an explicit order names every chain joint."""
+        missing = [name for name in joint_names if joint_order and name not in joint_order]
+        if missing:
+            raise ValueError(f"io.command_joint_order lacks chain joint(s) {missing}")
+
+    def reset(self) -> None:
+        """The next trajectory point starts from the measured position."""
+        self._position = None
+
+    def message(self, cmd: np.ndarray, q: np.ndarray, stamp: float):
+        if self.kind == "joint_velocity":
+            values = np.zeros(len(self.order))
+            values[self._index] = cmd
+            return convert.joint_array(values, self.order)
+        if self.kind == "joint_trajectory":
+            start = np.array(q, dtype=float) if self._position is None else self._position
+            self._position = start + np.asarray(cmd, dtype=float) * self.period
+            return convert.trajectory_point(self.arm.joint_names, self._position, cmd,
+                                            time_from_start_s=self.period)
+        if self.kind == "tool_twist":
+            return convert.vector_to_twist(self.arm.jacobian_base(q) @ cmd, stamp,
+                                           self.base_frame)
+        twist = self.arm.camera_from_tool() @ self.arm.jacobian_tool(q) @ cmd
+        return convert.vector_to_twist(twist, stamp, self.camera_frame)
 
 
 class FrameSlot:
@@ -363,7 +416,7 @@ class ControllerNode(Node):
         self._last_status: dict = {}
         self._announced = ""
         self._commanding = False
-        self._traj_pos = None
+        self._output: CommandOutput | None = None
         self._vision_dirty = False
         self._pending_values = None
         self._truth = {"camera": None, "taught": None}
@@ -520,10 +573,7 @@ class ControllerNode(Node):
                                      v["robot.min_joints"])
             if hand_eye:
                 arm.set_hand_eye(frames.transform_from_xyz_quat(hand_eye[:3], hand_eye[3:]))
-            order = v["io.command_joint_order"]
-            missing = [name for name in arm.joint_names if order and name not in order]
-            if missing:
-                raise ValueError(f"io.command_joint_order lacks chain joint(s) {missing}")
+            CommandOutput.check_order(v["io.command_joint_order"], arm.joint_names)
         except ValueError as exc:
             self.arm = None
             self._problems["robot_model"] = f"from {source}: {exc}"
@@ -532,6 +582,9 @@ class ControllerNode(Node):
         self.arm = arm
         self._problems["robot_model"] = ""
         self._joints = JointHistory(arm.continuous)
+        self._output = CommandOutput(v["io.command_interface"], arm,
+                                     v["io.command_joint_order"], self._period,
+                                     v["robot.base_frame"], v["robot.camera_frame"])
         self.get_logger().info(f"robot model from {source}: {arm.n} joints "
                                f"{', '.join(arm.joint_names)}")
         self._build_servo()
@@ -828,32 +881,13 @@ class ControllerNode(Node):
             self.servo.halt(reason, self._now())
 
     def _publish_command(self, cmd: np.ndarray, q: np.ndarray) -> None:
-        v = self._values
-        kind = v["io.command_interface"]
-        names = self.arm.joint_names
-        if kind == "joint_velocity":
-            order = v["io.command_joint_order"] or names
-            values = np.zeros(len(order))
-            values[[order.index(n) for n in names]] = cmd
-            self._pub_command.publish(convert.joint_array(values, order))
-        elif kind == "joint_trajectory":
-            if self._traj_pos is None:
-                self._traj_pos = np.array(q, dtype=float)
-            self._traj_pos = self._traj_pos + cmd * self._period
-            self._pub_command.publish(convert.trajectory_point(
-                names, self._traj_pos, cmd, time_from_start_s=self._period))
-        elif kind == "tool_twist":
-            self._pub_command.publish(convert.vector_to_twist(
-                self.arm.jacobian_base(q) @ cmd, self._now(), v["robot.base_frame"]))
-        else:
-            self._pub_command.publish(convert.vector_to_twist(
-                self.servo.camera_twist(q, cmd), self._now(), v["robot.camera_frame"]))
+        self._pub_command.publish(self._output.message(cmd, q, self._now()))
 
     def _end_run(self, servo: Servo, q: np.ndarray) -> None:
         """The explicit zero after a run, and the run result."""
         self._publish_command(np.zeros(self.arm.n), q)
         self._commanding = False
-        self._traj_pos = None
+        self._output.reset()
         if servo.result is None:
             return
         result = dict(servo.result)
@@ -1065,7 +1099,8 @@ class ControllerNode(Node):
             run_id = f"{datetime.datetime.now():%Y%m%d-%H%M%S}-{self._runs}"
             ok, message = self.servo.start(self._joints.latest(), self._now(), run_id)
             if ok:
-                self._announced, self._traj_pos = "", None
+                self._announced = ""
+                self._output.reset()
             response.success, response.message = ok, message
             self.get_logger().info(message)
             return response
