@@ -28,6 +28,7 @@ import numpy as np
 import pytest
 import rclpy
 import yaml
+from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus
 from scipy.spatial.transform import Rotation
 from rcl_interfaces.srv import DescribeParameters, GetParameters, SetParameters
 from rclpy.parameter import Parameter
@@ -176,7 +177,7 @@ class Rig:
     """The test's view of the graph: service and parameter clients, recorded outputs."""
 
     def __init__(self, node, procs):
-        self.node, self.procs = node, list(procs.values())
+        self.node, self.procs, self.controller = node, list(procs.values()), procs["controller"]
         self.status, self.results, self.commands, self.rms = [], [], [], []
         node.create_subscription(String, itf.TOPIC_STATUS,
                                  lambda m: self.status.append(json.loads(m.data)), qos.STATE)
@@ -528,6 +529,7 @@ def _halt_on(rig, cut, reason: str, restore):
     assert np.max(np.abs(np.diff(ramp, axis=0))) <= HALT_ACCELERATION / OUTPUT_RATE + 1e-9
     assert np.all(ramp[-1] == 0.0) and len(ramp) >= 5
     assert np.count_nonzero(np.all(ramp == 0.0, axis=1)) == 1   # one explicit zero, then quiet
+    assert rig.controller.output().count(f"halt: {reason}:") == 1   # logged once
     restore()
     rig.spin(0.3)
 
@@ -567,6 +569,18 @@ def test_permit_required_then_withdrawn_halts(rig):
     assert rig.set_params(io__require_permit=False)[0].successful
     rig.node.destroy_timer(timer)
     rig.node.destroy_publisher(publisher)
+
+
+def test_diagnostics_report_state_and_input_ages(rig):
+    msg = harness.wait_for_message(
+        rig.node, itf.TOPIC_DIAGNOSTICS, DiagnosticArray, qos.STATE, 5.0,
+        predicate=lambda m: any(s.name.startswith("vservo") for s in m.status),
+        processes=rig.procs)
+    status = next(s for s in msg.status if s.name.startswith("vservo"))
+    values = {kv.key: kv.value for kv in status.values}
+    assert values["state"] == rig.state() and values["parameter_problems"] == "none"
+    assert float(values["image_age_s"]) < 0.5 and float(values["joint_state_age_s"]) < 0.5
+    assert status.level == DiagnosticStatus.OK
 
 
 def test_overlay_published_on_request(rig):
