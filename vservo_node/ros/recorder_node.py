@@ -1,0 +1,560 @@
+"""The run recorder node (executable ``vservo_recorder``, node name ``vservo_recorder``): one
+bag per servo run, written by ``vservo_node.record.bag.RunRecorder``, then its report.
+
+Entry point ``main(args=None)`` (console script ``vservo_recorder =
+vservo_node.ros.recorder_node:main``; also ``python -m vservo_node.ros.recorder_node
+--ros-args ...``).
+
+Recorded topics (relative names from ``vservo_node.interface``: remap them). Every subscription
+is ``raw=True``: the serialized CDR bytes go to the bag as they came, nothing is deserialized
+but the status and run result the recorder reads. Log times are the receive times on the node
+clock (ROS time: the simulated clock under ``use_sim_time``), in nanoseconds.
+    ``joint_states``; the commands ``servo/joint_velocity_cmd``, ``servo/joint_trajectory_cmd``,
+    ``servo/twist_cmd``; ``servo/status``, ``servo/feature_error``, ``servo/error_rms``,
+    ``servo/camera_twist``, ``servo/features``, ``servo/run_result``; ``camera/camera_info``,
+    ``camera/image``; ``robot_description``; the simulator's ground truth ``sim/*`` when
+    present. QoS: sensor-data for camera topics, transient local for the latched ones
+    (``servo/run_result``, ``robot_description``, ``sim/taught_camera_pose``), reliable state
+    otherwise. The latched topics other than the run result are published once, so the newest
+    message of each is kept and written into every bag when it opens (log time = that of the
+    status record that opened it).
+
+Runs
+    A bag opens when ``servo/status`` shows a run id not seen before in a moving state
+    (``servoing``, ``settling``, ``braking``; a recorder started mid-run records the rest of
+    it), starting with that status record. The run ends at its ``servo/run_result`` (or a
+    status of that run in ``converged``/``halted``, whichever comes first); ``tail_s`` wall
+    seconds later the bag closes. A result received during the run or its tail is saved as
+    ``result.json``. Run results of other runs (e.g. the latched one of an earlier run) are
+    ignored. Messages while no bag is open are not recorded. A new run that starts before the
+    tail is over closes the bag at once. With ``record_continuously`` one bag covers the
+    whole session (opened at start, closed at shutdown; ``result.json`` holds the latest
+    run's result).
+
+Controller parameters (``params.yaml`` of each bag, as a ROS 2 parameter file of the
+controller node, ``{<fully qualified name>: {ros__parameters: {<dotted name>: value}}}``)
+    Fetched through the ListParameters and GetParameters services of ``controller_node``
+    (retried every second until they answer), then kept current from ``/parameter_events``.
+    A bag that opens before they are known starts without params.yaml (a warning is logged);
+    it is written as soon as they arrive.
+
+After a bag closes
+    With ``make_report`` the report (``vservo_node.record.report.write_report``) is written to
+    ``<bag>/report/`` on a background thread; then the bag's absolute path is published on
+    ``recorder/last_bag`` (std_msgs/String, transient local), so a tool that receives it finds
+    the report complete. A failed report is logged and the path is published all the same.
+
+Parameters (read at start; read-only)
+    ``output_dir`` (str, 'runs'): folder of the bags, created if missing; a bag is
+    ``<output_dir>/<UTC time>_<scenario>/``. ``scenario`` (str, 'live'). ``make_report`` (bool,
+    true). ``record_continuously`` (bool, false). ``tail_s`` (float >= 0, 0.5 s).
+    ``image_every`` (int >= 1, 1): keep every k-th image. ``image_format`` ('' | 'png' |
+    'jpeg', ''): '' records sensor_msgs/Image as is, otherwise as CompressedImage on
+    ``camera/image/compressed``. ``jpeg_quality`` (int 0..100, 90). ``controller_node`` (str,
+    'vservo'). ``max_queue_mb`` (float > 0, 256 MiB): messages waiting for the writer thread;
+    beyond it new messages are dropped and counted (a warning per second says how many).
+
+Threads: the executor thread runs the callbacks, which only stamp, decide and enqueue; one
+writer thread owns the open RunRecorder (PNG/JPEG encoding and file writes happen there), so
+a slow disk or encoder never stalls reception; one report thread draws reports.
+
+Shutdown: SIGINT or SIGTERM closes the open bag cleanly (no report for it: run
+``vservo report <bag>``), publishes its path, and waits for a report in progress. After a
+SIGKILL the bag keeps every split RunRecorder had completed (at most about 0.8 s is lost, plus
+what was queued for the writer).
+
+Note for the controller: this node subscribes to the command topics, so it counts as one of
+their subscribers.
+"""
+from __future__ import annotations
+
+import functools
+import json
+import os
+import queue
+import signal
+import sys
+import threading
+import time
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import rclpy
+import yaml
+from geometry_msgs.msg import PoseStamped, TwistStamped
+from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ParameterDescriptor,
+                                ParameterEvent, ParameterType)
+from rcl_interfaces.srv import GetParameters, ListParameters
+from rclpy.clock import Clock, ClockType
+from rclpy.duration import Duration
+from rclpy.exceptions import ParameterException
+from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
+from rclpy.node import Node
+from rclpy.parameter import parameter_value_to_python
+from rclpy.qos import qos_profile_parameter_events
+from rclpy.serialization import deserialize_message
+from rclpy.signals import SignalHandlerOptions
+from rclpy.task import Future
+from sensor_msgs.msg import CameraInfo, Image, JointState
+from std_msgs.msg import Float64, Float64MultiArray, String
+from trajectory_msgs.msg import JointTrajectory
+
+from vservo_node import interface as itf
+from vservo_node.record.bag import PARAMS_FILE, RunRecorder
+from vservo_node.record.report import write_report
+from vservo_node.ros import dds, qos
+
+RECORDER_NODE = "vservo_recorder"
+TOPIC_LAST_BAG = "recorder/last_bag"   # std_msgs/String, transient local: path of the last bag
+MOVING_STATES = ("servoing", "settling", "braking")
+END_STATES = ("converged", "halted")
+TICK_S = 0.1              # steady timer: run tails, parameter fetch; also lets signals in
+FETCH_TIMEOUT_S = 5.0     # a parameter request unanswered this long is given up and retried
+ACK_TIMEOUT_S = 1.0       # at shutdown, wait this long for recorder/last_bag to be received
+IMAGE_FORMATS = ("", "png", "jpeg")
+
+# topic -> (message class, QoS). Status and run result are read as well as recorded.
+RECORDED = {
+    itf.TOPIC_JOINT_STATES: (JointState, qos.STATE),
+    itf.TOPIC_JOINT_VELOCITY_CMD: (Float64MultiArray, qos.STATE),
+    itf.TOPIC_JOINT_TRAJECTORY_CMD: (JointTrajectory, qos.STATE),
+    itf.TOPIC_TWIST_CMD: (TwistStamped, qos.STATE),
+    itf.TOPIC_STATUS: (String, qos.STATE),
+    itf.TOPIC_FEATURE_ERROR: (Float64MultiArray, qos.STATE),
+    itf.TOPIC_ERROR_RMS: (Float64, qos.STATE),
+    itf.TOPIC_CAMERA_TWIST: (TwistStamped, qos.STATE),
+    itf.TOPIC_FEATURES: (Float64MultiArray, qos.STATE),
+    itf.TOPIC_RUN_RESULT: (String, qos.LATCHED),
+    itf.TOPIC_CAMERA_INFO: (CameraInfo, qos.SENSOR_DATA),
+    itf.TOPIC_IMAGE: (Image, qos.SENSOR_DATA),
+    itf.TOPIC_ROBOT_DESCRIPTION: (String, qos.LATCHED),
+    itf.TOPIC_SIM_CAMERA_POSE_TRUTH: (PoseStamped, qos.STATE),
+    itf.TOPIC_SIM_TARGET_POSE_TRUTH: (PoseStamped, qos.STATE),
+    itf.TOPIC_SIM_TAUGHT_POSE: (PoseStamped, qos.LATCHED),
+}
+
+
+def type_name(msg_class) -> str:
+    """ROS 2 type name of a generated message class: JointState -> 'sensor_msgs/msg/JointState'."""
+    return f"{msg_class.__module__.split('.')[0]}/msg/{msg_class.__name__}"
+
+
+class RunSegmenter:
+    """Decides from status records and run results when a run's bag opens and closes.
+
+    Pure logic (no ROS); ``now`` is a monotonic time in seconds. ``recording`` says whether a
+    bag is open; ``run_id`` is the run being (or last) recorded.
+    """
+
+    def __init__(self, tail_s: float, continuous: bool = False):
+        self.tail_s, self.continuous = tail_s, continuous
+        self.recording = continuous
+        self.run_id: str | None = None
+        self.close_at: float | None = None
+
+    def on_status(self, record: dict, now: float) -> list[str]:
+        """Actions for one status record, in order: 'close' (the open bag), 'open' (a new one)."""
+        run_id, state = record.get("run_id"), record.get("state")
+        if state in MOVING_STATES and run_id and run_id != self.run_id:
+            actions = [] if self.continuous else ["close"] * self.recording + ["open"]
+            self.run_id, self.recording, self.close_at = run_id, True, None
+            return actions
+        if state in END_STATES and run_id == self.run_id:
+            self._end(now)
+        return []
+
+    def on_result(self, result: dict, now: float) -> bool:
+        """True when ``result`` belongs to the run being recorded (then it is to be saved)."""
+        if not (self.recording and self.run_id and result.get("run_id") == self.run_id):
+            return False
+        self._end(now)
+        return True
+
+    def on_tick(self, now: float) -> bool:
+        """True when the tail of the ended run is over: close the bag."""
+        if self.close_at is None or now < self.close_at:
+            return False
+        self.recording, self.close_at = False, None
+        return True
+
+    def _end(self, now: float) -> None:
+        if self.recording and not self.continuous and self.close_at is None:
+            self.close_at = now + self.tail_s
+
+
+class BagWriter:
+    """Runs the RunRecorder operations on one thread, in the order they were enqueued.
+
+    ``make_recorder(params)`` opens a bag; ``on_closed(path, report)`` is called (on the writer
+    thread) after each close, with the ``report`` flag given to `close`. Messages beyond ``max_pending_bytes`` waiting in the queue are dropped
+    and counted in ``dropped``. Errors are logged through ``log`` (an rclpy logger), once per
+    bag for write errors.
+    """
+
+    def __init__(self, make_recorder: Callable[[dict | None], RunRecorder],
+                 on_closed: Callable[[Path, bool], None], max_pending_bytes: int, log):
+        self._make_recorder, self._on_closed, self._log = make_recorder, on_closed, log
+        self._max_pending = max_pending_bytes
+        self._pending = 0
+        self._lock = threading.Lock()
+        self.dropped = 0
+        self._recorder: RunRecorder | None = None
+        self._write_failed = False
+        self._queue: queue.SimpleQueue = queue.SimpleQueue()
+        self._thread = threading.Thread(target=self._run, name="vservo_recorder_writer",
+                                        daemon=True)
+        self._thread.start()
+
+    def open(self, params: dict | None) -> None:
+        self._queue.put(functools.partial(self._open, params))
+
+    def write(self, topic: str, msgtype: str, raw: bytes, stamp_ns: int) -> None:
+        with self._lock:
+            if self._pending + len(raw) > self._max_pending:
+                self.dropped += 1
+                return
+            self._pending += len(raw)
+        self._queue.put(functools.partial(self._write, topic, msgtype, raw, stamp_ns))
+
+    def set_result(self, result: dict) -> None:
+        """Save the run result (result.json) in the open bag."""
+        self._queue.put(functools.partial(self._set_result, result))
+
+    def set_params(self, params: dict) -> None:
+        """Write params.yaml into the open bag unless it has one."""
+        self._queue.put(functools.partial(self._set_params, params))
+
+    def close(self, report: bool = True) -> None:
+        self._queue.put(functools.partial(self._close, report))
+
+    def stop(self) -> None:
+        """Finish every queued operation, then end the thread (the open bag stays open)."""
+        self._queue.put(None)
+        self._thread.join()
+
+    def _run(self) -> None:
+        while (operation := self._queue.get()) is not None:
+            try:
+                operation()
+            except Exception as exc:   # noqa: BLE001 - the recorder must outlive a bad bag
+                self._log.error(f"recording failed: {type(exc).__name__}: {exc}")
+
+    def _open(self, params: dict | None) -> None:
+        self._write_failed = False
+        self._recorder = self._make_recorder(params)
+        self._log.info(f"recording into {self._recorder.bag_dir}")
+
+    def _write(self, topic: str, msgtype: str, raw: bytes, stamp_ns: int) -> None:
+        try:
+            if self._recorder is not None:
+                self._recorder.write(topic, msgtype, raw, stamp_ns)
+        except Exception as exc:   # noqa: BLE001 - reported once per bag, then dropped quietly
+            if not self._write_failed:
+                self._write_failed = True
+                self._log.error(f"cannot write {topic} into {self._recorder.bag_dir}: "
+                                f"{exc}; further messages of this bag are dropped")
+        finally:
+            with self._lock:
+                self._pending -= len(raw)
+
+    def _set_result(self, result: dict) -> None:
+        if self._recorder is not None:
+            self._recorder.set_result(result)
+
+    def _set_params(self, params: dict) -> None:
+        if self._recorder is None:
+            return
+        path = self._recorder.bag_dir / PARAMS_FILE
+        if not path.exists():
+            tmp = path.with_name(path.name + ".tmp")
+            tmp.write_text(yaml.safe_dump(params, sort_keys=False), encoding="utf8")
+            os.replace(tmp, path)
+            self._log.info(f"controller parameters written to {path}")
+
+    def _close(self, report: bool) -> None:
+        recorder, self._recorder = self._recorder, None
+        if recorder is not None:
+            recorder.close()
+            self._on_closed(recorder.bag_dir, report)
+
+
+def _plain(value):
+    """A parameter value as YAML-safe Python: received arrays (array.array) become lists."""
+    return value if isinstance(value, (str, bool, int, float, type(None))) else list(value)
+
+
+class ControllerParams:
+    """The controller node's parameters, fetched through its ListParameters/GetParameters
+    services and kept current from ``/parameter_events``.
+
+    ``values`` is None until the first fetch answered. ``on_fetched()`` is called (executor
+    thread) when it has. Call ``poll(now)`` periodically: it starts a fetch while none is known.
+    """
+
+    def __init__(self, node: Node, controller: str, on_fetched: Callable[[], None]):
+        self._node, self._on_fetched = node, on_fetched
+        self._list = node.create_client(ListParameters, f"{controller}/list_parameters")
+        self._get = node.create_client(GetParameters, f"{controller}/get_parameters")
+        self.node_name = self._list.service_name.rsplit("/", 1)[0]   # fully qualified
+        self.values: dict | None = None
+        self._request: tuple[object, Future, float] | None = None   # (client, future, sent)
+        node.create_subscription(ParameterEvent, "/parameter_events", self._on_event,
+                                 qos_profile_parameter_events)
+
+    def as_file(self) -> dict | None:
+        """ROS 2 parameter-file form ``{node: {'ros__parameters': {...}}}``; None if unknown."""
+        if self.values is None:
+            return None
+        return {self.node_name: {"ros__parameters": dict(sorted(self.values.items()))}}
+
+    def poll(self, now: float) -> None:
+        if self._request is not None and now - self._request[2] > FETCH_TIMEOUT_S:
+            client, future, _ = self._request
+            client.remove_pending_request(future)
+            self._request = None
+            self._node.get_logger().warning(
+                f"{self.node_name} did not answer a parameter request within "
+                f"{FETCH_TIMEOUT_S} s; retrying")
+        if self.values is None and self._request is None and self._list.service_is_ready():
+            self._send(self._list, ListParameters.Request(
+                depth=ListParameters.Request.DEPTH_RECURSIVE), self._on_list)
+
+    def _send(self, client, request, done: Callable[[Future], None]) -> None:
+        future = client.call_async(request)
+        self._request = (client, future, time.monotonic())
+        future.add_done_callback(done)
+
+    def _failed(self, future: Future) -> bool:
+        """True (and a warning; the next poll retries) when a request raised."""
+        self._request = None
+        if future.exception() is None:
+            return False
+        self._node.get_logger().warning(f"parameter request to {self.node_name} failed: "
+                                        f"{future.exception()}; retrying")
+        return True
+
+    def _on_list(self, future: Future) -> None:
+        if not self._failed(future):
+            names = list(future.result().result.names)
+            self._send(self._get, GetParameters.Request(names=names),
+                       functools.partial(self._on_get, names))
+
+    def _on_get(self, names: list[str], future: Future) -> None:
+        if self._failed(future):
+            return
+        self.values = {name: _plain(parameter_value_to_python(value))
+                       for name, value in zip(names, future.result().values)
+                       if value.type != ParameterType.PARAMETER_NOT_SET}
+        self._node.get_logger().info(f"{len(self.values)} parameters of {self.node_name} known")
+        self._on_fetched()
+
+    def _on_event(self, event: ParameterEvent) -> None:
+        if self.values is None or event.node != self.node_name:
+            return
+        for p in (*event.new_parameters, *event.changed_parameters):
+            self.values[p.name] = _plain(parameter_value_to_python(p.value))
+        for p in event.deleted_parameters:
+            self.values.pop(p.name, None)
+
+
+def _descriptor(description: str, **ranges) -> ParameterDescriptor:
+    kind = {"integer_range": IntegerRange, "floating_point_range": FloatingPointRange}
+    extra = {key: [kind[key](**bounds)] for key, bounds in ranges.items()}
+    return ParameterDescriptor(description=description, read_only=True, **extra)
+
+
+PARAMETERS = {  # name -> (default, descriptor)
+    "output_dir": ("runs", _descriptor("folder of the bags (one sub-folder per bag)")),
+    "scenario": ("live", _descriptor("scenario name, part of each bag's folder name")),
+    "make_report": (True, _descriptor("write <bag>/report/ after each bag closes")),
+    "record_continuously": (False, _descriptor("one bag for the whole session, not one per run")),
+    "tail_s": (0.5, _descriptor("wall seconds recorded after a run ends",
+                                floating_point_range={"from_value": 0.0, "to_value": 60.0})),
+    "image_every": (1, _descriptor("keep every k-th image",
+                                   integer_range={"from_value": 1, "to_value": 1000, "step": 1})),
+    "image_format": ("", _descriptor("'' keeps images raw; 'png' or 'jpeg' records them as "
+                                     "CompressedImage on <image topic>/compressed")),
+    "jpeg_quality": (90, _descriptor("JPEG quality for image_format 'jpeg'",
+                                     integer_range={"from_value": 0, "to_value": 100,
+                                                    "step": 1})),
+    "controller_node": (itf.CONTROLLER_NODE, _descriptor("node whose parameters go to "
+                                                         "params.yaml")),
+    "max_queue_mb": (256.0, _descriptor("MiB of messages waiting for the writer thread before "
+                                        "new ones are dropped",
+                                        floating_point_range={"from_value": 1.0,
+                                                              "to_value": 65536.0})),
+}
+
+
+class RecorderNode(Node):
+    """See the module docstring. Raises ValueError for an invalid parameter value."""
+
+    def __init__(self, **kwargs):
+        super().__init__(RECORDER_NODE, **kwargs)
+        p = {name: self.declare_parameter(name, default, descriptor).value
+             for name, (default, descriptor) in PARAMETERS.items()}
+        if p["image_format"] not in IMAGE_FORMATS:
+            raise ValueError(f"image_format must be one of {IMAGE_FORMATS}, got "
+                             f"{p['image_format']!r}")
+        self.output_dir = Path(p["output_dir"]).resolve()
+        self.make_report = p["make_report"]
+        self._recorder_args = dict(image_every=p["image_every"],
+                                   image_format=p["image_format"] or None,
+                                   jpeg_quality=p["jpeg_quality"])
+        self._scenario = p["scenario"]
+        self.segmenter = RunSegmenter(p["tail_s"], p["record_continuously"])
+        self._latest_latched: dict[str, tuple[str, bytes]] = {}
+        self._dropped_reported, self._dropped_warned_at = 0, -1.0
+        self._pub_last_bag = self.create_publisher(String, TOPIC_LAST_BAG, qos.LATCHED)
+        self._reports = ThreadPoolExecutor(max_workers=1, thread_name_prefix="vservo_report")
+        self.writer = BagWriter(self._new_recorder, self._on_closed,
+                                int(p["max_queue_mb"] * 2**20), self.get_logger())
+        self.params = ControllerParams(self, p["controller_node"], self._on_params_fetched)
+        for topic, (msg_class, profile) in RECORDED.items():
+            self._subscribe(topic, msg_class, profile)
+        self.create_timer(TICK_S, self._tick, clock=Clock(clock_type=ClockType.STEADY_TIME))
+        if self.segmenter.continuous:
+            self._open(self.get_clock().now().nanoseconds)
+        self.get_logger().info(
+            f"recording {'the whole session' if self.segmenter.continuous else 'each run'} "
+            f"into {self.output_dir}")
+
+    # ------------------------------------------------------------------------ subscriptions
+    def _subscribe(self, topic: str, msg_class, profile) -> None:
+        """Record ``topic`` under its resolved (remapped, absolute) name."""
+        name, msgtype = self.resolve_topic_name(topic), type_name(msg_class)
+        keep_latest = profile is qos.LATCHED and topic != itf.TOPIC_RUN_RESULT
+        handle = {itf.TOPIC_STATUS: self._on_status,
+                  itf.TOPIC_RUN_RESULT: self._on_result}.get(topic)
+
+        def callback(raw: bytes) -> None:
+            stamp_ns = self.get_clock().now().nanoseconds
+            if handle is not None:
+                handle(raw, stamp_ns)
+            if keep_latest:
+                self._latest_latched[name] = (msgtype, raw)
+            if self.segmenter.recording:
+                self.writer.write(name, msgtype, raw, stamp_ns)
+
+        self.create_subscription(msg_class, topic, callback, profile, raw=True)
+
+    def _on_status(self, raw: bytes, stamp_ns: int) -> None:
+        record = _json_object(raw)
+        for action in self.segmenter.on_status(record, time.monotonic()) if record else ():
+            if action == "close":
+                self.writer.close()
+            else:
+                self._open(stamp_ns)
+
+    def _on_result(self, raw: bytes, stamp_ns: int) -> None:
+        result = _json_object(raw)
+        if result and self.segmenter.on_result(result, time.monotonic()):
+            self.writer.set_result(result)
+
+    # ------------------------------------------------------------------------ bags
+    def _open(self, stamp_ns: int) -> None:
+        """Open a bag; the newest latched messages go in first, logged at ``stamp_ns``."""
+        params = self.params.as_file()
+        if params is None:
+            self.get_logger().warning(
+                f"parameters of {self.params.node_name} unknown (its parameter services did "
+                "not answer yet): the bag starts without params.yaml, written when they arrive")
+        self.writer.open(params)
+        for topic, (msgtype, raw) in self._latest_latched.items():
+            self.writer.write(topic, msgtype, raw, stamp_ns)
+
+    def _new_recorder(self, params: dict | None) -> RunRecorder:
+        return RunRecorder(self.output_dir, self._scenario, params=params,
+                           **self._recorder_args)
+
+    def _on_params_fetched(self) -> None:
+        if self.segmenter.recording:
+            self.writer.set_params(self.params.as_file())
+
+    def _on_closed(self, bag_dir: Path, report: bool) -> None:
+        """Writer thread: hand the bag to the report thread, which announces the bags in the
+        order they closed."""
+        self._reports.submit(self._finish, bag_dir, report and self.make_report)
+
+    def _finish(self, bag_dir: Path, report: bool) -> None:
+        """Report thread: write the report if asked, then publish the bag's path."""
+        if report:
+            try:
+                page, _ = write_report(bag_dir)
+                self.get_logger().info(f"report: {page}")
+            except Exception as exc:   # noqa: BLE001 - a bad run must not stop the recorder
+                self.get_logger().error(f"report of {bag_dir} failed: "
+                                        f"{type(exc).__name__}: {exc}")
+        elif self.make_report:
+            self.get_logger().info(f"no report for {bag_dir} (closed at shutdown): run "
+                                   f"`vservo report {bag_dir}`")
+        self._pub_last_bag.publish(String(data=str(bag_dir)))
+        self.get_logger().info(f"bag closed: {bag_dir}")
+
+    # ------------------------------------------------------------------------ timer, shutdown
+    def _tick(self) -> None:
+        now = time.monotonic()
+        self.params.poll(now)
+        if self.segmenter.on_tick(now):
+            self.writer.close()
+        dropped = self.writer.dropped
+        if dropped > self._dropped_reported and now - self._dropped_warned_at >= 1.0:
+            self.get_logger().warning(f"{dropped - self._dropped_reported} message(s) dropped: "
+                                      "the writer is behind by more than max_queue_mb")
+            self._dropped_reported, self._dropped_warned_at = dropped, now
+
+    def shutdown(self) -> None:
+        """Close the open bag (no report), finish the reports of runs that ended, announce
+        every closed bag."""
+        if self.segmenter.recording:
+            self.writer.close(report=False)
+        self.writer.stop()
+        self._reports.shutdown(wait=True)
+        # the process is about to exit: let reliable subscribers acknowledge the last path
+        self._pub_last_bag.wait_for_all_acked(Duration(seconds=ACK_TIMEOUT_S))
+
+
+def _json_object(raw: bytes) -> dict | None:
+    """The JSON object carried by a serialized std_msgs/String; None if it is not one."""
+    try:
+        value = json.loads(deserialize_message(raw, String).data)
+    except ValueError:
+        return None
+    return value if isinstance(value, dict) else None
+
+
+def _interrupt(signum, frame):
+    raise KeyboardInterrupt
+
+
+def main(args=None) -> int:
+    """Console entry point of ``vservo_recorder``; parameters from ``--ros-args``."""
+    dds.use_shm_profile()
+    # Our own signal handling: the context must outlive SIGINT/SIGTERM until the open bag is
+    # closed and announced. The steady tick timer wakes the executor so the handler runs.
+    rclpy.init(args=args, signal_handler_options=SignalHandlerOptions.NO)
+    signal.signal(signal.SIGINT, _interrupt)
+    signal.signal(signal.SIGTERM, _interrupt)
+    try:
+        node = RecorderNode()
+    except (ValueError, ParameterException) as exc:
+        print(f"vservo_recorder: cannot start: {exc}", file=sys.stderr)
+        rclpy.try_shutdown()
+        return 2
+    executor = SingleThreadedExecutor()
+    executor.add_node(node)
+    try:
+        executor.spin()
+    except (KeyboardInterrupt, ExternalShutdownException):
+        pass
+    finally:
+        node.shutdown()
+        executor.shutdown(timeout_sec=1.0)
+        node.destroy_node()
+        rclpy.try_shutdown()
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
