@@ -1,0 +1,54 @@
+"""`vservo sweep SWEEP.yaml [--workers N] [--out DIR] [--scheduler ADDRESS]`: many headless
+scenario episodes over ranges of start offsets, calibration errors, noise and parameters
+(vservo_node/record/sweep.py), summarised as JSON, CSV and figures."""
+from __future__ import annotations
+
+import os
+import sys
+
+
+def register(subparsers) -> None:
+    parser = subparsers.add_parser(
+        "sweep", help="robustness sweep: many headless scenario episodes, success rate and map",
+        description="Runs the episodes a sweep file describes (shipped name from config/sweeps, "
+                    "or a path) and writes episodes.csv, summary.json, success_map.csv/.png, "
+                    "time_to_converge.png and, when controller parameters vary, params.csv.")
+    parser.add_argument("sweep", help="sweep file: shipped name (e.g. quick) or YAML path")
+    parser.add_argument("--workers", type=int, default=os.cpu_count() or 1,
+                        help="local worker processes (default: one per core)")
+    parser.add_argument("--out", help="output folder (default: runs/sweep_<name>)")
+    parser.add_argument("--scheduler", metavar="ADDRESS",
+                        help="run on the Dask cluster whose scheduler listens here (e.g. "
+                             "tcp://127.0.0.1:8786) instead of local processes")
+    parser.add_argument("--quiet", action="store_true", help="no progress bar")
+    parser.set_defaults(func=_run)
+
+
+def _run(args) -> int:
+    from vservo_node.record.sweep import SweepError, load_sweep, run_sweep, write_results
+
+    try:
+        spec = load_sweep(args.sweep)
+        run = run_sweep(spec, workers=args.workers, scheduler=args.scheduler,
+                        progress=not args.quiet)
+    except (SweepError, FileNotFoundError) as exc:
+        print(f"vservo sweep: {exc}", file=sys.stderr)
+        return 2
+    written = write_results(run, args.out or os.path.join("runs", f"sweep_{spec.name}"))
+    s = run.summary
+    rate = "n/a" if s["success_rate"] is None else f"{100 * s['success_rate']:.0f}%"
+    print(f"sweep {s['name']} on {s['scenario']}: {s['successes']}/{s['ran']} succeeded "
+          f"({rate}); {s['skipped']} skipped, {s['errors']} errors; "
+          f"{run.wall_s:.1f} s wall on {run.workers}")
+    times = s["time_to_converge_s"]
+    if times:
+        print(f"time to converge: median {times['median']:.2f} s, p90 {times['p90']:.2f} s, "
+              f"max {times['max']:.2f} s")
+    for reason, count in s["failure_reasons"].items():
+        print(f"  {count:4d} x {reason}")
+    best = (s["best_params"] or {}).get("best")
+    if best:
+        print(f"best parameters: {best['values']} ({100 * best['success_rate']:.0f}% of "
+              f"{best['episodes']})")
+    print(f"results: {os.path.dirname(written[0])}")
+    return 1 if s["errors"] else 0
