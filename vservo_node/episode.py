@@ -214,22 +214,22 @@ def run_point_case(case: PointCase, record: bool = False) -> EpisodeResult:
 
 
 # ----------------------------------------------------------------------------- scenario episodes
-# The one required parameter without a default (vservo_node.params: limits.joint_acceleration);
-# headless episodes use the 2 rad/s^2 that limits_for() uses for the core cases.
-EPISODE_PARAMS = {"limits.joint_acceleration": [2.0]}
+# The controller's shipped parameter file for the simulated bench cell (config/): the base of
+# every headless scenario episode, as it is the node's when it runs against vservo_sim.
+EPISODE_PARAMS_FILE = "vservo_sim.yaml"
 # The reference is taught from an image exposed this long before the run starts (s), so its
 # image noise is drawn for another instant than the first frame's.
 TEACH_TIME_S = -1.0
 
 
 def episode_params(overrides: dict | None = None, camera_rate_hz: float | None = None) -> dict:
-    """Validated controller parameters (vservo_node.params names) for a headless episode:
-    the schema defaults, :data:`EPISODE_PARAMS`, ``io.camera_rate_hz`` = ``camera_rate_hz``
-    (the simulated camera's rate) when given, then ``overrides``. ValueError lists what the
-    schema refuses."""
-    from vservo_node import params
+    """Validated controller parameters (vservo_node.params names) for a headless episode: those
+    of :data:`EPISODE_PARAMS_FILE` over the schema defaults, ``io.camera_rate_hz`` =
+    ``camera_rate_hz`` (the simulated camera's rate) when given, then ``overrides``.
+    ValueError lists what the schema refuses."""
+    from vservo_node import params, paths
 
-    base = dict(EPISODE_PARAMS)
+    base = params.load_params_file(paths.config_dir() / EPISODE_PARAMS_FILE)
     if camera_rate_hz is not None:
         base["io.camera_rate_hz"] = float(camera_rate_hz)
     checked = params.validate({**base, **(overrides or {})})
@@ -319,7 +319,9 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     """One run of a scenario through the node's code path, without ROS or clocks.
 
     ``scenario``: a shipped name, a path or a loaded ``sim.Scenario``. ``overrides``: controller
-    parameters by their schema names (vservo_node.params) over :func:`episode_params`.
+    parameters by their schema names (vservo_node.params) over :func:`episode_params`; the
+    arm, camera and target are the scenario's (``robot.*`` other than ``robot.tool_point``,
+    ``target.file`` and ``reference.*`` do not apply).
     ``seed``: mixed with the scenario's seed for the image and joint-state noise.
     ``focal_scale``: the controller believes focal lengths ``focal_scale`` times the true ones
     (the scenario format has no entry for it).
