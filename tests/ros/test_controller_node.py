@@ -574,9 +574,9 @@ def test_permit_required_then_withdrawn_halts(rig):
 def test_diagnostics_report_state_and_input_ages(rig):
     msg = harness.wait_for_message(
         rig.node, itf.TOPIC_DIAGNOSTICS, DiagnosticArray, qos.STATE, 5.0,
-        predicate=lambda m: any(s.name.startswith("vservo") for s in m.status),
+        predicate=lambda m: any(s.name.startswith("/vservo:") for s in m.status),
         processes=rig.procs)
-    status = next(s for s in msg.status if s.name.startswith("vservo"))
+    status = next(s for s in msg.status if s.name.startswith("/vservo:"))
     values = {kv.key: kv.value for kv in status.values}
     assert values["state"] == rig.state() and values["parameter_problems"] == "none"
     assert float(values["image_age_s"]) < 0.5 and float(values["joint_state_age_s"]) < 0.5

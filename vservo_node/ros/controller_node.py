@@ -98,23 +98,24 @@ Services (std_srvs; every refusal names the failing checks in ``message``, as
     ``reference.directory``/``reference.name``.yaml, and loaded (``reference.file`` is set to
     it); refused while a run moves.
 
-State x service (states: ``interface.SUPERVISOR_STATES``; "checks" = the checks above):
+State x service (states: ``interface.SUPERVISOR_STATES``; "checks": the checks above pass or
+the call is refused naming them; "ok": accepted, state unchanged; every call answers at once):
 
-=========================  ================  =================  ==============  ==============  ================
-state                      enable true       enable false       start           stop            capture_reference
-=========================  ================  =================  ==============  ==============  ================
-disabled                   checks -> armed   ok, no change      refused         ok, no change   checks -> loaded
-armed                      ok, no change     -> disabled        checks ->       ok, no change   checks -> loaded
-                                                                servoing
-servoing, settling         ok, no change     -> braking         refused         -> braking      refused
-                                             (motion_disabled)                  (stop_requested)
-                                             -> halted ->
-                                             disabled
-braking                    ok, no change     ok; ends halted    refused         ok, no change   refused
-                                             -> disabled
-converged, halted          ok, no change     -> disabled        checks ->       ok, no change   checks -> loaded
-                                                                servoing
-=========================  ================  =================  ==============  ==============  ================
+=================  ===============  ===================  ===========  ================  ==========
+state              enable true      enable false         start        stop              capture
+=================  ===============  ===================  ===========  ================  ==========
+disabled           checks, armed    ok                   refused      ok                checks,
+                                                                                        loaded
+armed              ok               disabled             checks,      ok                checks,
+                                                         servoing                       loaded
+servoing,          ok               braking              refused      braking           refused
+settling                            (motion_disabled),                (stop_requested),
+                                    halted, disabled                  halted
+braking            ok               ok, ends halted,     refused      ok                refused
+                                    then disabled
+converged,         ok               disabled             checks,      ok                checks,
+halted                                                   servoing                       loaded
+=================  ===============  ===================  ===========  ================  ==========
 
 Before the robot model and valid parameters exist there is no servo: enable and start are
 refused (naming the missing piece), stop and enable false succeed doing nothing.
@@ -827,6 +828,7 @@ class ControllerNode(Node):
             self._permit = bool(msg.data)
             self._rx["permit"] = time.monotonic()
 
+    @_guarded
     def _on_truth(self, which: str, msg: PoseStamped) -> None:
         self._truth[which] = convert.pose_to_matrix(msg)
 
@@ -971,13 +973,15 @@ class ControllerNode(Node):
             }
         if problems or self.arm is None:
             level, message = DiagnosticStatus.ERROR, "; ".join(problems + missing)
-        elif values["state"] in ("braking", "halted") or missing:
-            level = DiagnosticStatus.WARN
-            message = f"{values['state']} {values['reason']}".strip() if servo else "; ".join(missing)
+        elif missing:
+            level, message = DiagnosticStatus.WARN, "; ".join(missing)
+        elif values["state"] in ("braking", "halted"):
+            level, message = DiagnosticStatus.WARN, f"{values['state']}: {values['reason']}"
         else:
             level, message = DiagnosticStatus.OK, values["state"]
         status = DiagnosticStatus(
-            level=level, name=f"{self.get_name()}: visual servo", message=message,
+            level=level, name=f"{self.get_fully_qualified_name()}: visual servo",
+            message=message,
             hardware_id=self._values["robot.tool_frame"],
             values=[KeyValue(key=k, value=f"{v:.3f}" if isinstance(v, float) else str(v))
                     for k, v in values.items()])
