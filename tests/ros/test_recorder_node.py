@@ -369,3 +369,15 @@ def test_type_names_match_the_typestore():
     store = default_typestore()
     for cls in (TwistStamped, CameraInfo, String):
         assert type_name(cls) in store.types
+
+
+def test_invalid_parameters_refuse_to_start_naming_the_problem(tmp_path):
+    harness.require_isolation()
+    procs = {"image_format must be one of": start_recorder(tmp_path, "-p", "image_format:=gif"),
+             "image_every out of range": start_recorder(tmp_path, "-p", "image_every:=0")}
+    for expected, proc in procs.items():
+        assert proc.popen.wait(30.0) == 2, proc.describe()
+        assert expected in proc.output(), proc.describe()
+        proc.stop()
+        proc.remove_log()
+    assert list(tmp_path.iterdir()) == []

@@ -48,8 +48,8 @@ Parameters (read at start; read-only)
     ``output_dir`` (str, 'runs'): folder of the bags, created if missing; a bag is
     ``<output_dir>/<UTC time>_<scenario>/``. ``scenario`` (str, 'live'). ``make_report`` (bool,
     true). ``record_continuously`` (bool, false). ``tail_s`` (float >= 0, 0.5 s).
-    ``image_every`` (int >= 1, 1): keep every k-th image. ``image_format`` ('' | 'png' |
-    'jpeg', ''): '' records sensor_msgs/Image as is, otherwise as CompressedImage on
+    ``image_every`` (int >= 1, 1): keep every k-th image. ``image_format`` ('raw' | 'png' |
+    'jpeg', 'raw'): 'raw' records sensor_msgs/Image as is, the others as CompressedImage on
     ``camera/image/compressed``. ``jpeg_quality`` (int 0..100, 90). ``controller_node`` (str,
     'vservo'). ``max_queue_mb`` (float > 0, 256 MiB): messages waiting for the writer thread;
     beyond it new messages are dropped and counted (a warning per second says how many).
@@ -112,7 +112,7 @@ END_STATES = ("converged", "halted")
 TICK_S = 0.1              # steady timer: run tails, parameter fetch; also lets signals in
 FETCH_TIMEOUT_S = 5.0     # a parameter request unanswered this long is given up and retried
 ACK_TIMEOUT_S = 1.0       # at shutdown, wait this long for recorder/last_bag to be received
-IMAGE_FORMATS = ("", "png", "jpeg")
+IMAGE_FORMATS = ("raw", "png", "jpeg")
 
 # topic -> (message class, QoS). Status and run result are read as well as recorded.
 RECORDED = {
@@ -187,8 +187,8 @@ class BagWriter:
     """Runs the RunRecorder operations on one thread, in the order they were enqueued.
 
     ``make_recorder(params)`` opens a bag; ``on_closed(path, report)`` is called (on the writer
-    thread) after each close, with the ``report`` flag given to `close`. Messages beyond ``max_pending_bytes`` waiting in the queue are dropped
-    and counted in ``dropped``. Errors are logged through ``log`` (an rclpy logger), once per
+    thread) after each close, with the ``report`` flag given to `close`. Messages beyond
+    ``max_pending_bytes`` waiting in the queue are dropped and counted in ``dropped``. Errors are logged through ``log`` (an rclpy logger), once per
     bag for write errors.
     """
 
@@ -373,8 +373,8 @@ PARAMETERS = {  # name -> (default, descriptor)
                                 floating_point_range={"from_value": 0.0, "to_value": 60.0})),
     "image_every": (1, _descriptor("keep every k-th image",
                                    integer_range={"from_value": 1, "to_value": 1000, "step": 1})),
-    "image_format": ("", _descriptor("'' keeps images raw; 'png' or 'jpeg' records them as "
-                                     "CompressedImage on <image topic>/compressed")),
+    "image_format": ("raw", _descriptor("'raw' records images as they come; 'png' or 'jpeg' "
+                                        "as CompressedImage on <image topic>/compressed")),
     "jpeg_quality": (90, _descriptor("JPEG quality for image_format 'jpeg'",
                                      integer_range={"from_value": 0, "to_value": 100,
                                                     "step": 1})),
@@ -400,7 +400,8 @@ class RecorderNode(Node):
         self.output_dir = Path(p["output_dir"]).resolve()
         self.make_report = p["make_report"]
         self._recorder_args = dict(image_every=p["image_every"],
-                                   image_format=p["image_format"] or None,
+                                   image_format=(None if p["image_format"] == "raw"
+                                                 else p["image_format"]),
                                    jpeg_quality=p["jpeg_quality"])
         self._scenario = p["scenario"]
         self.segmenter = RunSegmenter(p["tail_s"], p["record_continuously"])
