@@ -6,13 +6,13 @@ import re
 import sys
 import signal
 import textwrap
-import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import cv2
 import numpy as np
 import pytest
+import yaml
 from rosbags.highlevel import AnyReader
 from std_msgs.msg import String
 
@@ -26,7 +26,6 @@ URDF = Path(__file__).parents[1] / "control" / "data" / "planar3.urdf"
 CYCLES = 20          # servo cycles of the stub's run r1, one message per topic each
 IMAGE_EVERY = 2
 TAIL_S = 0.3
-SESSION_LAST_BAG = "session_recorder/last_bag"
 
 
 # ------------------------------------------------------------------------ segmentation
@@ -85,7 +84,7 @@ STUB = textwrap.dedent("""
     from vservo_node.ros import convert, harness, qos
     from vservo_node.vision.camera import CameraModel
 
-    urdf, cycles = open(sys.argv[1]).read(), int(sys.argv[2])
+    urdf, cycles, recorders = open(sys.argv[1]).read(), int(sys.argv[2]), int(sys.argv[3])
     joints = ["p_j1", "p_j2", "p_j3"]
     rclpy.init()
     node = rclpy.create_node("vservo")
@@ -118,7 +117,8 @@ STUB = textwrap.dedent("""
     pub[itf.TOPIC_ROBOT_DESCRIPTION].publish(String(data=urdf))
     pub[itf.TOPIC_SIM_TAUGHT_POSE].publish(convert.matrix_to_pose(np.eye(4), 0.0, "base_link"))
     for t in topics:
-        harness.wait_for_subscriber(node, t, timeout=30.0)
+        harness.wait_until(lambda: node.count_subscribers(t) >= recorders, 30.0,
+                           f"every recorder on {t}")
     time.sleep(1.5)            # the recorder fetches the parameters (it polls at 10 Hz)
     node.set_parameters([Parameter("control.tolerance_px", value=1.25)])   # an event
     camera = CameraModel.pinhole(32, 24, 30.0, 30.0, 15.5, 11.5)
@@ -206,36 +206,43 @@ def stop(proc, sig):
 
 @pytest.fixture(scope="module")
 def session(ros_node, tmp_path_factory):
-    """Two recorders and the stub: ``per_run`` (images decimated and PNG-encoded) and
-    ``continuous`` (record_continuously, its last_bag topic and node name remapped). Run r1
-    ends normally; during r2 the first gets SIGINT, the second SIGTERM."""
+    """Three recorders and the stub: ``per_run`` (images decimated and PNG-encoded),
+    ``continuous`` (record_continuously) and ``killed`` (no report); the last two with their
+    node name and last_bag topic remapped. Run r1 ends normally; during r2 the recorders get
+    SIGINT, SIGTERM and SIGKILL, the last once its r2 bag has a completed split."""
     per_run = Recorder(tmp_path_factory.mktemp("runs"))
     continuous = Recorder(tmp_path_factory.mktemp("session"))
+    killed = Recorder(tmp_path_factory.mktemp("killed"))
     runs_seen = set()
+    last_bag_topics = ((TOPIC_LAST_BAG, per_run), ("session_recorder/last_bag", continuous),
+                       ("killed_recorder/last_bag", killed))
     subs = [ros_node.create_subscription(String, topic, lambda m, r=r: r.announced.append(
-                Path(m.data)), qos.LATCHED)
-            for topic, r in ((TOPIC_LAST_BAG, per_run), (SESSION_LAST_BAG, continuous))]
+                Path(m.data)), qos.LATCHED) for topic, r in last_bag_topics]
     subs.append(ros_node.create_subscription(
         String, itf.TOPIC_STATUS, lambda m: runs_seen.add(json.loads(m.data)["run_id"]),
         qos.STATE))
     procs = [start_recorder(per_run.out, "-p", f"image_every:={IMAGE_EVERY}",
                             "-p", "image_format:=png", "-p", f"tail_s:={TAIL_S}"),
              start_recorder(continuous.out, "-p", "record_continuously:=true",
-                            "-r", "__node:=vservo_session_recorder",
-                            "-r", f"{TOPIC_LAST_BAG}:={SESSION_LAST_BAG}")]
+                            "-r", "__node:=session_recorder",
+                            "-r", f"{TOPIC_LAST_BAG}:={last_bag_topics[1][0]}"),
+             start_recorder(killed.out, "-p", "make_report:=false",
+                            "-r", "__node:=killed_recorder",
+                            "-r", f"{TOPIC_LAST_BAG}:={last_bag_topics[2][0]}")]
     try:
-        for topic in (TOPIC_LAST_BAG, SESSION_LAST_BAG):
+        for topic, _ in last_bag_topics:
             harness.wait_for_publisher(ros_node, topic, 30.0, procs)
-        procs.append(harness.NodeProcess([sys.executable, "-c", STUB, str(URDF), str(CYCLES)],
-                                         "stub"))
-        harness.spin_until(ros_node, lambda: len(per_run.announced) == 1, 60.0,
-                           "the bag of run r1", procs)
+        procs.append(harness.NodeProcess([sys.executable, "-c", STUB, str(URDF), str(CYCLES),
+                                          str(len(last_bag_topics))], "stub"))
+        harness.spin_until(ros_node, lambda: len(per_run.announced) == 1
+                           and len(killed.announced) == 1, 60.0, "the bags of run r1", procs)
         harness.spin_until(ros_node, lambda: "r2" in runs_seen, 20.0, "run r2", procs)
-        harness.wait_until(lambda: len(list(per_run.out.glob("*/.open/*"))) > 0, 10.0,
-                           "the bag of r2 to hold an open split", procs)
-        time.sleep(0.5)          # ~10 cycles of r2 into it
+        harness.wait_until(lambda: any(completed_splits(b) for b in killed.out.iterdir()
+                                       if b not in killed.announced), 10.0,
+                           "a completed split in the r2 bag of 'killed'", procs)
         per_run.code = stop(procs[0], signal.SIGINT)
         continuous.code = stop(procs[1], signal.SIGTERM)
+        killed.code = stop(procs[2], signal.SIGKILL)
         harness.spin_until(ros_node, lambda: len(per_run.announced) == 2
                            and len(continuous.announced) == 1, 5.0, "the bags closed at exit")
     finally:
@@ -243,10 +250,20 @@ def session(ros_node, tmp_path_factory):
             proc.stop()
         for sub in subs:
             ros_node.destroy_subscription(sub)
-    per_run.log, continuous.log = procs[0].output(), procs[1].output()
-    yield per_run, continuous
+    for rec, proc in zip((per_run, continuous, killed), procs):
+        rec.log = proc.output()
+    yield per_run, continuous, killed
     for proc in procs:
         proc.remove_log()
+
+
+def completed_splits(bag):
+    """The split files metadata.yaml lists (RunRecorder lists only closed ones)."""
+    try:
+        info = yaml.safe_load((bag / "metadata.yaml").read_text())
+    except (OSError, yaml.YAMLError):
+        return []
+    return info["rosbag2_bagfile_information"]["relative_file_paths"]
 
 
 def read_bag(path):
@@ -381,3 +398,15 @@ def test_invalid_parameters_refuse_to_start_naming_the_problem(tmp_path):
         proc.stop()
         proc.remove_log()
     assert list(tmp_path.iterdir()) == []
+
+
+def test_sigkill_keeps_the_completed_splits(session):
+    """After SIGKILL the r2 bag is readable up to its last completed split; r1's is whole."""
+    rec = session[2]
+    assert rec.code == -signal.SIGKILL
+    (r1,) = rec.announced
+    (r2,) = [b for b in rec.out.iterdir() if b != r1]
+    assert not (r1 / OPEN_DIR).exists() and (r1 / "result.json").is_file()
+    got = read_bag(r2)
+    assert {json.loads(m.data)["run_id"] for _, m in got["/servo/status"][1]} == {"r2"}
+    assert len(got["/joint_states"][1]) >= 1

@@ -28,13 +28,14 @@ Runs
     ``result.json``. Run results of other runs (e.g. the latched one of an earlier run) are
     ignored. Messages while no bag is open are not recorded. A new run that starts before the
     tail is over closes the bag at once. With ``record_continuously`` one bag covers the
-    whole session (opened at start, closed at shutdown; ``result.json`` holds the latest
-    run's result).
+    whole session (opened at start, closed at shutdown, so without an automatic report;
+    ``result.json`` holds the latest run's result).
 
 Controller parameters (``params.yaml`` of each bag, as a ROS 2 parameter file of the
 controller node, ``{<fully qualified name>: {ros__parameters: {<dotted name>: value}}}``)
-    Fetched through the ListParameters and GetParameters services of ``controller_node``
-    (retried every second until they answer), then kept current from ``/parameter_events``.
+    Fetched through the ListParameters and GetParameters services of ``controller_node`` as
+    soon as they appear (a request unanswered for 5 s is retried), then kept current from
+    ``/parameter_events``.
     A bag that opens before they are known starts without params.yaml (a warning is logged);
     it is written as soon as they arrive.
 
@@ -51,17 +52,19 @@ Parameters (read at start; read-only)
     ``image_every`` (int >= 1, 1): keep every k-th image. ``image_format`` ('raw' | 'png' |
     'jpeg', 'raw'): 'raw' records sensor_msgs/Image as is, the others as CompressedImage on
     ``camera/image/compressed``. ``jpeg_quality`` (int 0..100, 90). ``controller_node`` (str,
-    'vservo'). ``max_queue_mb`` (float > 0, 256 MiB): messages waiting for the writer thread;
-    beyond it new messages are dropped and counted (a warning per second says how many).
+    'vservo'). ``max_queue_mb`` (float 1..65536, 256 MiB): messages waiting for the writer
+    thread; beyond it new messages are dropped and counted (a warning per second says how
+    many).
 
 Threads: the executor thread runs the callbacks, which only stamp, decide and enqueue; one
 writer thread owns the open RunRecorder (PNG/JPEG encoding and file writes happen there), so
 a slow disk or encoder never stalls reception; one report thread draws reports.
 
 Shutdown: SIGINT or SIGTERM closes the open bag cleanly (no report for it: run
-``vservo report <bag>``), publishes its path, and waits for a report in progress. After a
-SIGKILL the bag keeps every split RunRecorder had completed (at most about 0.8 s is lost, plus
-what was queued for the writer).
+``vservo report <bag>``), finishes the reports of runs that ended before, and publishes the
+paths in the order the bags closed. After a SIGKILL the bag keeps every split RunRecorder had
+completed (RunRecorder's bound: at most about 0.8 s is lost, plus what was queued for the
+writer).
 
 Note for the controller: this node subscribes to the command topics, so it counts as one of
 their subscribers.
