@@ -41,6 +41,10 @@ TOPIC_SIM_CAMERA_POSE_TRUTH = "sim/camera_pose_truth"   # geometry_msgs/PoseStam
 TOPIC_SIM_TARGET_POSE_TRUTH = "sim/target_pose_truth"   # geometry_msgs/PoseStamped, base frame
 TOPIC_SIM_TAUGHT_POSE = "sim/taught_camera_pose"        # geometry_msgs/PoseStamped, latched
 
+# --- run recorder node (executable `vservo_recorder`) --------------------------------------
+RECORDER_NODE = "vservo_recorder"
+TOPIC_LAST_BAG = "recorder/last_bag"      # std_msgs/String, transient local: last closed bag
+
 # --- status record ---------------------------------------------------------------------------
 # One JSON object per servo cycle on TOPIC_STATUS (and one row per cycle in headless runs).
 STATUS_FIELDS = (

@@ -47,6 +47,7 @@ HALT_REASONS = {
     "run_timeout": "the run exceeded its maximum duration",
     "numerical_fault": "a non-finite value reached the control law or the limiter",
     "motion_disabled": "motion was disabled",
+    "internal_error": "an unexpected error in the node (see its log)",
 }
 MOVING_STATES = ("servoing", "settling", "braking")
 

@@ -1008,7 +1008,9 @@ class ControllerNode(Node):
         if v["io.require_permit"] and not self._permit_ok():
             out.append(f"permit: no fresh True on {itf.TOPIC_MOTION_PERMIT} "
                        f"(io.require_permit; io.permit_timeout_s = {v['io.permit_timeout_s']})")
-        subscribers = self.count_subscribers(self._command_topic)
+        # The run recorder listens to the command topic too; it is not an arm controller.
+        subscribers = sum(1 for info in self.get_subscriptions_info_by_topic(self._command_topic)
+                          if info.node_name != itf.RECORDER_NODE)
         publishers = self.count_publishers(self._command_topic)
         if subscribers == 0:
             out.append(f"command_topic: nobody subscribes to {self._command_topic}; the arm's "

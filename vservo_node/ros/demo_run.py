@@ -59,8 +59,6 @@ def controller_overrides(scenario, reference_file: Path, folder: Path) -> Path:
                    else scenario.target.name},
         "reference": {"file": str(reference_file)},
         "io": {"camera_rate_hz": float(scenario.fps)},
-        "limits": {"max_rotation_deg": 150.0},
-        "control": {"tolerance_px": 0.1},
     }
     path = folder / "controller_overrides.yaml"
     path.write_text(yaml.safe_dump({"vservo": {"ros__parameters": values}}))
@@ -74,12 +72,14 @@ class _Watcher(Node):
         super().__init__("vservo_demo")
         self.arm = arm
         self.result = None
+        self.last_bag = None
         self.status = None
         self.q = None
         self.peak_joint_ratio = 0.0
         self.peak_tcp = 0.0
         self.create_subscription(String, interface.TOPIC_RUN_RESULT, self._on_result,
                                  qos.LATCHED)
+        self.create_subscription(String, interface.TOPIC_LAST_BAG, self._on_bag, qos.LATCHED)
         self.create_subscription(String, interface.TOPIC_STATUS, self._on_status,
                                  qos.STATE)
         self.create_subscription(JointState, interface.TOPIC_JOINT_STATES, self._on_joints,
@@ -89,6 +89,9 @@ class _Watcher(Node):
 
     def _on_result(self, msg):
         self.result = json.loads(msg.data)
+
+    def _on_bag(self, msg):
+        self.last_bag = msg.data
 
     def _on_joints(self, msg):
         index = {n: i for i, n in enumerate(msg.name)}
@@ -173,8 +176,12 @@ def run_cell_demo(args) -> int:
             "peak_tcp_speed_mps": node.peak_tcp,
             "halt_reason": result.get("reason") or None,
         })
-        if recorder:
-            time.sleep(1.0)   # let the recorder close the bag and write the report
+        if recorder:   # the recorder names the bag once the bag and its report are written
+            try:
+                harness.spin_until(node, lambda: node.last_bag is not None, 20.0,
+                                   "the recorder's bag and report", processes)
+            except TimeoutError as exc:
+                print(f"warning: no report: {exc}".splitlines()[0])
     finally:
         node.destroy_node()
         rclpy.shutdown()
@@ -182,9 +189,11 @@ def run_cell_demo(args) -> int:
             proc.stop()
     wall = time.monotonic() - t_wall
     _print_summary(scenario.name, summary, wall)
-    reports = sorted(Path(args.runs_dir).glob(f"*_{scenario.name}/report/*.html"))
-    if reports:
-        print(f"report of the run: {reports[-1]}")
+    bag = node.last_bag
+    if bag:
+        print(f"run recorded in:     {bag}")
+        for page in sorted(Path(bag).glob("report/*.html")):
+            print(f"report of the run:   {page}")
     if args.json:
         Path(args.json).write_text(json.dumps(summary, indent=2))
     return 0 if summary["converged"] else 1

@@ -108,8 +108,8 @@ from vservo_node.record.bag import PARAMS_FILE, RunRecorder
 from vservo_node.record.report import write_report
 from vservo_node.ros import dds, qos
 
-RECORDER_NODE = "vservo_recorder"
-TOPIC_LAST_BAG = "recorder/last_bag"   # std_msgs/String, transient local: path of the last bag
+RECORDER_NODE = itf.RECORDER_NODE
+TOPIC_LAST_BAG = itf.TOPIC_LAST_BAG
 MOVING_STATES = ("servoing", "settling", "braking")
 END_STATES = ("converged", "halted")
 TICK_S = 0.1              # steady timer: run tails, parameter fetch; also lets signals in
