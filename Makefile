@@ -18,7 +18,7 @@ $(STAMP): requirements.txt constraints.txt setup.py
 
 # The main job on the built-in simulated cell (sim node + controller over DDS, isolated).
 demo: venv
-	$(ISOLATED) $(PY) -m vservo_node.cli demo --core $(DEMO_ARGS)
+	$(ISOLATED) $(PY) -m vservo_node.cli demo $(DEMO_ARGS)
 
 # The whole suite; ROS tests run inside a private network namespace (see DEVELOPERS.md).
 test: venv
