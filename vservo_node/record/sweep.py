@@ -15,7 +15,8 @@ variant of one scenario. A sweep file (YAML, format ``vservo_sweep/1``, our own)
     fixed: {image.scale: 0.5, control.gain_near: 1.2}   # the same in every episode
     axes:                          # what varies
       start.rotation_deg: {values: [0, 45, 90]}         # these values
-      start.lateral_m: {range: [0.0, 0.15], steps: 4}   # grid: 4 evenly spaced; random: uniform
+      start.lateral_m: {range: [0.0, 0.15], steps: 4}   # grid: 4 evenly spaced (steps: grid
+                                                        # only); random: uniform in the range
     success: {pose_mm: 2.0, pose_deg: 0.5, limit_slack: 0.01}
     map: [start.rotation_deg, start.lateral_m]          # axes of the success map (1 or 2)
     map_bins: 6                    # random mode: bins per map axis
@@ -27,6 +28,16 @@ in the taught camera's axes, as in the scenario format: ``T_taught_start = [R_ti
 image-plane axis ``(cos b, sin b, 0)``; when any ``start.*`` name is given it replaces the
 scenario's start. Directions (a, b, the hand-eye error's rotation axis and translation
 direction) are drawn per episode from its seed, so magnitudes are swept and directions vary.
+Calibration errors are the controller's beliefs: the hand-eye error ``[R(axis * deg) | dir * m]``
+composes onto the scenario's believed hand-eye in the camera's own axes (the scenario format's
+convention), ``calib.depth`` scales the scenario's believed depth scale by ``1 + value``, and
+``calib.focal`` makes the controller's camera model's fx, fy ``1 + value`` times the true ones.
+
+Running: in this process (one worker), in local worker processes (``spawn``: a script that
+calls :func:`run_sweep` with several workers needs the ``if __name__ == "__main__":`` guard), or
+on a Dask cluster given its scheduler address (Dask is imported only then; its workers need
+vservo_node and the scenario files). Rows come back in plan order, so the table is the same
+however the sweep ran.
 
 Success of an episode: the servo converged, the true camera pose is within ``pose_mm`` and
 ``pose_deg`` of the true taught pose, and no limit was exceeded by more than ``limit_slack``
@@ -168,7 +179,7 @@ class Point:
 
 @dataclass
 class SweepRun:
-    """Rows of a finished sweep (index order) and its wall time in seconds."""
+    """A finished sweep: its rows (plan order), wall time (s), where it ran, its summary."""
 
     spec: SweepSpec
     rows: list
@@ -237,6 +248,9 @@ class _Reader:
 def _axis(r: _Reader, name, value, mode) -> Axis:
     entry = f"axes.{name}"
     value = r.mapping(value, entry, _AXIS)
+    param = params.BY_NAME.get(name)
+    if param is not None and param.type is list:
+        r.fail(entry, "list parameters cannot vary in a sweep; give them in 'fixed'")
     if ("values" in value) == ("range" in value):
         r.fail(entry, "give either 'values' or 'range'")
     if "values" in value:
