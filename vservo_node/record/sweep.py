@@ -706,7 +706,7 @@ def _plot_map(summary: dict, path: Path) -> Path:
         ax.set_xlabel(m["axes"][0])
         ax.set_ylabel(m["axes"][1])
         fig.colorbar(image, ax=ax, label="success rate")
-    ax.set_title(f"{summary['name']}: success by start offset")
+    ax.set_title(f"{summary['name']}: success by {' and '.join(m['axes'])}", fontsize=10)
     fig.tight_layout()
     fig.savefig(path, dpi=100)
     plt.close(fig)
