@@ -49,7 +49,8 @@ def _assert_within_limits(r, values):
 def test_shipped_scenario_converges_with_the_shipped_settings(name):
     values = episode_params()
     r = _episode(name)
-    assert r.converged, f"{name}: halted '{r.reason}' after {r.time_s:.2f} s at {r.final_rms_px:.1f} px"
+    assert r.converged, (f"{name}: halted '{r.reason}' after {r.time_s:.2f} s at "
+                         f"{r.final_rms_px:.1f} px")
     assert r.final_rms_px <= values["control.tolerance_px"]
     assert r.pose_error_mm <= POSE_MM and r.pose_error_deg <= POSE_DEG, (r.pose_error_mm,
                                                                           r.pose_error_deg)
