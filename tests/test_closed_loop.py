@@ -65,3 +65,21 @@ def test_arm_reproduces_the_published_depth_behaviour_of_a_pure_twist():
     assert blended.camera_depth_change_max < 0.010
     assert current.converged and blended.converged
     assert math.isfinite(current.pose_error_mm)
+
+
+def test_inverted_hand_eye_halts_wrong_direction_within_a_few_frames():
+    """A hand-eye the servo believes turned 180 deg makes the arm move features against the
+    motion the image Jacobian predicts: the supervisor must halt within a few frames (our
+    check: 5 opposed frames at any depth scale 0.5..2), before the error has grown much."""
+    r = run_point_case(PointCase(estimate="blended", hand_eye_error_rpy_deg=(0.0, 0.0, 180.0),
+                                 **OFFSET_B))
+    assert not r.converged and r.reason == "wrong_direction", r.reason
+    assert r.time_s < 1.0   # 100 frames/s in this loop: well within "a few" plus soft start
+
+
+def test_moderate_hand_eye_error_does_not_trip_the_direction_check():
+    """5 deg of hand-eye error (a figure from common practice, no source) still converges:
+    IBVS is robust to calibration error (Hutchinson, Hager & Corke 1996)."""
+    r = run_point_case(PointCase(estimate="blended", hand_eye_error_rpy_deg=(3.0, -3.0, 2.0),
+                                 **OFFSET_B))
+    assert r.converged, r.reason

@@ -181,6 +181,9 @@ class PointCase:
     tolerance_px: float = 0.05
     duration_s: float = 15.0
     rate_hz: float = 100.0
+    # what the servo believes of the hand-eye: the true one times this rotation (rpy, deg) about
+    # the camera frame (calibration error; (0, 0, 180) is a camera mounted the other way round)
+    hand_eye_error_rpy_deg: tuple = (0.0, 0.0, 0.0)
 
 
 def run_point_case(case: PointCase, record: bool = False) -> EpisodeResult:
@@ -206,7 +209,13 @@ def run_point_case(case: PointCase, record: bool = False) -> EpisodeResult:
                              tolerance_px=case.tolerance_px, dwell_s=0.2,
                              max_run_s=case.duration_s,
                              depth_source="observed" if case.depth == "true" else "taught")
-    servo = Servo(arm, settings, limits_for(arm))
+    belief = arm
+    if any(case.hand_eye_error_rpy_deg):
+        belief = load_robot(case.robot).arm
+        error = frames.transform(frames.rpy_to_matrix(np.radians(case.hand_eye_error_rpy_deg)),
+                                 np.zeros(3))
+        belief.set_hand_eye(arm.T_tool_camera @ error)
+    servo = Servo(belief, settings, limits_for(belief))
     servo.set_reference(scene.taught_view(robot.home))
     return run_episode(servo, scene.sense(depth="true" if case.depth == "true" else "none"),
                        q0, T_goal, arm, rate_hz=case.rate_hz, duration_s=case.duration_s,

@@ -115,7 +115,8 @@ class ServoSettings:
     max_rotation_deg: float = 180.0
     min_camera_distance_m: float = 0.08
     # supervisor checks (our design; thresholds are common practice, no source)
-    wrong_direction_frames: int = 3       # consecutive disagreeing frames before a halt
+    wrong_direction_frames: int = 5       # consecutive disagreeing frames before a halt
+    wrong_direction_cos: float = -0.5     # seen vs predicted feature motion: below = opposed
     wrong_direction_min_px: float = 0.3   # predicted motion below this is not judged
     diverge_factor: float = 1.5           # halt when rms > factor * best + diverge_margin_px
     diverge_margin_px: float = 20.0
@@ -181,10 +182,14 @@ class _Frame:
     keys: tuple
     e: np.ndarray
     J_img: np.ndarray
-    J_local: np.ndarray
+    J_move: np.ndarray   # (2, 2N, n): feature motion from camera translation, from rotation
     rms_px: float
     error_px: np.ndarray
     uv: np.ndarray
+
+
+def _cosine(a: np.ndarray, b: np.ndarray) -> float:
+    return float(a @ b / (np.linalg.norm(a) * np.linalg.norm(b) + 1e-12))
 
 
 class Servo:
@@ -301,7 +306,8 @@ class Servo:
         J_img = interaction_matrix(s.interaction_estimate, xy_now, z_now, xy_ref, z_ref) @ camera_jac
         # the local image Jacobian (current features) predicts how features move; the law's
         # estimate may be taught or blended, which only approximates it far from the goal
-        J_local = point_interaction_matrix(xy_now, z_now) @ camera_jac
+        L_local = point_interaction_matrix(xy_now, z_now)
+        J_move = np.stack([L_local[:, :3] @ camera_jac[:3], L_local[:, 3:] @ camera_jac[3:]])
         prev = self._frame
         if prev is None and rms_px > s.max_initial_error_px:
             self.halt("diverging", t)
@@ -313,7 +319,7 @@ class Servo:
             if self._wrong_direction(prev, e, q):
                 self.halt("wrong_direction", t)
                 return
-        self._frame = _Frame(t, q, keys, e, J_img, J_local, rms_px, error_px, uv_now)
+        self._frame = _Frame(t, q, keys, e, J_img, J_move, rms_px, error_px, uv_now)
         run.best_rms = min(run.best_rms, rms_px)
         run.final_rms = rms_px
         if rms_px > s.diverge_factor * run.best_rms + s.diverge_margin_px:
@@ -356,17 +362,33 @@ class Servo:
             return np.full(len(now_i), s.constant_depth_m)
         return z_ref  # taught depth: the depth at the goal stands in for the current one
 
+    # depth errors the wrong-direction check absorbs: true depth = believed x scale
+    WRONG_DIRECTION_DEPTH_SCALES = (0.5, 0.7, 1.0, 1.4, 2.0)
+
     def _wrong_direction(self, prev: _Frame, e: np.ndarray, q: np.ndarray) -> bool:
-        """Feature motion predicted by J_img (q - q_prev) against the motion seen."""
+        """Feature motion predicted by the local image Jacobian for the joint motion since the
+        last frame, against the feature motion seen.
+
+        The prediction uses believed depths: with depths off by a factor the translational part
+        of the motion scales by its inverse, which near a pose where translation and rotation
+        nearly cancel in the image turns the predicted direction (depths 40 % short flipped it
+        at tray_offset's start). So the check takes the best agreement over depth scales from
+        0.5 to 2 and judges 'opposed' (cosine below wrong_direction_cos) for several frames in a
+        row. A wrong optical frame, an inverted hand-eye or a swapped joint order oppose the
+        prediction at every depth scale.
+        """
         s = self.settings
-        predicted = prev.J_local @ (q - prev.q)
+        dq = q - prev.q
+        moved_by_translation, moved_by_rotation = prev.J_move @ dq
         seen = e - prev.e
         fx = self._focal_px()
+        predicted = moved_by_translation + moved_by_rotation
         if np.linalg.norm(predicted) * fx / math.sqrt(len(e) / 2) < s.wrong_direction_min_px:
             return False
-        cos = float(predicted @ seen / (np.linalg.norm(predicted) * np.linalg.norm(seen) + 1e-12))
+        best = max(_cosine(moved_by_translation / k + moved_by_rotation, seen)
+                   for k in self.WRONG_DIRECTION_DEPTH_SCALES)
         run = self._run
-        run.wrong_frames = run.wrong_frames + 1 if cos < 0.0 else 0
+        run.wrong_frames = run.wrong_frames + 1 if best < s.wrong_direction_cos else 0
         return run.wrong_frames >= s.wrong_direction_frames
 
     def _focal_px(self) -> float:
