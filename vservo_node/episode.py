@@ -247,9 +247,10 @@ def episode_params(overrides: dict | None = None, camera_rate_hz: float | None =
     return checked.values
 
 
-def servo_from_params(arm, values: dict) -> Servo:
-    """A Servo for ``arm`` (the hand-eye it believes) from validated parameter values: the
-    settings of ``ServoSettings.from_params`` and a LimitSet from the ``limits.*`` entries."""
+def servo_config_from_params(arm, values: dict) -> tuple[ServoSettings, LimitSet]:
+    """(ServoSettings, LimitSet) for ``arm`` from validated parameter values (``limits.*``
+    entries); ValueError saying what does not fit the arm. The node and the headless runs
+    share it, so they judge the same settings."""
     acceleration = values["limits.joint_acceleration"]
     if len(acceleration) not in (1, arm.n):
         raise ValueError(f"limits.joint_acceleration has {len(acceleration)} values; expected 1 "
@@ -260,7 +261,13 @@ def servo_from_params(arm, values: dict) -> Servo:
                         tool_linear_max=values["limits.tool_linear_speed"],
                         camera_linear_max=values["limits.camera_linear_speed"],
                         angular_max=values["limits.angular_speed"])
-    return Servo(arm, ServoSettings.from_params(values), limits, values["robot.tool_point"])
+    return ServoSettings.from_params(values), limits
+
+
+def servo_from_params(arm, values: dict) -> Servo:
+    """A Servo for ``arm`` (the hand-eye it believes) from validated parameter values."""
+    settings, limits = servo_config_from_params(arm, values)
+    return Servo(arm, settings, limits, values["robot.tool_point"])
 
 
 def focal_scaled(camera, scale: float):

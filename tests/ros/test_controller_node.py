@@ -236,7 +236,8 @@ class Rig:
             self._commands_sub = self.node.create_subscription(
                 Float64MultiArray, itf.TOPIC_JOINT_VELOCITY_CMD,
                 lambda m: self.commands.append((time.monotonic(), np.array(m.data))),
-                qos.COMMANDS)
+                qos.STATE)   # a queue, not keep-last 1: on a loaded machine the test must not
+                             # drop commands it then judges step by step
 
     def spin(self, seconds: float):
         end = time.monotonic() + seconds

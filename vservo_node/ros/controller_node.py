@@ -155,7 +155,7 @@ from vservo_node import interface as itf
 from vservo_node import params
 from vservo_node.control import frames
 from vservo_node.control.kinematics import ArmModel
-from vservo_node.episode import limits_for
+from vservo_node.episode import servo_config_from_params
 from vservo_node.perception import DepthImage, DepthSettings, Perception, taught_view
 from vservo_node.ros import convert, dds, qos
 from vservo_node.servo import HALT_REASONS, MOVING_STATES, Observation, Servo, ServoSettings
@@ -593,18 +593,7 @@ class ControllerNode(Node):
     def _servo_config(self, values) -> tuple[ServoSettings, object]:
         """(ServoSettings, LimitSet) of valid parameter values for the loaded arm;
         ValueError saying what does not fit the arm."""
-        acceleration = values["limits.joint_acceleration"]
-        if len(acceleration) not in (1, self.arm.n):
-            raise ValueError(f"limits.joint_acceleration has {len(acceleration)} values; "
-                             f"expected 1 or {self.arm.n} (one per joint of "
-                             f"{', '.join(self.arm.joint_names)})")
-        limits = limits_for(
-            self.arm, velocity_scale=values["limits.joint_velocity_scale"],
-            acceleration=acceleration, position_margin=values["limits.position_margin"],
-            tool_linear_max=values["limits.tool_linear_speed"],
-            camera_linear_max=values["limits.camera_linear_speed"],
-            angular_max=values["limits.angular_speed"])
-        return ServoSettings.from_params(values), limits
+        return servo_config_from_params(self.arm, values)
 
     def _build_servo(self) -> None:
         """A new Servo (disabled) from the arm and valid parameters, or the reason why not."""
