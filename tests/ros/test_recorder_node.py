@@ -92,6 +92,9 @@ STUB = textwrap.dedent("""
                         ("robot.base_frame", "base_link"), ("robot.tool_frame", "ee"),
                         ("robot.min_joints", 3), ("robot.hand_eye", [0.0] * 6 + [1.0])]:
         node.declare_parameter(name, value)
+    # declared with a type and no value, as the controller declares its empty-list defaults:
+    # rclpy's GetParameters then answers nothing for a request that names it
+    node.declare_parameter("io.command_joint_order", Parameter.Type.STRING_ARRAY)
     threading.Thread(target=rclpy.spin, args=(node,), daemon=True).start()   # parameter services
     topics = {itf.TOPIC_JOINT_STATES: (JointState, qos.STATE),
               itf.TOPIC_JOINT_VELOCITY_CMD: (Float64MultiArray, qos.COMMANDS),
@@ -340,6 +343,8 @@ def test_run_bag_has_result_controller_params_and_report(session):
     params = load_params_file(bag / "params.yaml", "vservo")
     assert params["robot.hand_eye"] == [0.0] * 6 + [1.0]      # a received double array
     assert params["control.tolerance_px"] == 1.25              # changed after the fetch
+    assert params["robot.base_frame"] == "base_link"           # the set ones despite ...
+    assert "io.command_joint_order" not in params              # ... an unset one, left out
     metrics = json.loads((bag / "report" / "metrics.json").read_text())
     assert (bag / "report" / "report.html").is_file()
     assert metrics["run_id"] == "r1" and metrics["converged"] is True

@@ -33,9 +33,9 @@ Runs
 
 Controller parameters (``params.yaml`` of each bag, as a ROS 2 parameter file of the
 controller node, ``{<fully qualified name>: {ros__parameters: {<dotted name>: value}}}``)
-    Fetched through the ListParameters and GetParameters services of ``controller_node`` as
-    soon as they appear (a request unanswered for 5 s is retried), then kept current from
-    ``/parameter_events``.
+    Fetched through the ListParameters, GetParameterTypes and GetParameters services of
+    ``controller_node`` as soon as they appear (a request unanswered for 5 s is retried), then
+    kept current from ``/parameter_events``. Parameters declared without a value are left out.
     A bag that opens before they are known starts without params.yaml (a warning is logged);
     it is written as soon as they arrive.
 
@@ -79,7 +79,7 @@ import signal
 import sys
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
@@ -88,7 +88,7 @@ import yaml
 from geometry_msgs.msg import PoseStamped, TwistStamped
 from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ParameterDescriptor,
                                 ParameterEvent, ParameterType)
-from rcl_interfaces.srv import GetParameters, ListParameters
+from rcl_interfaces.srv import GetParameters, GetParameterTypes, ListParameters
 from rclpy.clock import Clock, ClockType
 from rclpy.duration import Duration
 from rclpy.exceptions import ParameterException
@@ -288,8 +288,15 @@ def _plain(value):
 
 
 class ControllerParams:
-    """The controller node's parameters, fetched through its ListParameters/GetParameters
-    services and kept current from ``/parameter_events``.
+    """The controller node's parameters, fetched through its ListParameters,
+    GetParameterTypes and GetParameters services and kept current from ``/parameter_events``.
+
+    A fetch lists every name, asks their types, then asks the values of those that are set.
+    The types step is needed because rclpy's GetParameters answers all or nothing: one
+    declared but unset name in the request (a parameter declared with a type and no value,
+    as the controller does for its empty-list defaults) makes it return no values at all.
+    Unset parameters are left out of ``values``; a reply with fewer values than names asked is
+    refused and the fetch retried.
 
     ``values`` is None until the first fetch answered. ``on_fetched()`` is called (executor
     thread) when it has. Call ``poll(now)`` periodically: it starts a fetch while none is known.
@@ -298,6 +305,8 @@ class ControllerParams:
     def __init__(self, node: Node, controller: str, on_fetched: Callable[[], None]):
         self._node, self._on_fetched = node, on_fetched
         self._list = node.create_client(ListParameters, f"{controller}/list_parameters")
+        self._types = node.create_client(GetParameterTypes,
+                                          f"{controller}/get_parameter_types")
         self._get = node.create_client(GetParameters, f"{controller}/get_parameters")
         self.node_name = self._list.service_name.rsplit("/", 1)[0]   # fully qualified
         self.values: dict | None = None
@@ -328,23 +337,36 @@ class ControllerParams:
         self._request = (client, future, time.monotonic())
         future.add_done_callback(done)
 
-    def _failed(self, future: Future) -> bool:
-        """True (and a warning; the next poll retries) when a request raised."""
+    def _failed(self, future: Future, asked: Sequence[str] = (), answer: str = "") -> bool:
+        """True (and a warning; the next poll retries) when a request raised, or when the
+        reply's list ``answer`` ('types', 'values') does not hold one entry per name asked."""
         self._request = None
-        if future.exception() is None:
+        if future.exception() is not None:
+            problem = f"failed: {future.exception()}"
+        elif answer and len(got := getattr(future.result(), answer)) != len(asked):
+            problem = (f"answered {len(got)} {answer} for {len(asked)} names (one was "
+                       "undeclared or unset meanwhile)")
+        else:
             return False
-        self._node.get_logger().warning(f"parameter request to {self.node_name} failed: "
-                                        f"{future.exception()}; retrying")
+        self._node.get_logger().warning(
+            f"parameter request to {self.node_name} {problem}; retrying")
         return True
 
     def _on_list(self, future: Future) -> None:
         if not self._failed(future):
             names = list(future.result().result.names)
-            self._send(self._get, GetParameters.Request(names=names),
-                       functools.partial(self._on_get, names))
+            self._send(self._types, GetParameterTypes.Request(names=names),
+                       functools.partial(self._on_types, names))
+
+    def _on_types(self, names: list[str], future: Future) -> None:
+        if not self._failed(future, names, "types"):
+            set_names = [name for name, kind in zip(names, future.result().types)
+                         if kind != ParameterType.PARAMETER_NOT_SET]
+            self._send(self._get, GetParameters.Request(names=set_names),
+                       functools.partial(self._on_get, set_names))
 
     def _on_get(self, names: list[str], future: Future) -> None:
-        if self._failed(future):
+        if self._failed(future, names, "values"):
             return
         self.values = {name: _plain(parameter_value_to_python(value))
                        for name, value in zip(names, future.result().values)
