@@ -5,7 +5,8 @@ What an operator would do, scripted:
    `Perception.capture` the node's `servo/capture_reference` service runs);
 2. start `vservo_sim` (scenario), `vservo_node` (config/vservo_sim.yaml plus the taught
    reference) and, when present, `vservo_recorder`, as child processes;
-3. enable motion, start the run, follow status and the run result;
+3. enable motion, wait until the recorder is ready (so its bag holds the whole run and the
+   controller's parameters), start the run, follow status and the run result;
 4. print the summary (and write it as JSON), stop the processes.
 
 Must run network-isolated (tools/isolated, as `make demo` does).
@@ -23,7 +24,7 @@ import rclpy
 import yaml
 from rclpy.node import Node
 from sensor_msgs.msg import JointState
-from std_msgs.msg import String
+from std_msgs.msg import Bool, String
 from std_srvs.srv import SetBool, Trigger
 
 from vservo_node import interface
@@ -37,6 +38,7 @@ from vservo_node.vision.reference import save_reference
 SUMMARY_KEYS = ("converged", "time_s", "final_rms_px", "final_pose_error_mm",
                 "final_pose_error_deg", "peak_joint_speed_ratio", "peak_tcp_speed_mps",
                 "halt_reason")
+RECORDER_READY_TIMEOUT_S = 20.0   # generous: the recorder imports and discovers on a busy machine
 
 
 def teach(scenario, folder: Path) -> Path:
@@ -159,6 +161,8 @@ def run_cell_demo(args) -> int:
         if not reply or not reply.success:
             raise RuntimeError(f"enable_motion refused: {reply.message if reply else '?'}")
         print(f"enable_motion: {reply.message}")
+        if recorder:
+            _wait_for_recorder(node, processes)
         reply = _call(node, node.start, Trigger.Request(), processes)
         if not reply.success:
             raise RuntimeError(f"start refused: {reply.message}")
@@ -197,6 +201,17 @@ def run_cell_demo(args) -> int:
     if args.json:
         Path(args.json).write_text(json.dumps(summary, indent=2))
     return 0 if summary["converged"] else 1
+
+
+def _wait_for_recorder(node, processes):
+    """Wait for True on recorder/ready. A run started earlier is recorded from wherever the
+    recorder joined it (it starts slower than the cell), maybe without params.yaml."""
+    from vservo_node.ros.recorder_node import TOPIC_READY
+    try:
+        harness.wait_for_message(node, TOPIC_READY, Bool, qos.LATCHED, RECORDER_READY_TIMEOUT_S,
+                                 lambda msg: msg.data, processes)
+    except TimeoutError as exc:
+        print(f"warning: starting anyway, the bag may miss the start: {exc}".splitlines()[0])
 
 
 def _start_recorder(scenario, args):

@@ -39,6 +39,13 @@ controller node, ``{<fully qualified name>: {ros__parameters: {<dotted name>: va
     A bag that opens before they are known starts without params.yaml (a warning is logged);
     it is written as soon as they arrive.
 
+Readiness
+    ``recorder/ready`` (std_msgs/Bool, transient local) carries True once the controller's
+    parameters are known and a ``servo/status`` record has been received (the controller's
+    status publisher reaches this node). From then on a run is recorded from its first status
+    record, with params.yaml. A tool that starts runs right after starting the recorder
+    (``vservo demo``) waits for it; a recorder started later joins the run in progress.
+
 After a bag closes
     With ``make_report`` the report (``vservo_node.record.report.write_report``) is written to
     ``<bag>/report/`` on a background thread; then the bag's absolute path is published on
@@ -100,7 +107,7 @@ from rclpy.serialization import deserialize_message
 from rclpy.signals import SignalHandlerOptions
 from rclpy.task import Future
 from sensor_msgs.msg import CameraInfo, Image, JointState
-from std_msgs.msg import Float64, Float64MultiArray, String
+from std_msgs.msg import Bool, Float64, Float64MultiArray, String
 from trajectory_msgs.msg import JointTrajectory
 
 from vservo_node import interface as itf
@@ -110,6 +117,7 @@ from vservo_node.ros import dds, qos
 
 RECORDER_NODE = itf.RECORDER_NODE
 TOPIC_LAST_BAG = itf.TOPIC_LAST_BAG
+TOPIC_READY = "recorder/ready"   # std_msgs/Bool, transient local: see "Readiness" above
 MOVING_STATES = ("servoing", "settling", "braking")
 END_STATES = ("converged", "halted")
 TICK_S = 0.1              # steady timer: run tails, parameter fetch; also lets signals in
@@ -433,6 +441,8 @@ class RecorderNode(Node):
         self._latest_latched: dict[str, tuple[str, bytes]] = {}
         self._dropped_reported, self._dropped_warned_at = 0, -1.0
         self._pub_last_bag = self.create_publisher(String, TOPIC_LAST_BAG, qos.LATCHED)
+        self._pub_ready = self.create_publisher(Bool, TOPIC_READY, qos.LATCHED)
+        self._status_seen = self._ready = False
         self._reports = ThreadPoolExecutor(max_workers=1, thread_name_prefix="vservo_report")
         self.writer = BagWriter(self._new_recorder, self._on_closed,
                                 int(p["max_queue_mb"] * 2**20), self.get_logger())
@@ -466,6 +476,8 @@ class RecorderNode(Node):
         self.create_subscription(msg_class, topic, callback, profile, raw=True)
 
     def _on_status(self, raw: bytes, stamp_ns: int) -> None:
+        self._status_seen = True
+        self._announce_ready()
         record = _json_object(raw)
         for action in self.segmenter.on_status(record, time.monotonic()) if record else ():
             if action == "close":
@@ -497,6 +509,15 @@ class RecorderNode(Node):
     def _on_params_fetched(self) -> None:
         if self.segmenter.recording:
             self.writer.set_params(self.params.as_file())
+        self._announce_ready()
+
+    def _announce_ready(self) -> None:
+        """Publish True on recorder/ready, once: status received and parameters known."""
+        if self._ready or not self._status_seen or self.params.values is None:
+            return
+        self._ready = True
+        self._pub_ready.publish(Bool(data=True))
+        self.get_logger().info("ready: receiving the controller's status, parameters known")
 
     def _on_closed(self, bag_dir: Path, report: bool) -> None:
         """Writer thread: hand the bag to the report thread, which announces the bags in the
