@@ -44,6 +44,7 @@ TOPIC_SIM_TAUGHT_POSE = "sim/taught_camera_pose"        # geometry_msgs/PoseStam
 # --- run recorder node (executable `vservo_recorder`) --------------------------------------
 RECORDER_NODE = "vservo_recorder"
 TOPIC_LAST_BAG = "recorder/last_bag"      # std_msgs/String, transient local: last closed bag
+TOPIC_RECORDER_READY = "recorder/ready"   # std_msgs/Bool, transient local: True once recording
 
 # --- status record ---------------------------------------------------------------------------
 # One JSON object per servo cycle on TOPIC_STATUS (and one row per cycle in headless runs).

@@ -117,7 +117,7 @@ from vservo_node.ros import dds, qos
 
 RECORDER_NODE = itf.RECORDER_NODE
 TOPIC_LAST_BAG = itf.TOPIC_LAST_BAG
-TOPIC_READY = "recorder/ready"   # std_msgs/Bool, transient local: see "Readiness" above
+TOPIC_READY = itf.TOPIC_RECORDER_READY   # std_msgs/Bool, transient local: see "Readiness"
 MOVING_STATES = ("servoing", "settling", "braking")
 END_STATES = ("converged", "halted")
 TICK_S = 0.1              # steady timer: run tails, parameter fetch; also lets signals in
