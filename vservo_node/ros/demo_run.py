@@ -4,7 +4,9 @@ What an operator would do, scripted:
 1. teach: render the scenario's taught view and capture the reference from it (the same
    `Perception.capture` the node's `servo/capture_reference` service runs);
 2. start `vservo_sim` (scenario), `vservo_node` (config/vservo_sim.yaml plus the taught
-   reference) and, when present, `vservo_recorder`, as child processes;
+   reference and the scenario's ``controller_belief``: believed hand-eye as ``robot.hand_eye``,
+   believed depth scale on the taught depths) and, when present, `vservo_recorder`, as child
+   processes;
 3. enable motion, wait until the recorder is ready (so its bag holds the whole run and the
    controller's parameters), start the run, follow status and the run result;
 4. print the summary (and write it as JSON), stop the processes.
@@ -13,6 +15,7 @@ Must run network-isolated (tools/isolated, as `make demo` does).
 """
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 import time
@@ -28,6 +31,7 @@ from std_msgs.msg import Bool, String
 from std_srvs.srv import SetBool, Trigger
 
 from vservo_node import interface
+from vservo_node.control import frames
 from vservo_node.paths import config_dir
 from vservo_node.perception import Perception
 from vservo_node.ros import harness, qos
@@ -42,18 +46,26 @@ RECORDER_READY_TIMEOUT_S = 20.0   # generous: the recorder imports and discovers
 
 
 def teach(scenario, folder: Path) -> Path:
-    """Capture the reference at the scenario's taught pose; returns the reference file."""
+    """Capture the reference at the scenario's taught pose; returns the reference file. The
+    taught depths (m, what ``depth.source: taught`` uses) are multiplied by the scenario's
+    believed depth scale (``controller_belief.depth_scale``)."""
     cell = SimCell(scenario, q0=scenario.q_taught)
     rgb = cell.render_at(scenario.q_taught, 0.0)   # what the camera topic carries (rgb8)
     h, w = rgb.shape[:2]
     image = to_bgr_or_mono(rgb, "rgb8", w, h)       # as the node decodes it
     perception = Perception(scenario.target, scenario.camera)
     reference = perception.capture(image, f"{scenario.name}_station")
+    if reference.depths is not None and scenario.depth_scale_belief != 1.0:
+        reference = dataclasses.replace(reference,
+                                        depths=reference.depths * scenario.depth_scale_belief)
     return save_reference(reference, folder / f"{scenario.name}_station.yaml")
 
 
-def controller_overrides(scenario, reference_file: Path, folder: Path) -> Path:
-    """A parameter file layered over config/vservo_sim.yaml for this scenario."""
+def controller_overrides(scenario, reference_file: Path, folder: Path,
+                         extra: dict | None = None) -> Path:
+    """A parameter file layered over config/vservo_sim.yaml for this scenario: arm, target,
+    reference, camera rate, the believed hand-eye when it differs from the URDF's, then
+    ``extra`` (nested like the file: ``{"control": {"gain_near": 1.0}}``) over those."""
     values = {
         "robot": {"urdf_path": str(scenario.urdf_path), "base_frame": scenario.base_frame,
                   "tool_frame": scenario.tool_frame, "camera_frame": scenario.camera_frame},
@@ -62,12 +74,18 @@ def controller_overrides(scenario, reference_file: Path, folder: Path) -> Path:
         "reference": {"file": str(reference_file)},
         "io": {"camera_rate_hz": float(scenario.fps)},
     }
+    T_belief = scenario.T_tool_camera_belief
+    if not np.allclose(T_belief, scenario.arm_model("urdf").T_tool_camera, atol=1e-12):
+        values["robot"]["hand_eye"] = [*map(float, T_belief[:3, 3]),
+                                       *map(float, frames.matrix_to_quat(T_belief[:3, :3]))]
+    for section, entries in (extra or {}).items():
+        values.setdefault(section, {}).update(entries)
     path = folder / "controller_overrides.yaml"
     path.write_text(yaml.safe_dump({"vservo": {"ros__parameters": values}}))
     return path
 
 
-class _Watcher(Node):
+class Watcher(Node):
     """Client side of the demo: services, status, result, joint states."""
 
     def __init__(self, arm):
@@ -121,6 +139,43 @@ def _call(node, client, request, processes, timeout=10.0):
     return future.result()
 
 
+def start_sim(scenario_ref, ros_args=()) -> harness.NodeProcess:
+    """``vservo_sim`` on config/sim_cell.yaml with ``scenario_ref`` (name or path), then
+    ``ros_args`` (e.g. ``-p name:=value``, ``-r from:=to``)."""
+    return harness.start_module("vservo_node.ros.sim_node", ros_args=[
+        "--params-file", str(config_dir() / "sim_cell.yaml"), "-p",
+        f"scenario:={scenario_ref}", *ros_args], name="vservo_sim")
+
+
+def start_controller(overrides: Path) -> harness.NodeProcess:
+    """``vservo_node`` on config/vservo_sim.yaml with the ``overrides`` file layered over it."""
+    return harness.start_module("vservo_node.ros.controller_node", ros_args=[
+        "--params-file", str(config_dir() / "vservo_sim.yaml"), "--params-file",
+        str(overrides)], name="vservo_node")
+
+
+def enable_motion(node: Watcher, processes, deadline: float) -> str:
+    """Call enable_motion until it is accepted (inputs need a moment to become fresh) or the
+    monotonic ``deadline`` passes (RuntimeError with the last refusal); returns the reply."""
+    reply = None
+    while time.monotonic() < deadline:
+        reply = _call(node, node.enable, SetBool.Request(data=True), processes)
+        if reply.success:
+            return reply.message
+        end = time.monotonic() + 0.5
+        while time.monotonic() < end:
+            rclpy.spin_once(node, timeout_sec=0.05)
+    raise RuntimeError(f"enable_motion refused: {reply.message if reply else '?'}")
+
+
+def start_run(node: Watcher, processes) -> str:
+    """Call start; RuntimeError with the refusal; returns the reply."""
+    reply = _call(node, node.start, Trigger.Request(), processes)
+    if not reply.success:
+        raise RuntimeError(f"start refused: {reply.message}")
+    return reply.message
+
+
 def run_cell_demo(args) -> int:
     harness.require_isolation()
     scenario = load_scenario(args.scenario)
@@ -129,44 +184,23 @@ def run_cell_demo(args) -> int:
     folder.mkdir(parents=True, exist_ok=True)
     reference_file = teach(scenario, folder)
     overrides = controller_overrides(scenario, reference_file, folder)
-    base_params = config_dir() / "vservo_sim.yaml"
     print(f"scenario {scenario.name}: {scenario.description.strip()}")
     print(f"taught reference: {reference_file}")
 
     t_wall = time.monotonic()
-    processes = [
-        harness.start_module("vservo_node.ros.sim_node", ros_args=[
-            "--params-file", str(config_dir() / "sim_cell.yaml"), "-p",
-            f"scenario:={scenario.source or scenario.name}"], name="vservo_sim"),
-        harness.start_module("vservo_node.ros.controller_node", ros_args=[
-            "--params-file", str(base_params), "--params-file", str(overrides)],
-            name="vservo_node"),
-    ]
+    processes = [start_sim(scenario.source or scenario.name), start_controller(overrides)]
     recorder = _start_recorder(scenario, args)
     if recorder:
         processes.append(recorder)
     rclpy.init()
-    node = _Watcher(scenario.arm_model("belief"))
+    node = Watcher(scenario.arm_model("belief"))
     summary = {k: None for k in SUMMARY_KEYS}
     try:
         deadline = t_wall + args.timeout
-        reply = None
-        while time.monotonic() < deadline:   # inputs need a moment to become fresh
-            reply = _call(node, node.enable, SetBool.Request(data=True), processes)
-            if reply.success:
-                break
-            end = time.monotonic() + 0.5
-            while time.monotonic() < end:
-                rclpy.spin_once(node, timeout_sec=0.05)
-        if not reply or not reply.success:
-            raise RuntimeError(f"enable_motion refused: {reply.message if reply else '?'}")
-        print(f"enable_motion: {reply.message}")
+        print(f"enable_motion: {enable_motion(node, processes, deadline)}")
         if recorder:
             _wait_for_recorder(node, processes)
-        reply = _call(node, node.start, Trigger.Request(), processes)
-        if not reply.success:
-            raise RuntimeError(f"start refused: {reply.message}")
-        print(f"start: {reply.message}")
+        print(f"start: {start_run(node, processes)}")
         harness.spin_until(node, lambda: node.result is not None,
                            max(1.0, deadline - time.monotonic()), "the run result", processes)
         result = node.result
