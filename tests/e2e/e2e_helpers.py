@@ -200,10 +200,10 @@ class Cell:
         sim_changed = self.spec is None or spec.sim_key() != self.spec.sim_key()
         self._stop_node()
         if self.controller is not None:
-            self.controller.stop()
+            _stop(self.controller)
             self.controller = None
         if sim_changed and self.sim is not None:
-            self.sim.stop()
+            _stop(self.sim)
             self.sim = None
         self.spec = spec
         self.scenario = load_scenario(spec.controller_scenario or spec.scenario)
@@ -231,7 +231,7 @@ class Cell:
         self._stop_node()
         for proc in (self.controller, self.sim):
             if proc is not None:
-                proc.stop()
+                _stop(proc)
         self.sim = self.controller = None
         self.spec = None
 
@@ -289,6 +289,12 @@ class Cell:
         uv = [_project(points, frames.invert(T) @ T_target, cam) for T in (T_now, T_goal)]
         px = float(np.sqrt(np.mean(np.sum((uv[0] - uv[1]) ** 2, axis=1))))
         return mm, deg, px
+
+
+def _stop(proc) -> None:
+    """Stop a node process and remove its output file (failures quote it before this)."""
+    proc.stop()
+    proc.remove_log()
 
 
 def _project(points, T_camera_target, camera) -> np.ndarray:
