@@ -116,7 +116,6 @@ class ServoSettings:
     min_camera_distance_m: float = 0.08
     # supervisor checks (our design; thresholds are common practice, no source)
     wrong_direction_frames: int = 5       # consecutive disagreeing frames before a halt
-    wrong_direction_cos: float = -0.5     # seen vs predicted feature motion: below = opposed
     wrong_direction_min_px: float = 0.3   # predicted motion below this is not judged
     diverge_factor: float = 1.5           # halt when rms > factor * best + diverge_margin_px
     diverge_margin_px: float = 20.0
@@ -186,10 +185,6 @@ class _Frame:
     rms_px: float
     error_px: np.ndarray
     uv: np.ndarray
-
-
-def _cosine(a: np.ndarray, b: np.ndarray) -> float:
-    return float(a @ b / (np.linalg.norm(a) * np.linalg.norm(b) + 1e-12))
 
 
 class Servo:
@@ -362,33 +357,42 @@ class Servo:
             return np.full(len(now_i), s.constant_depth_m)
         return z_ref  # taught depth: the depth at the goal stands in for the current one
 
-    # depth errors the wrong-direction check absorbs: true depth = believed x scale
-    WRONG_DIRECTION_DEPTH_SCALES = (0.5, 0.7, 1.0, 1.4, 2.0)
+    # The wrong-direction check fits seen = a * (translational flow) + (rotational flow); the
+    # fitted a is believed depth / true depth. Plausible: a in this range (depths within a
+    # factor of ~3), and the fit explaining the seen motion (residual below this fraction).
+    WRONG_DIRECTION_DEPTH_RATIO = (0.3, 3.0)
+    WRONG_DIRECTION_RESIDUAL = 0.6
 
     def _wrong_direction(self, prev: _Frame, e: np.ndarray, q: np.ndarray) -> bool:
-        """Feature motion predicted by the local image Jacobian for the joint motion since the
-        last frame, against the feature motion seen.
+        """Is the feature motion seen since the last frame explained by the local image
+        Jacobian for the joint motion in between?
 
-        The prediction uses believed depths: with depths off by a factor the translational part
-        of the motion scales by its inverse, which near a pose where translation and rotation
-        nearly cancel in the image turns the predicted direction (depths 40 % short flipped it
-        at tray_offset's start). So the check takes the best agreement over depth scales from
-        0.5 to 2 and judges 'opposed' (cosine below wrong_direction_cos) for several frames in a
-        row. A wrong optical frame, an inverted hand-eye or a swapped joint order oppose the
-        prediction at every depth scale.
+        The prediction splits into the flow from the camera's translation, which scales with
+        1/depth, and the flow from its rotation, which does not (Chaumette & Hutchinson 2006,
+        eq. 11). Believed depths may be off, so the seen motion is fitted as
+        ``a * translational + rotational`` by least squares: with the right hand-eye, optical
+        frame and joint order the fit is close and ``a`` (believed over true depth) plausible;
+        a mirrored or turned hand-eye leaves a large residual or asks for a negative or absurd
+        ``a``. Judged over several frames in a row (wrong_direction_frames). A plain cosine
+        between predicted and seen motion cannot tell these apart near poses where the two
+        flows nearly cancel: 40 % short depths flipped its sign at tray_offset's start.
         """
         s = self.settings
-        dq = q - prev.q
-        moved_by_translation, moved_by_rotation = prev.J_move @ dq
+        moved_by_translation, moved_by_rotation = prev.J_move @ (q - prev.q)
         seen = e - prev.e
-        fx = self._focal_px()
         predicted = moved_by_translation + moved_by_rotation
-        if np.linalg.norm(predicted) * fx / math.sqrt(len(e) / 2) < s.wrong_direction_min_px:
+        norm_px = self._focal_px() / math.sqrt(len(e) / 2)
+        if np.linalg.norm(predicted) * norm_px < s.wrong_direction_min_px:
             return False
-        best = max(_cosine(moved_by_translation / k + moved_by_rotation, seen)
-                   for k in self.WRONG_DIRECTION_DEPTH_SCALES)
+        left = seen - moved_by_rotation
+        tt = float(moved_by_translation @ moved_by_translation)
+        ratio = float(moved_by_translation @ left) / tt if tt > 0 else 1.0
+        residual = np.linalg.norm(left - ratio * moved_by_translation)
+        low, high = self.WRONG_DIRECTION_DEPTH_RATIO
+        opposed = (not low <= ratio <= high or
+                   residual > self.WRONG_DIRECTION_RESIDUAL * np.linalg.norm(seen))
         run = self._run
-        run.wrong_frames = run.wrong_frames + 1 if best < s.wrong_direction_cos else 0
+        run.wrong_frames = run.wrong_frames + 1 if opposed else 0
         return run.wrong_frames >= s.wrong_direction_frames
 
     def _focal_px(self) -> float:
