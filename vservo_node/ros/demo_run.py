@@ -18,6 +18,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import shutil
 import time
 from datetime import datetime, timezone
 from pathlib import Path
@@ -225,6 +226,7 @@ def run_cell_demo(args) -> int:
         rclpy.shutdown()
         for proc in reversed(processes):
             proc.stop()
+            shutil.move(proc.log_path, folder / f"{proc.name}.log")   # keep logs with the run
     wall = time.monotonic() - t_wall
     _print_summary(scenario.name, summary, wall)
     bag = node.last_bag
@@ -232,6 +234,7 @@ def run_cell_demo(args) -> int:
         print(f"run recorded in:     {bag}")
         for page in sorted(Path(bag).glob("report/*.html")):
             print(f"report of the run:   {page}")
+    print(f"node logs:           {folder}")
     if args.json:
         Path(args.json).write_text(json.dumps(summary, indent=2))
     return 0 if summary["converged"] else 1
