@@ -87,6 +87,35 @@ class EpisodeResult:
         return {k: getattr(self, k) for k in keys}
 
 
+class _Meter:
+    """Peaks and margins of the true arm motion at the output ticks of an episode."""
+
+    def __init__(self, arm_true, T_base_camera_goal, q0, tool_point):
+        self.arm = arm_true
+        self.tool_point = np.asarray(tool_point, dtype=float)
+        self.axis = T_base_camera_goal[:3, 2]
+        self.depth0 = float(self.axis @ arm_true.camera_pose(q0)[:3, 3])
+        self.finite = np.isfinite(arm_true.lower)
+        self.peaks = dict(joint=0.0, tool=0.0, camera=0.0, angular=0.0)
+        self.margin = math.inf
+        self.depth_dev = 0.0
+
+    def add(self, q, dq) -> np.ndarray:
+        """Account for the true state (q, dq); returns T_base_camera at q."""
+        arm, p = self.arm, self.peaks
+        p["joint"] = max(p["joint"], float(np.max(np.abs(dq) / arm.velocity_limits)))
+        p["tool"] = max(p["tool"], float(np.linalg.norm(
+            arm.point_jacobian_base(q, "tool", self.tool_point) @ dq)))
+        p["camera"] = max(p["camera"], float(np.linalg.norm(
+            arm.point_jacobian_base(q, "camera", np.zeros(3)) @ dq)))
+        p["angular"] = max(p["angular"], float(np.linalg.norm(arm.jacobian_base(q)[3:] @ dq)))
+        self.margin = min(self.margin, float(np.min(np.concatenate([
+            (q - arm.lower)[self.finite], (arm.upper - q)[self.finite]]))))
+        T_cam = arm.camera_pose(q)
+        self.depth_dev = max(self.depth_dev, abs(float(self.axis @ T_cam[:3, 3]) - self.depth0))
+        return T_cam
+
+
 def run_episode(servo: Servo, sense, q0, T_base_camera_goal, arm_true, *, rate_hz: float = 100.0,
                 duration_s: float = 15.0, tool_point=(0.0, 0.0, 0.0),
                 record: bool = False) -> EpisodeResult:
@@ -101,12 +130,8 @@ def run_episode(servo: Servo, sense, q0, T_base_camera_goal, arm_true, *, rate_h
     ok, why = servo.start(q, 0.0)
     if not ok:
         raise RuntimeError(f"servo refused to start: {why}")
-    peaks = dict(joint=0.0, tool=0.0, camera=0.0, angular=0.0)
-    margin = math.inf
+    meter = _Meter(arm_true, T_base_camera_goal, q, tool_point)
     statuses, qs, cams = [], [], []
-    axis = T_base_camera_goal[:3, 2]
-    depth0 = float(axis @ arm_true.camera_pose(q)[:3, 3])
-    depth_dev = 0.0
     initial_rms = math.nan
     t = 0.0
     steps = int(round(duration_s * rate_hz))
@@ -116,27 +141,14 @@ def run_episode(servo: Servo, sense, q0, T_base_camera_goal, arm_true, *, rate_h
         cmd, status = servo.step(obs, q, t, dt)
         if math.isnan(initial_rms) and not math.isnan(status["rms_px"]):
             initial_rms = status["rms_px"]
-        peaks["joint"] = max(peaks["joint"], float(np.max(np.abs(cmd) /
-                                                          arm_true.velocity_limits)))
-        peaks["tool"] = max(peaks["tool"], float(np.linalg.norm(
-            arm_true.point_jacobian_base(q, "tool", np.asarray(tool_point, float)) @ cmd)))
-        peaks["camera"] = max(peaks["camera"], float(np.linalg.norm(
-            arm_true.point_jacobian_base(q, "camera", np.zeros(3)) @ cmd)))
-        peaks["angular"] = max(peaks["angular"], float(np.linalg.norm(
-            arm_true.jacobian_base(q)[3:] @ cmd)))
+        T_cam = meter.add(q, cmd)
         if record:
             statuses.append(status)
             qs.append(q.copy())
-        T_cam = arm_true.camera_pose(q)
-        depth_dev = max(depth_dev, abs(float(axis @ T_cam[:3, 3]) - depth0))
-        if record:
             cams.append(T_cam[:3, 3].copy())
         if servo.state in ("converged", "halted"):
             break
         q = q + cmd * dt
-        finite = np.isfinite(arm_true.lower)
-        margin = min(margin, float(np.min(np.concatenate([
-            (q - arm_true.lower)[finite], (arm_true.upper - q)[finite]]))))
     moved_m, turned = frames.pose_error(T_base_camera_goal, arm_true.camera_pose(q))
     result = servo.result or {"converged": False, "reason": "episode_timeout",
                               "final_rms_px": status["rms_px"], "time_s": t}
@@ -144,9 +156,10 @@ def run_episode(servo: Servo, sense, q0, T_base_camera_goal, arm_true, *, rate_h
         converged=bool(result["converged"]), reason=result["reason"] or "",
         time_s=float(result["time_s"]), final_rms_px=float(result["final_rms_px"]),
         pose_error_mm=moved_m * 1e3, pose_error_deg=math.degrees(turned),
-        peak_joint_speed_ratio=peaks["joint"], peak_tool_speed=peaks["tool"],
-        peak_camera_speed=peaks["camera"], peak_angular_speed=peaks["angular"],
-        min_limit_margin=margin, initial_rms_px=initial_rms, camera_depth_change_max=depth_dev,
+        peak_joint_speed_ratio=meter.peaks["joint"], peak_tool_speed=meter.peaks["tool"],
+        peak_camera_speed=meter.peaks["camera"], peak_angular_speed=meter.peaks["angular"],
+        min_limit_margin=meter.margin, initial_rms_px=initial_rms,
+        camera_depth_change_max=meter.depth_dev,
         statuses=statuses, q_trace=np.array(qs) if record else None,
         camera_trace=np.array(cams) if record else None)
 
@@ -299,35 +312,6 @@ def _depth_scaled(view_or_obs, scale: float):
     if scale == 1.0 or view_or_obs is None or view_or_obs.depth is None:
         return view_or_obs
     return dataclasses.replace(view_or_obs, depth=np.asarray(view_or_obs.depth) * scale)
-
-
-class _Meter:
-    """Peaks and margins of the true arm motion at the output ticks of a scenario episode."""
-
-    def __init__(self, arm_true, T_base_camera_goal, q0, tool_point):
-        self.arm = arm_true
-        self.tool_point = np.asarray(tool_point, dtype=float)
-        self.axis = T_base_camera_goal[:3, 2]
-        self.depth0 = float(self.axis @ arm_true.camera_pose(q0)[:3, 3])
-        self.finite = np.isfinite(arm_true.lower)
-        self.peaks = dict(joint=0.0, tool=0.0, camera=0.0, angular=0.0)
-        self.margin = math.inf
-        self.depth_dev = 0.0
-
-    def add(self, q, dq) -> np.ndarray:
-        """Account for the true state (q, dq); returns T_base_camera at q."""
-        arm, p = self.arm, self.peaks
-        p["joint"] = max(p["joint"], float(np.max(np.abs(dq) / arm.velocity_limits)))
-        p["tool"] = max(p["tool"], float(np.linalg.norm(
-            arm.point_jacobian_base(q, "tool", self.tool_point) @ dq)))
-        p["camera"] = max(p["camera"], float(np.linalg.norm(
-            arm.point_jacobian_base(q, "camera", np.zeros(3)) @ dq)))
-        p["angular"] = max(p["angular"], float(np.linalg.norm(arm.jacobian_base(q)[3:] @ dq)))
-        self.margin = min(self.margin, float(np.min(np.concatenate([
-            (q - arm.lower)[self.finite], (arm.upper - q)[self.finite]]))))
-        T_cam = arm.camera_pose(q)
-        self.depth_dev = max(self.depth_dev, abs(float(self.axis @ T_cam[:3, 3]) - self.depth0))
-        return T_cam
 
 
 def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
