@@ -127,7 +127,6 @@ import datetime
 import functools
 import json
 import math
-import signal
 import sys
 import threading
 import time
@@ -136,16 +135,13 @@ from pathlib import Path
 
 import cv2
 import numpy as np
-import rclpy
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
 from geometry_msgs.msg import PoseStamped, TwistStamped
 from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ParameterDescriptor,
                                 SetParametersResult)
 from rclpy.clock import Clock, ClockType
-from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
 from rclpy.node import Node
 from rclpy.parameter import Parameter
-from rclpy.signals import SignalHandlerOptions
 from sensor_msgs.msg import CameraInfo, CompressedImage, Image, JointState
 from std_msgs.msg import Bool, Float64, Float64MultiArray, String
 from std_srvs.srv import SetBool, Trigger
@@ -157,7 +153,8 @@ from vservo_node.control import frames
 from vservo_node.control.kinematics import ArmModel
 from vservo_node.episode import servo_config_from_params
 from vservo_node.perception import DepthImage, DepthSettings, Perception, taught_view
-from vservo_node.ros import convert, dds, qos
+from vservo_node.ros import convert, qos
+from vservo_node.ros.node_main import run_node
 from vservo_node.servo import HALT_REASONS, MOVING_STATES, Observation, Servo, ServoSettings
 from vservo_node.vision import image_io
 from vservo_node.vision.reference import load_reference, reference_path, save_reference
@@ -1228,30 +1225,11 @@ def _rms(error_px: np.ndarray) -> float:
     return float(np.sqrt(np.mean(np.sum(np.asarray(error_px) ** 2, axis=1))))
 
 
-def _interrupt(signum, frame):
-    raise KeyboardInterrupt
-
-
 def main(args=None) -> int:
     """Console entry point of ``vservo_node``; parameters from ``--ros-args``."""
-    dds.use_shm_profile()
     # Our own signal handling: the context must outlive SIGINT/SIGTERM long enough to send the
     # explicit zero of a run in progress.
-    rclpy.init(args=args, signal_handler_options=SignalHandlerOptions.NO)
-    signal.signal(signal.SIGINT, _interrupt)
-    signal.signal(signal.SIGTERM, _interrupt)
-    node = ControllerNode()
-    executor = SingleThreadedExecutor()
-    executor.add_node(node)
-    try:
-        executor.spin()
-    except (KeyboardInterrupt, ExternalShutdownException):
-        pass
-    finally:
-        node.shutdown()
-        executor.shutdown(timeout_sec=1.0)
-        node.destroy_node()
-        rclpy.try_shutdown()
+    run_node("vservo_node", ControllerNode, ControllerNode.shutdown, args, own_signals=True)
     return 0
 
 

@@ -82,7 +82,6 @@ import functools
 import json
 import os
 import queue
-import signal
 import sys
 import threading
 import time
@@ -90,7 +89,6 @@ from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
-import rclpy
 import yaml
 from geometry_msgs.msg import PoseStamped, TwistStamped
 from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ParameterDescriptor,
@@ -99,12 +97,10 @@ from rcl_interfaces.srv import GetParameters, GetParameterTypes, ListParameters
 from rclpy.clock import Clock, ClockType
 from rclpy.duration import Duration
 from rclpy.exceptions import ParameterException
-from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
 from rclpy.node import Node
 from rclpy.parameter import parameter_value_to_python
 from rclpy.qos import qos_profile_parameter_events
 from rclpy.serialization import deserialize_message
-from rclpy.signals import SignalHandlerOptions
 from rclpy.task import Future
 from sensor_msgs.msg import CameraInfo, Image, JointState
 from std_msgs.msg import Bool, Float64, Float64MultiArray, String
@@ -113,7 +109,8 @@ from trajectory_msgs.msg import JointTrajectory
 from vservo_node import interface as itf
 from vservo_node.record.bag import PARAMS_FILE, RunRecorder
 from vservo_node.record.report import write_report
-from vservo_node.ros import dds, qos
+from vservo_node.ros import qos
+from vservo_node.ros.node_main import run_node
 
 RECORDER_NODE = itf.RECORDER_NODE
 TOPIC_LAST_BAG = itf.TOPIC_LAST_BAG
@@ -571,36 +568,13 @@ def _json_object(raw: bytes) -> dict | None:
     return value if isinstance(value, dict) else None
 
 
-def _interrupt(signum, frame):
-    raise KeyboardInterrupt
-
-
 def main(args=None) -> int:
     """Console entry point of ``vservo_recorder``; parameters from ``--ros-args``."""
-    dds.use_shm_profile()
     # Our own signal handling: the context must outlive SIGINT/SIGTERM until the open bag is
     # closed and announced. The steady tick timer wakes the executor so the handler runs.
-    rclpy.init(args=args, signal_handler_options=SignalHandlerOptions.NO)
-    signal.signal(signal.SIGINT, _interrupt)
-    signal.signal(signal.SIGTERM, _interrupt)
-    try:
-        node = RecorderNode()
-    except (ValueError, ParameterException) as exc:
-        print(f"vservo_recorder: cannot start: {exc}", file=sys.stderr)
-        rclpy.try_shutdown()
-        return 2
-    executor = SingleThreadedExecutor()
-    executor.add_node(node)
-    try:
-        executor.spin()
-    except (KeyboardInterrupt, ExternalShutdownException):
-        pass
-    finally:
-        node.shutdown()
-        executor.shutdown(timeout_sec=1.0)
-        node.destroy_node()
-        rclpy.try_shutdown()
-    return 0
+    node = run_node("vservo_recorder", RecorderNode, RecorderNode.shutdown, args,
+                    start_errors=(ValueError, ParameterException), own_signals=True)
+    return 2 if node is None else 0
 
 
 if __name__ == "__main__":

@@ -35,7 +35,6 @@ import numpy as np
 import rclpy
 from rcl_interfaces.msg import FloatingPointRange, ParameterDescriptor
 from rclpy.exceptions import ParameterException
-from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
 from rclpy.node import Node
 from rclpy.parameter import Parameter
 from rosgraph_msgs.msg import Clock
@@ -45,7 +44,8 @@ from std_msgs.msg import Float64MultiArray, String
 from trajectory_msgs.msg import JointTrajectory
 
 from vservo_node import interface
-from vservo_node.ros import convert, dds, qos
+from vservo_node.ros import convert, qos
+from vservo_node.ros.node_main import run_node
 from vservo_node.sim import SimCell, load_scenario
 
 
@@ -328,25 +328,11 @@ class _Pacer:
 
 def main(args=None) -> int:
     """Console entry point of ``vservo_sim``: parameters from ``--ros-args``."""
-    dds.use_shm_profile()
-    rclpy.init(args=args)
-    try:
-        node = SimCellNode()
-    except (ValueError, FileNotFoundError, ParameterException) as exc:
-        print(f"vservo_sim: cannot start: {exc}", file=sys.stderr)
-        rclpy.try_shutdown()
+    node = run_node("vservo_sim", SimCellNode, SimCellNode.stop, args,
+                    start_errors=(ValueError, FileNotFoundError, ParameterException),
+                    start=SimCellNode.start)
+    if node is None:
         return 2
-    executor = SingleThreadedExecutor()
-    executor.add_node(node)
-    node.start()
-    try:
-        executor.spin()
-    except (KeyboardInterrupt, ExternalShutdownException):
-        pass
-    finally:
-        node.stop()
-        node.destroy_node()
-        rclpy.try_shutdown()
     return 1 if node.failure else 0
 
 
