@@ -65,11 +65,11 @@ from pathlib import Path
 from typing import Any, Iterator
 
 import numpy as np
-import yaml
 from scipy.spatial.transform import Rotation
 
 from vservo_node import params, paths
 from vservo_node.control.frames import transform
+from vservo_node.yaml_entries import EntryReader
 
 FORMAT = "vservo_sweep/1"
 MODES = ("grid", "random")
@@ -189,40 +189,11 @@ class SweepRun:
 
 
 # ----------------------------------------------------------------------------- loading
-class _Reader:
-    def __init__(self, source):
-        self.where = f"sweep {source}" if source else "sweep"
+class _Reader(EntryReader):
+    """Checks one sweep file's entries; every error names the file and the entry."""
 
-    def fail(self, entry, message):
-        raise SweepError(f"{self.where}: {entry}: {message}")
-
-    def mapping(self, value, entry, allowed=None, required=()):
-        value = {} if value is None else value
-        if not isinstance(value, dict):
-            self.fail(entry, f"expected a mapping, got {value!r}")
-        if allowed is not None:
-            unknown = sorted(set(value) - set(allowed))
-            if unknown:
-                self.fail(entry, f"unknown key(s) {unknown}; expected some of {sorted(allowed)}")
-        missing = sorted(set(required) - set(value))
-        if missing:
-            self.fail(entry, f"missing key(s) {missing}")
-        return value
-
-    def number(self, value, entry, positive=False, minimum=None):
-        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(
-                value):
-            self.fail(entry, f"expected a finite number, got {value!r}")
-        if positive and not value > 0:
-            self.fail(entry, f"must be > 0, got {value!r}")
-        if minimum is not None and value < minimum:
-            self.fail(entry, f"must be >= {minimum}, got {value!r}")
-        return value
-
-    def integer(self, value, entry, minimum):
-        if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
-            self.fail(entry, f"expected an integer >= {minimum}, got {value!r}")
-        return value
+    kind = "sweep"
+    error = SweepError
 
     def quantity(self, name, value, entry):
         """Check one value of a sweep quantity; returns it coerced."""
@@ -242,7 +213,7 @@ class _Reader:
             self.fail(entry, f"must be > -1 (a relative error), got {value!r}")
         if name.startswith(("image.noise", "arm.")) and number < 0:
             self.fail(entry, f"must be >= 0, got {value!r}")
-        return float(number)
+        return number
 
 
 def _axis(r: _Reader, name, value, mode) -> Axis:
@@ -301,7 +272,7 @@ def sweep_from_dict(data, source: Path | None = None) -> SweepSpec:
         r.fail("axes", f"{both} are also in fixed")
     axes = tuple(_axis(r, name, value, mode) for name, value in axes_map.items())
     success = r.mapping(data.get("success"), "success", _SUCCESS)
-    success = Success(**{k: float(r.number(v, f"success.{k}", minimum=0.0))
+    success = Success(**{k: r.number(v, f"success.{k}", minimum=0.0)
                          for k, v in success.items()})
     names = [a.name for a in axes]
     default_map = [n for n in names if n.startswith("start.")] or names
@@ -321,11 +292,7 @@ def sweep_from_dict(data, source: Path | None = None) -> SweepSpec:
 def load_sweep(name_or_path) -> SweepSpec:
     """Load a sweep by short name (``"quick"``, from config/sweeps) or path."""
     path = paths.shipped("sweeps", str(name_or_path))
-    try:
-        data = yaml.safe_load(Path(path).read_text())
-    except yaml.YAMLError as exc:
-        raise SweepError(f"sweep {path}: not valid YAML: {exc}") from exc
-    return sweep_from_dict(data, source=Path(path))
+    return sweep_from_dict(_Reader.read_yaml(path), source=Path(path))
 
 
 # ----------------------------------------------------------------------------- planning

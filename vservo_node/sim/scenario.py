@@ -74,6 +74,7 @@ from vservo_node.sim.camera_sim import Occluder, Photometric
 from vservo_node.sim.ik import solve_camera_pose
 from vservo_node.vision.camera import CameraModel
 from vservo_node.vision.targets import load_target
+from vservo_node.yaml_entries import EntryReader
 
 FORMAT = "vservo_scenario/1"
 
@@ -144,49 +145,11 @@ class Scenario:
 
 
 # ----------------------------------------------------------------------------- parsing helpers
-class _Reader:
+class _Reader(EntryReader):
     """Checks one scenario file's entries; every error names the file and the entry."""
 
-    def __init__(self, source):
-        self.where = f"scenario {source}" if source else "scenario"
-
-    def fail(self, entry, message):
-        raise ScenarioError(f"{self.where}: {entry}: {message}")
-
-    def mapping(self, value, entry, allowed, required=()):
-        if value is None:
-            value = {}
-        if not isinstance(value, dict):
-            self.fail(entry, f"expected a mapping, got {type(value).__name__}")
-        unknown = sorted(set(value) - set(allowed))
-        if unknown:
-            self.fail(entry, f"unknown key(s) {unknown}; expected some of {sorted(allowed)}")
-        missing = sorted(set(required) - set(value))
-        if missing:
-            self.fail(entry, f"missing key(s) {missing}")
-        return value
-
-    def number(self, value, entry, minimum=None, positive=False, allow_inf=False):
-        if isinstance(value, bool) or not isinstance(value, (int, float)):
-            self.fail(entry, f"expected a number, got {value!r}")
-        value = float(value)
-        if not (np.isfinite(value) or (allow_inf and value == np.inf)):
-            self.fail(entry, f"expected a finite number, got {value!r}")
-        if positive and not value > 0:
-            self.fail(entry, f"must be > 0, got {value!r}")
-        if minimum is not None and value < minimum:
-            self.fail(entry, f"must be >= {minimum}, got {value!r}")
-        return value
-
-    def vector(self, value, entry, n):
-        if not isinstance(value, (list, tuple)) or len(value) != n:
-            self.fail(entry, f"expected a list of {n} numbers, got {value!r}")
-        return np.array([self.number(v, f"{entry}[{i}]") for i, v in enumerate(value)])
-
-    def text(self, value, entry):
-        if not isinstance(value, str) or not value:
-            self.fail(entry, f"expected a non-empty string, got {value!r}")
-        return value
+    kind = "scenario"
+    error = ScenarioError
 
     def path(self, value, entry):
         path = Path(self.text(value, entry))
@@ -425,8 +388,4 @@ def scenario_from_dict(data, source: Path | None = None) -> Scenario:
 def load_scenario(name_or_path) -> Scenario:
     """Load a scenario by short name (``"tray_twist"``, from config/scenarios) or path."""
     path = paths.shipped("scenarios", str(name_or_path))
-    try:
-        data = yaml.safe_load(Path(path).read_text())
-    except yaml.YAMLError as exc:
-        raise ScenarioError(f"scenario {path}: not valid YAML: {exc}") from exc
-    return scenario_from_dict(data, source=Path(path))
+    return scenario_from_dict(_Reader.read_yaml(path), source=Path(path))
