@@ -87,21 +87,35 @@ class EpisodeResult:
         return {k: getattr(self, k) for k in keys}
 
 
-class _Meter:
-    """Peaks and margins of the true arm motion at the output ticks of an episode."""
+def _start(servo: Servo, q0, t: float) -> None:
+    """Enable and start ``servo`` at joints q0 (rad) and time t (s); RuntimeError if refused."""
+    servo.enable(True, t)
+    ok, why = servo.start(q0, t)
+    if not ok:
+        raise RuntimeError(f"servo refused to start: {why}")
 
-    def __init__(self, arm_true, T_base_camera_goal, q0, tool_point):
+
+class _Meter:
+    """What an episode measures at its output ticks: peaks and margins of the true arm motion,
+    the first finite RMS error and, with ``record``, the statuses, joints (rad) and camera
+    positions (m, base frame)."""
+
+    def __init__(self, arm_true, T_base_camera_goal, q0, tool_point, record: bool = False):
         self.arm = arm_true
         self.tool_point = np.asarray(tool_point, dtype=float)
+        self.T_goal = T_base_camera_goal
         self.axis = T_base_camera_goal[:3, 2]
         self.depth0 = float(self.axis @ arm_true.camera_pose(q0)[:3, 3])
         self.finite = np.isfinite(arm_true.lower)
         self.peaks = dict(joint=0.0, tool=0.0, camera=0.0, angular=0.0)
         self.margin = math.inf
         self.depth_dev = 0.0
+        self.initial_rms = math.nan
+        self.record = record
+        self.statuses, self.qs, self.cams = [], [], []
 
-    def add(self, q, dq) -> np.ndarray:
-        """Account for the true state (q, dq); returns T_base_camera at q."""
+    def add(self, q, dq, status: dict) -> None:
+        """Account for the true state (q rad, dq rad/s) and the servo's status at this tick."""
         arm, p = self.arm, self.peaks
         p["joint"] = max(p["joint"], float(np.max(np.abs(dq) / arm.velocity_limits)))
         p["tool"] = max(p["tool"], float(np.linalg.norm(
@@ -113,7 +127,30 @@ class _Meter:
             (q - arm.lower)[self.finite], (arm.upper - q)[self.finite]]))))
         T_cam = arm.camera_pose(q)
         self.depth_dev = max(self.depth_dev, abs(float(self.axis @ T_cam[:3, 3]) - self.depth0))
-        return T_cam
+        if math.isnan(self.initial_rms) and not math.isnan(status["rms_px"]):
+            self.initial_rms = status["rms_px"]
+        if self.record:
+            self.statuses.append(status)
+            self.qs.append(np.array(q, dtype=float))
+            self.cams.append(T_cam[:3, 3].copy())
+
+    def result(self, servo: Servo, status: dict, t: float, T_base_camera_end) -> EpisodeResult:
+        """The episode's result: the servo's run result (``episode_timeout`` when the run did
+        not end by time t, s), what was measured, and the pose error of the true camera pose
+        at the end against the true taught one."""
+        moved_m, turned = frames.pose_error(self.T_goal, T_base_camera_end)
+        result = servo.result or {"converged": False, "reason": "episode_timeout",
+                                  "final_rms_px": status["rms_px"], "time_s": t}
+        return EpisodeResult(
+            converged=bool(result["converged"]), reason=result["reason"] or "",
+            time_s=float(result["time_s"]), final_rms_px=float(result["final_rms_px"]),
+            pose_error_mm=moved_m * 1e3, pose_error_deg=math.degrees(turned),
+            peak_joint_speed_ratio=self.peaks["joint"], peak_tool_speed=self.peaks["tool"],
+            peak_camera_speed=self.peaks["camera"], peak_angular_speed=self.peaks["angular"],
+            min_limit_margin=self.margin, initial_rms_px=self.initial_rms,
+            camera_depth_change_max=self.depth_dev, statuses=self.statuses,
+            q_trace=np.array(self.qs) if self.record else None,
+            camera_trace=np.array(self.cams) if self.record else None)
 
 
 def run_episode(servo: Servo, sense, q0, T_base_camera_goal, arm_true, *, rate_hz: float = 100.0,
@@ -126,42 +163,19 @@ def run_episode(servo: Servo, sense, q0, T_base_camera_goal, arm_true, *, rate_h
     """
     dt = 1.0 / rate_hz
     q = np.array(q0, dtype=float)
-    servo.enable(True, 0.0)
-    ok, why = servo.start(q, 0.0)
-    if not ok:
-        raise RuntimeError(f"servo refused to start: {why}")
-    meter = _Meter(arm_true, T_base_camera_goal, q, tool_point)
-    statuses, qs, cams = [], [], []
-    initial_rms = math.nan
+    _start(servo, q, 0.0)
+    meter = _Meter(arm_true, T_base_camera_goal, q, tool_point, record)
     t = 0.0
     steps = int(round(duration_s * rate_hz))
     for k in range(steps + 1):
         t = k * dt
         obs = sense(q, t)
         cmd, status = servo.step(obs, q, t, dt)
-        if math.isnan(initial_rms) and not math.isnan(status["rms_px"]):
-            initial_rms = status["rms_px"]
-        T_cam = meter.add(q, cmd)
-        if record:
-            statuses.append(status)
-            qs.append(q.copy())
-            cams.append(T_cam[:3, 3].copy())
+        meter.add(q, cmd, status)
         if servo.state in ("converged", "halted"):
             break
         q = q + cmd * dt
-    moved_m, turned = frames.pose_error(T_base_camera_goal, arm_true.camera_pose(q))
-    result = servo.result or {"converged": False, "reason": "episode_timeout",
-                              "final_rms_px": status["rms_px"], "time_s": t}
-    return EpisodeResult(
-        converged=bool(result["converged"]), reason=result["reason"] or "",
-        time_s=float(result["time_s"]), final_rms_px=float(result["final_rms_px"]),
-        pose_error_mm=moved_m * 1e3, pose_error_deg=math.degrees(turned),
-        peak_joint_speed_ratio=meter.peaks["joint"], peak_tool_speed=meter.peaks["tool"],
-        peak_camera_speed=meter.peaks["camera"], peak_angular_speed=meter.peaks["angular"],
-        min_limit_margin=meter.margin, initial_rms_px=initial_rms,
-        camera_depth_change_max=meter.depth_dev,
-        statuses=statuses, q_trace=np.array(qs) if record else None,
-        camera_trace=np.array(cams) if record else None)
+    return meter.result(servo, status, t, arm_true.camera_pose(q))
 
 
 def limits_for(arm, *, velocity_scale: float = 0.5, acceleration=2.0, position_margin=0.03,
@@ -372,18 +386,12 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     perception = Perception(sc.target, camera, reference, depth)
     servo.set_reference(_depth_scaled(taught_view(reference, camera), sc.depth_scale_belief))
 
-    T_goal = cell.taught_camera_pose
-    meter = _Meter(cell.arm_model, T_goal, sc.q_start, values["robot.tool_point"])
+    meter = _Meter(cell.arm_model, cell.taught_camera_pose, sc.q_start,
+                   values["robot.tool_point"], record)
     period = 1.0 / values["io.output_rate_hz"]
     frame_period = 1.0 / sc.fps
     no_features = Observation((), np.zeros((0, 2)), np.zeros((0, 2)))
-    servo.enable(True, 0.0)
-    ok, why = servo.start(cell.joint_state(0.0)[0], 0.0)
-    if not ok:
-        raise RuntimeError(f"servo refused to start: {why}")
-    statuses, qs, cams = [], [], []
-    initial_rms = math.nan
-    status = None
+    _start(servo, cell.joint_state(0.0)[0], 0.0)
     frame = 0
     t = 0.0
     for k in range(int(math.floor(sc.duration_s / period)) + 1):
@@ -398,26 +406,7 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
         cell.step(t - cell.t)
         cmd, status = servo.command(cell.joint_state(t)[0], t, period)
         cell.command_velocity(cmd, t)
-        if math.isnan(initial_rms) and not math.isnan(status["rms_px"]):
-            initial_rms = status["rms_px"]
-        q_true, dq_true = cell.arm.true_state(t)
-        T_cam = meter.add(q_true, dq_true)
-        if record:
-            statuses.append(status)
-            qs.append(q_true)
-            cams.append(T_cam[:3, 3].copy())
+        meter.add(*cell.arm.true_state(t), status)
         if servo.state in ("converged", "halted"):
             break
-    moved_m, turned = frames.pose_error(T_goal, cell.camera_pose(t))
-    result = servo.result or {"converged": False, "reason": "episode_timeout",
-                              "final_rms_px": status["rms_px"], "time_s": t}
-    return EpisodeResult(
-        converged=bool(result["converged"]), reason=result["reason"] or "",
-        time_s=float(result["time_s"]), final_rms_px=float(result["final_rms_px"]),
-        pose_error_mm=moved_m * 1e3, pose_error_deg=math.degrees(turned),
-        peak_joint_speed_ratio=meter.peaks["joint"], peak_tool_speed=meter.peaks["tool"],
-        peak_camera_speed=meter.peaks["camera"], peak_angular_speed=meter.peaks["angular"],
-        min_limit_margin=meter.margin, initial_rms_px=initial_rms,
-        camera_depth_change_max=meter.depth_dev, statuses=statuses,
-        q_trace=np.array(qs) if record else None,
-        camera_trace=np.array(cams) if record else None)
+    return meter.result(servo, status, t, cell.camera_pose(t))
