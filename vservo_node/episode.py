@@ -47,7 +47,8 @@ class PointScene:
 
     def taught_view(self, q_taught, depth_scale: float = 1.0) -> TaughtView:
         xy, uv, z = self.view(q_taught)
-        return TaughtView(self.keys, xy, uv, z * depth_scale)
+        return TaughtView(self.keys, xy, uv, z * depth_scale,
+                          image_size=(self.camera.width, self.camera.height))
 
     def sense(self, depth: str = "true", depth_scale: float = 1.0
               ) -> Callable[[np.ndarray, float], Observation | None]:

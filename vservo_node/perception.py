@@ -101,7 +101,8 @@ def taught_view(reference: Reference, camera: CameraModel) -> TaughtView:
     xy = reference.normalized if reference.normalized is not None else (
         camera.pixels_to_normalized(uv))
     return TaughtView(tuple(reference.keys), np.array(xy, dtype=float), np.array(uv, dtype=float),
-                      None if reference.depths is None else np.array(reference.depths, float))
+                      None if reference.depths is None else np.array(reference.depths, float),
+                      image_size=(camera.width, camera.height))
 
 
 class Perception:

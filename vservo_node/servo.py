@@ -64,6 +64,7 @@ class TaughtView:
     xy: np.ndarray
     uv: np.ndarray
     depth: np.ndarray | None = None
+    image_size: tuple[int, int] | None = None   # (width, height) px, for the border margin
 
     def __post_init__(self) -> None:
         n = len(self.keys)
@@ -121,7 +122,12 @@ class ServoSettings:
     diverge_margin_px: float = 20.0
     follow_window_s: float = 0.5          # judge following over this window
     follow_min_ratio: float = 0.2         # measured / commanded joint travel below -> halt
+    # speed-scale margins (our design, common practice, no source): each is 1 away from its
+    # hazard and falls linearly to margin_floor at it; hard halts take over beyond
+    margin_floor: float = 0.2
     border_margin_px: float = 20.0        # slow down when a feature is this close to the border
+    joint_zone_rad: float = 0.15          # ... when a joint is this close to its (margined) limit
+    envelope_zone: float = 0.2            # ... in the last fifth of the motion envelope
 
     @classmethod
     def from_params(cls, values: dict[str, Any]) -> "ServoSettings":
@@ -336,7 +342,7 @@ class Servo:
             self.halt("numerical_fault", t)
             return
         self._desired = dq
-        self._margin_scale = self._margins(info, uv_now)
+        self._margin_scale = self._margins(info, uv_now, q)
         # arrival: below tolerance for the dwell time with the joints (nearly) stopped
         if rms_px <= s.tolerance_px:
             if run.below_since is None:
@@ -402,10 +408,17 @@ class Servo:
         d_xy = np.linalg.norm(ref.xy - ref.xy.mean(axis=0), axis=1).sum()
         return float(d_uv / d_xy) if d_xy > 0 else 1.0
 
-    def _outside_envelope(self, q: np.ndarray) -> bool:
+    def _envelope_used(self, q: np.ndarray) -> float:
+        """Fraction of the motion envelope used: the larger of tool translation and rotation
+        from the start pose over their maxima (> 1: outside)."""
         s, run = self.settings, self._run
         moved_m, turned_rad = frames.pose_error(run.T_base_tool_start, self.arm.fk(q))
-        return moved_m > s.max_translation_m or math.degrees(turned_rad) > s.max_rotation_deg
+        return max(moved_m / s.max_translation_m if s.max_translation_m > 0 else math.inf,
+                   math.degrees(turned_rad) / s.max_rotation_deg if s.max_rotation_deg > 0
+                   else math.inf)
+
+    def _outside_envelope(self, q: np.ndarray) -> bool:
+        return self._envelope_used(q) > 1.0
 
     def _not_following(self, q: np.ndarray, t: float) -> bool:
         s, run = self.settings, self._run
@@ -420,13 +433,30 @@ class Servo:
         # judged only when the command asked for real travel (5 mrad over the window)
         return commanded > 5e-3 and measured < s.follow_min_ratio * commanded
 
-    def _margins(self, info, uv: np.ndarray) -> float:
-        """Speed scale in [0, 1] from margins of our design (smooth, common practice)."""
+    def _margins(self, info, uv: np.ndarray, q: np.ndarray) -> float:
+        """Speed scale in [margin_floor, 1]: the smallest of the singularity, joint-limit,
+        image-border and motion-envelope margins (our design; common practice, no source).
+        Each slows the motion smoothly as its hazard nears; hard halts act beyond."""
         s = self.settings
-        sigma_scale = 1.0
-        if info.dls is not None and s.singular_threshold > 0:
-            sigma_scale = float(np.clip(info.dls.sigma_judge / s.singular_threshold, 0.2, 1.0))
-        return sigma_scale
+
+        def ramp(room: float, zone: float) -> float:
+            return float(np.clip(room / zone, s.margin_floor, 1.0)) if zone > 0 else 1.0
+
+        scales = [1.0]
+        if info.dls is not None:
+            scales.append(ramp(info.dls.sigma_judge, s.singular_threshold))
+        bounded = np.isfinite(self.limits.lower) & np.isfinite(self.limits.upper)
+        if np.any(bounded):
+            room = np.minimum(q - self.limits.lower, self.limits.upper - q)[bounded]
+            scales.append(ramp(float(np.min(room)), s.joint_zone_rad))
+        size = self.reference.image_size
+        if size is not None and len(uv):
+            width, height = size
+            room_px = np.min(np.minimum.reduce([uv[:, 0], uv[:, 1], width - 1 - uv[:, 0],
+                                                height - 1 - uv[:, 1]]))
+            scales.append(ramp(float(room_px), s.border_margin_px))
+        scales.append(ramp(1.0 - self._envelope_used(q), s.envelope_zone))
+        return min(scales)
 
     # --- the output cycle ------------------------------------------------------------------
     def command(self, q: np.ndarray, t: float, dt: float) -> tuple[np.ndarray, dict]:
