@@ -116,8 +116,8 @@ class ServoSettings:
     max_rotation_deg: float = 180.0
     min_camera_distance_m: float = 0.08
     # supervisor checks (our design; thresholds are common practice, no source)
-    wrong_direction_frames: int = 5       # consecutive disagreeing frames before a halt
-    wrong_direction_min_px: float = 0.3   # predicted motion below this is not judged
+    wrong_direction_frames: int = 3       # consecutive opposed judgements before a halt
+    wrong_direction_min_px: float = 2.0   # judge once the predicted motion (RMS) reaches this
     diverge_factor: float = 1.5           # halt when rms > factor * best + diverge_margin_px
     diverge_margin_px: float = 20.0
     follow_window_s: float = 0.5          # judge following over this window
@@ -171,6 +171,7 @@ class _RunState:
     best_rms: float = math.inf
     below_since: float | None = None
     wrong_frames: int = 0
+    direction_anchor: "_Frame | None" = None
     follow_cmd: float = 0.0
     follow_meas: float = 0.0
     follow_t0: float = 0.0
@@ -316,11 +317,18 @@ class Servo:
             return
         if prev is None or prev.keys != keys:
             self.law.restart(e, t)
-        if prev is not None and prev.keys == keys:
-            if self._wrong_direction(prev, e, q):
+        frame = _Frame(t, q, keys, e, J_img, J_move, rms_px, error_px, uv_now)
+        anchor = run.direction_anchor
+        if anchor is None or anchor.keys != keys:
+            run.direction_anchor = frame
+        else:
+            verdict = self._wrong_direction(anchor, e, q)
+            if verdict is not None:          # judged: the next judgement starts here
+                run.direction_anchor = frame
+            if verdict:
                 self.halt("wrong_direction", t)
                 return
-        self._frame = _Frame(t, q, keys, e, J_img, J_move, rms_px, error_px, uv_now)
+        self._frame = frame
         run.best_rms = min(run.best_rms, rms_px)
         run.final_rms = rms_px
         if rms_px > s.diverge_factor * run.best_rms + s.diverge_margin_px:
@@ -369,17 +377,19 @@ class Servo:
     WRONG_DIRECTION_DEPTH_RATIO = (0.3, 3.0)
     WRONG_DIRECTION_RESIDUAL = 0.6
 
-    def _wrong_direction(self, prev: _Frame, e: np.ndarray, q: np.ndarray) -> bool:
-        """Is the feature motion seen since the last frame explained by the local image
-        Jacobian for the joint motion in between?
+    def _wrong_direction(self, prev: _Frame, e: np.ndarray, q: np.ndarray) -> bool | None:
+        """Is the feature motion seen since frame ``prev`` explained by the local image
+        Jacobian for the joint motion in between? None: too little motion to judge yet (the
+        caller keeps ``prev`` as its anchor until the predicted motion reaches
+        wrong_direction_min_px RMS, so feature noise, ~1 px on textured targets, cannot
+        dominate the judgement).
 
         The prediction splits into the flow from the camera's translation, which scales with
         1/depth, and the flow from its rotation, which does not (Chaumette & Hutchinson 2006,
         eq. 11). Believed depths may be off, so the seen motion is fitted as
-        ``a * translational + rotational`` by least squares: with the right hand-eye, optical
-        frame and joint order the fit is close and ``a`` (believed over true depth) plausible;
-        a mirrored or turned hand-eye leaves a large residual or asks for a negative or absurd
-        ``a``. Judged over several frames in a row (wrong_direction_frames). A plain cosine
+        ``a * translational + rotational`` by least squares, with ``a`` (believed over true
+        depth) held to a plausible range: with the right hand-eye, optical frame and joint order
+        the fit is close; a mirrored or turned hand-eye leaves a large residual. Opposed several judgements in a row (wrong_direction_frames) -> True. A plain cosine
         between predicted and seen motion cannot tell these apart near poses where the two
         flows nearly cancel: 40 % short depths flipped its sign at tray_offset's start.
         """
@@ -389,14 +399,15 @@ class Servo:
         predicted = moved_by_translation + moved_by_rotation
         norm_px = self._focal_px() / math.sqrt(len(e) / 2)
         if np.linalg.norm(predicted) * norm_px < s.wrong_direction_min_px:
-            return False
+            return None
         left = seen - moved_by_rotation
         tt = float(moved_by_translation @ moved_by_translation)
-        ratio = float(moved_by_translation @ left) / tt if tt > 0 else 1.0
+        # the best plausible depth ratio (an implausible one would explain nothing real; when
+        # the translational flow is small the ratio is ill-determined and the clip holds it)
+        ratio = float(np.clip(float(moved_by_translation @ left) / tt if tt > 0 else 1.0,
+                              *self.WRONG_DIRECTION_DEPTH_RATIO))
         residual = np.linalg.norm(left - ratio * moved_by_translation)
-        low, high = self.WRONG_DIRECTION_DEPTH_RATIO
-        opposed = (not low <= ratio <= high or
-                   residual > self.WRONG_DIRECTION_RESIDUAL * np.linalg.norm(seen))
+        opposed = residual > self.WRONG_DIRECTION_RESIDUAL * np.linalg.norm(seen)
         run = self._run
         run.wrong_frames = run.wrong_frames + 1 if opposed else 0
         return run.wrong_frames >= s.wrong_direction_frames
