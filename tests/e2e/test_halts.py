@@ -112,7 +112,7 @@ def test_hand_eye_believed_turned_half_a_turn_halts_wrong_direction(cell, figure
     and y). At tray_offset's start the translational and rotational feature flows nearly
     cancel, so the first mirrored motions still look like a plausible depth error; the check
     (servo.py: fit of the seen motion as a * translational + rotational flow) tells them apart
-    once the motion evolves. Measured: ~0.9 s (~27 frames), the camera ~54 mm from its start.
+    once the motion evolves. Measured: ~1.0 s (~30 frames), the camera ~60 mm from its start.
     Bounds (ours, no source): halted on wrong_direction (not by the motion envelope or the
     divergence check) within 1.5 s, before the camera strayed 0.1 m or 10 deg. The target of
     'within a few frames' is not met at this start pose."""
