@@ -44,6 +44,7 @@ HALT_REASONS = {
     "wrong_direction": "features move against the motion the image Jacobian predicts",
     "not_following": "the arm is not following its command",
     "diverging": "the image error grows",
+    "initial_error_too_large": "the first image error is above control.max_initial_error_px",
     "run_timeout": "the run exceeded its maximum duration",
     "numerical_fault": "a non-finite value reached the control law or the limiter",
     "motion_disabled": "motion was disabled",
@@ -187,11 +188,8 @@ class _Frame:
     q: np.ndarray
     keys: tuple
     e: np.ndarray
-    J_img: np.ndarray
     J_move: np.ndarray   # (2, 2N, n): feature motion from camera translation, from rotation
     rms_px: float
-    error_px: np.ndarray
-    uv: np.ndarray
 
 
 class Servo:
@@ -312,12 +310,11 @@ class Servo:
         J_move = np.stack([L_local[:, :3] @ camera_jac[:3], L_local[:, 3:] @ camera_jac[3:]])
         prev = self._frame
         if prev is None and rms_px > s.max_initial_error_px:
-            self.halt("diverging", t)
-            self.reason = "initial_error_too_large"
+            self.halt("initial_error_too_large", t)
             return
         if prev is None or prev.keys != keys:
             self.law.restart(e, t)
-        frame = _Frame(t, q, keys, e, J_img, J_move, rms_px, error_px, uv_now)
+        frame = _Frame(t, q, keys, e, J_move, rms_px)
         anchor = run.direction_anchor
         if anchor is None or anchor.keys != keys:
             run.direction_anchor = frame
@@ -538,10 +535,6 @@ class Servo:
         }
 
     # --- read-only views for the shells -----------------------------------------------------
-    @property
-    def frame(self) -> _Frame | None:
-        return self._frame
-
     def camera_twist(self, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
         """Camera twist [v; w] in the camera optical frame for joint velocity dq."""
         return self.arm.camera_from_tool() @ self.arm.jacobian_tool(q) @ dq
