@@ -229,14 +229,21 @@ def _box_fraction(base: np.ndarray, delta: np.ndarray, lo: np.ndarray, hi: np.nd
 
 def _ball_fraction(A: np.ndarray, base: np.ndarray, delta: np.ndarray, radius: float) -> float:
     """Largest s >= 0 with ||A (base + s delta)|| <= radius (larger root of a quadratic)."""
-    a, b = A @ delta, A @ base
+    # Solved along the unit direction and scaled back: with a tiny delta (1e-160) the
+    # quadratic's coefficients underflow and the root came out as 0 instead of huge.
+    length = float(np.linalg.norm(delta))
+    if length == 0.0:
+        return np.inf
+    a, b = A @ (delta / length), A @ base
     aa, ab, slack = a @ a, a @ b, radius * radius - b @ b
     if aa == 0.0:
         return np.inf
     slack = max(slack, 0.0)
     root = np.sqrt(ab * ab + aa * slack)
     # Two algebraically equal forms of the same root; each avoids cancellation on its side.
-    return float((root - ab) / aa) if ab <= 0 else float(slack / (ab + root))
+    along_unit = float((root - ab) / aa) if ab <= 0 else float(slack / (ab + root))
+    with np.errstate(over="ignore"):
+        return along_unit / length
 
 
 @dataclass(frozen=True)
