@@ -112,8 +112,11 @@ def test_planar_jacobians_match_finite_differences():
 def limiter_cases(draw):
     n = draw(st.integers(1, 7))
 
+    # Subnormal floats (< 2.2e-308) are no joint speeds, and a test's "a little more" step
+    # underflows on them: leave them out.
     def floats(lo, hi):
-        return st.lists(st.floats(lo, hi), min_size=n, max_size=n).map(np.array)
+        return st.lists(st.floats(lo, hi, allow_subnormal=False), min_size=n,
+                        max_size=n).map(np.array)
 
     lower, upper = draw(floats(-3.0, -0.1)), draw(floats(0.1, 3.0))
     continuous = draw(st.lists(st.booleans(), min_size=n, max_size=n).map(np.array))
@@ -194,8 +197,9 @@ def test_limiter_output_meets_every_limit(case):
     assert 0.0 <= c <= 1.0
     target = c * desired
     assert not violations(target, *args)
-    if c < 1.0:
-        assert violations((c + 1e-6) * desired, *args, tol=0.0)
+    more = (c + 1e-6) * desired
+    if c < 1.0 and not np.array_equal(more, target):   # (equal: the step underflowed)
+        assert violations(more, *args, tol=0.0)
     # out = base + s (target - base), s in [0, 1]
     assert 0.0 <= report.scale <= 1.0
     np.testing.assert_allclose(out - base, report.scale * (target - base), atol=1e-12)
@@ -203,7 +207,8 @@ def test_limiter_output_meets_every_limit(case):
     if report.scale < 1.0:
         # and s is the largest: a little more breaks a limit or the acceleration bound
         more = base + (report.scale + 1e-6) * (desired - base)
-        assert violations(more, *args, tol=0.0) or not accel_ok(more, prev, limits, dt, 0.0)
+        if not np.array_equal(more, out):                # (equal: the step underflowed)
+            assert violations(more, *args, tol=0.0) or not accel_ok(more, prev, limits, dt, 0.0)
         assert report.winner in report.acted
 
 
