@@ -506,10 +506,11 @@ class ControllerNode(Node):
                 return reason, None
             new[p.name] = params.check_value(param, value)[0]
         before = set(params.validate(self._values).errors)
-        added = [e for e in params.validate(new).errors if e not in before]
+        checked = params.validate(new)
+        added = [e for e in checked.errors if e not in before]
         if added:
             return "; ".join(added), None
-        if self.arm is not None and params.validate(new).ok:
+        if self.arm is not None and checked.ok:
             try:
                 self._servo_config(new)
             except ValueError as exc:
