@@ -19,6 +19,7 @@ Halting ramps the command to zero at the deceleration limit, then reports an exp
 """
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass, field
 from typing import Any, Hashable, Sequence
@@ -80,6 +81,13 @@ class TaughtView:
 
     def index(self) -> dict[Hashable, int]:
         return {k: i for i, k in enumerate(self.keys)}
+
+    @functools.cached_property
+    def px_per_unit(self) -> float:
+        """Pixels per normalized unit, from the view itself (spread of uv over spread of xy)."""
+        d_uv = np.linalg.norm(self.uv - self.uv.mean(axis=0), axis=1).sum()
+        d_xy = np.linalg.norm(self.xy - self.xy.mean(axis=0), axis=1).sum()
+        return float(d_uv / d_xy) if d_xy > 0 else 1.0
 
 
 @dataclass(frozen=True)
@@ -394,7 +402,7 @@ class Servo:
         moved_by_translation, moved_by_rotation = prev.J_move @ (q - prev.q)
         seen = e - prev.e
         predicted = moved_by_translation + moved_by_rotation
-        norm_px = self._focal_px() / math.sqrt(len(e) / 2)
+        norm_px = self.reference.px_per_unit / math.sqrt(len(e) / 2)
         if np.linalg.norm(predicted) * norm_px < s.wrong_direction_min_px:
             return None
         left = seen - moved_by_rotation
@@ -408,13 +416,6 @@ class Servo:
         run = self._run
         run.wrong_frames = run.wrong_frames + 1 if opposed else 0
         return run.wrong_frames >= s.wrong_direction_frames
-
-    def _focal_px(self) -> float:
-        ref = self.reference
-        # px per normalized unit, from the taught view itself (any two distinct points)
-        d_uv = np.linalg.norm(ref.uv - ref.uv.mean(axis=0), axis=1).sum()
-        d_xy = np.linalg.norm(ref.xy - ref.xy.mean(axis=0), axis=1).sum()
-        return float(d_uv / d_xy) if d_xy > 0 else 1.0
 
     def _envelope_used(self, q: np.ndarray) -> float:
         """Fraction of the motion envelope used: the larger of tool translation and rotation
