@@ -191,16 +191,13 @@ class Rig:
 
     def client(self, srv_type, name):
         if name not in self.clients:
-            client = self.node.create_client(srv_type, name)
-            harness.spin_until(self.node, client.service_is_ready, 20.0, f"service {name}",
-                               self.procs)
-            self.clients[name] = client
+            self.clients[name] = harness.ready_client(self.node, srv_type, name, 20.0,
+                                                      self.procs)
         return self.clients[name]
 
     def call(self, srv_type, name, request=None):
-        future = self.client(srv_type, name).call_async(request or srv_type.Request())
-        harness.spin_until(self.node, future.done, 10.0, f"a response from {name}", self.procs)
-        return future.result()
+        return harness.call_service(self.node, self.client(srv_type, name),
+                                    request or srv_type.Request(), 10.0, self.procs)
 
     def enable(self, on: bool, prefix=""):
         return self.call(SetBool, prefix + "/" + itf.SRV_ENABLE_MOTION, SetBool.Request(data=on))

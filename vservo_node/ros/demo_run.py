@@ -105,6 +105,7 @@ class Watcher(Node):
                                  qos.STATE)
         self.create_subscription(JointState, interface.TOPIC_JOINT_STATES, self._on_joints,
                                  qos.STATE)
+        self.settled_services = set()
         self.enable = self.create_client(SetBool, interface.SRV_ENABLE_MOTION)
         self.start = self.create_client(Trigger, interface.SRV_START)
 
@@ -133,11 +134,14 @@ class Watcher(Node):
 
 
 def _call(node, client, request, processes, timeout=10.0):
-    harness.wait_until(lambda: client.service_is_ready(), timeout,
-                       f"service {client.srv_name}", processes)
-    future = client.call_async(request)
-    harness.spin_until(node, future.done, timeout, f"a reply from {client.srv_name}", processes)
-    return future.result()
+    harness.spin_until(node, client.service_is_ready, timeout, f"service {client.srv_name}",
+                       processes)
+    if client.srv_name not in node.settled_services:   # see harness.DISCOVERY_SETTLE_S
+        settle = time.monotonic() + harness.DISCOVERY_SETTLE_S
+        harness.spin_until(node, lambda: time.monotonic() >= settle, timeout,
+                           f"discovery of {client.srv_name}", processes)
+        node.settled_services.add(client.srv_name)
+    return harness.call_service(node, client, request, timeout, processes)
 
 
 def start_sim(scenario_ref, ros_args=()) -> harness.NodeProcess:

@@ -172,3 +172,28 @@ def wait_for_message(node: Node, topic: str, msg_type, qos: QoSProfile, timeout:
     finally:
         node.destroy_subscription(sub)
     return got[0]
+
+
+# After a service shows ready, the server may not yet have matched the client's *response*
+# reader: a request sent at once can be answered into the void (seen here as a rare 10 s
+# timeout on a loaded machine). Waiting this long after readiness lets discovery finish.
+DISCOVERY_SETTLE_S = 0.3
+
+
+def ready_client(node: Node, srv_type, name: str, timeout: float = 20.0,
+                 processes: Iterable[NodeProcess] = ()):
+    """A service client of ``node`` whose service is ready and discovered both ways."""
+    client = node.create_client(srv_type, name)
+    spin_until(node, client.service_is_ready, timeout, f"service {name}", processes)
+    settle = time.monotonic() + DISCOVERY_SETTLE_S
+    spin_until(node, lambda: time.monotonic() >= settle, DISCOVERY_SETTLE_S + 1.0,
+               f"discovery of service {name}", processes)
+    return client
+
+
+def call_service(node: Node, client, request, timeout: float = 10.0,
+                 processes: Iterable[NodeProcess] = ()):
+    """Call ``client`` (from :func:`ready_client`) and spin ``node`` until the reply."""
+    future = client.call_async(request)
+    spin_until(node, future.done, timeout, f"a response from {client.srv_name}", processes)
+    return future.result()
