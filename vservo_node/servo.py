@@ -127,6 +127,8 @@ class ServoSettings:
     # supervisor checks (our design; thresholds are common practice, no source)
     wrong_direction_frames: int = 3       # consecutive opposed judgements before a halt
     wrong_direction_min_px: float = 2.0   # judge once the predicted motion (RMS) reaches this
+    direction_probe_px: float = 6.0       # start nod: peak feature shift (0 = no nod)
+    direction_probe_s: float = 0.3        # start nod: duration (one sine period)
     diverge_factor: float = 1.5           # halt when rms > factor * best + diverge_margin_px
     diverge_margin_px: float = 20.0
     follow_window_s: float = 0.5          # judge following over this window
@@ -158,6 +160,8 @@ class ServoSettings:
             min_features=get("control.min_features", cls.min_features),
             max_run_s=get("control.max_run_s", cls.max_run_s),
             max_initial_error_px=get("control.max_initial_error_px", cls.max_initial_error_px),
+            direction_probe_px=get("control.direction_probe_px", cls.direction_probe_px),
+            direction_probe_s=get("control.direction_probe_s", cls.direction_probe_s),
             depth_source="observed" if depth in ("target_model", "depth_image") else depth,
             constant_depth_m=get("depth.constant_m", cls.constant_depth_m),
             max_translation_m=get("limits.max_translation_m", cls.max_translation_m),
@@ -181,8 +185,8 @@ class _RunState:
     below_since: float | None = None
     wrong_frames: int = 0
     direction_anchor: "_Frame | None" = None
-    follow_cmd: float = 0.0
-    follow_meas: float = 0.0
+    probe_t0: float | None = None
+    follow_cmd: np.ndarray | float = 0.0   # commanded joint travel (rad) in the window
     follow_t0: float = 0.0
     follow_q0: np.ndarray | None = None
     final_rms: float = math.nan
@@ -354,7 +358,12 @@ class Servo:
         if info.fault:
             self.halt("numerical_fault", t)
             return
-        self._desired = dq
+        nod = self._probe(camera_jac, t)
+        if nod is None:
+            self._desired = dq
+        else:                  # the law waits for the nod; its soft start begins after it
+            self.law.restart(e, t)
+            self._desired = nod
         self._margin_scale = self._margins(info, uv_now, q)
         # arrival: below tolerance for the dwell time with the joints (nearly) stopped
         if rms_px <= s.tolerance_px:
@@ -381,6 +390,11 @@ class Servo:
     # factor of ~3), and the fit explaining the seen motion (residual below this fraction).
     WRONG_DIRECTION_DEPTH_RATIO = (0.3, 3.0)
     WRONG_DIRECTION_RESIDUAL = 0.6
+    # ... and, besides, the seen motion more than 60 deg away from the predicted one: a tilted
+    # hand-eye (5 deg) under a turn about the optical axis leaves a large residual (the turn's
+    # small flow picks up the uniform flow of the tilt's share) while the features still go
+    # where predicted, ~40 deg off (measured on tray_combined).
+    WRONG_DIRECTION_COSINE = 0.5
 
     def _wrong_direction(self, prev: _Frame, e: np.ndarray, q: np.ndarray) -> bool | None:
         """Is the feature motion seen since frame ``prev`` explained by the local image
@@ -394,9 +408,13 @@ class Servo:
         eq. 11). Believed depths may be off, so the seen motion is fitted as
         ``a * translational + rotational`` by least squares, with ``a`` (believed over true
         depth) held to a plausible range: with the right hand-eye, optical frame and joint order
-        the fit is close; a mirrored or turned hand-eye leaves a large residual. Opposed several judgements in a row (wrong_direction_frames) -> True. A plain cosine
-        between predicted and seen motion cannot tell these apart near poses where the two
-        flows nearly cancel: 40 % short depths flipped its sign at tray_offset's start.
+        the fit is close; a mirrored or turned hand-eye leaves a large residual. A judgement is
+        opposed when the residual is large *and* the seen motion points more than 60 deg away
+        from the predicted one; several opposed judgements in a row (wrong_direction_frames)
+        -> True. Neither test alone will do: the cosine flips sign with 40 % short depths where
+        the two flows nearly cancel (tray_offset's start), the residual grows large under a
+        5 deg hand-eye tilt during a turn (tray_combined). Where the flows cancel, a mirrored
+        hand-eye also looks like a depth error; the start nod (:meth:`_probe`) breaks that tie.
         """
         s = self.settings
         moved_by_translation, moved_by_rotation = prev.J_move @ (q - prev.q)
@@ -412,10 +430,46 @@ class Servo:
         ratio = float(np.clip(float(moved_by_translation @ left) / tt if tt > 0 else 1.0,
                               *self.WRONG_DIRECTION_DEPTH_RATIO))
         residual = np.linalg.norm(left - ratio * moved_by_translation)
-        opposed = residual > self.WRONG_DIRECTION_RESIDUAL * np.linalg.norm(seen)
+        seen_norm = np.linalg.norm(seen)
+        cosine = float(seen @ predicted) / max(seen_norm * np.linalg.norm(predicted), 1e-300)
+        opposed = (residual > self.WRONG_DIRECTION_RESIDUAL * seen_norm
+                   and cosine < self.WRONG_DIRECTION_COSINE)
         run = self._run
         run.wrong_frames = run.wrong_frames + 1 if opposed else 0
         return run.wrong_frames >= s.wrong_direction_frames
+
+    def _probe(self, camera_jac: np.ndarray, t: float) -> np.ndarray | None:
+        """Joint velocity of the start nod at image time t, None outside it. For
+        direction_probe_s from the run's first image the law waits and the camera turns about
+        its own centre, about the image diagonal, by one sine period of angular speed: it
+        tilts by up to direction_probe_px / focal length and comes back (net rotation zero, as
+        far as the limiter lets the command follow; the servo removes any rest).
+
+        Why: where the features' translational and rotational flows nearly cancel (a lateral
+        offset seen through a narrow field of view), a mirrored hand-eye moves the features in a
+        way a plausible depth error would also explain, and the servo's own motion cannot tell
+        the two apart for many frames. The flow of a rotation about the camera centre does not
+        depend on depth (Chaumette & Hutchinson 2006, Part I, eq. 11, the columns of w), so
+        the nod makes the first judgements of :meth:`_wrong_direction` decisive: seen against
+        predicted, a turned or mirrored optical frame, hand-eye or joint order shows up as a
+        reversed or turned flow within the nod. About the diagonal, a half turn about the
+        optical axis, x or y all reverse or turn the seen flow. The law waits because its own
+        early motion can swamp the nod's flow (a turn about the optical axis, which a half
+        turn of the hand-eye about that axis leaves correct). 0 px disables the nod.
+        """
+        s, run = self.settings, self._run
+        if s.direction_probe_px <= 0 or s.direction_probe_s <= 0:
+            return None
+        if run.probe_t0 is None:
+            run.probe_t0 = t
+        tau = t - run.probe_t0
+        if not 0.0 <= tau < s.direction_probe_s:
+            return None
+        # peak angle = peak speed * period / pi; shift (px) = focal (px per unit) * angle
+        peak = math.pi * s.direction_probe_px / (s.direction_probe_s * self.reference.px_per_unit)
+        w = peak * math.sin(2.0 * math.pi * tau / s.direction_probe_s) / math.sqrt(2.0)
+        twist = np.array([0.0, 0.0, 0.0, w, w, 0.0])
+        return np.linalg.pinv(camera_jac, rcond=1e-3) @ twist
 
     def _envelope_used(self, q: np.ndarray) -> float:
         """Fraction of the motion envelope used: the larger of tool translation and rotation
@@ -436,8 +490,10 @@ class Servo:
             return False
         if t - run.follow_t0 < s.follow_window_s:
             return False
+        # net travel against net commanded travel: a motion that comes back (the start nod,
+        # a reversal) asks for little net travel and is not judged
         measured = float(np.linalg.norm(q - run.follow_q0))
-        commanded = run.follow_cmd
+        commanded = float(np.linalg.norm(run.follow_cmd))
         run.follow_q0, run.follow_t0, run.follow_cmd = q.copy(), t, 0.0
         # judged only when the command asked for real travel (5 mrad over the window)
         return commanded > 5e-3 and measured < s.follow_min_ratio * commanded
@@ -482,7 +538,7 @@ class Servo:
             if "position_envelope" in report.acted and self.state != "braking":
                 self.halt("joint_limit_envelope", t)
             if self._run is not None:
-                self._run.follow_cmd += float(np.linalg.norm(cmd)) * dt
+                self._run.follow_cmd = self._run.follow_cmd + cmd * dt
             if self.state == "braking" and np.max(np.abs(cmd)) <= 1e-9:
                 cmd = np.zeros(self.arm.n)
                 self._end("halted", self.reason, t)
