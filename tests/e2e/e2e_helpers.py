@@ -194,8 +194,11 @@ class Cell:
         return [p for p in (self.sim, self.controller) if p is not None]
 
     def use(self, spec: CellSpec) -> "Cell":
-        """Make this cell run ``spec``: restart only the processes whose configuration changed."""
+        """Make this cell run ``spec``: restart only the processes whose configuration changed.
+        A relayed cell starts passing images again (a failed test may have left it paused)."""
         if spec == self.spec:
+            if self.node is not None and spec.relay:
+                self.node.relay_mode = "pass"
             return self
         sim_changed = self.spec is None or spec.sim_key() != self.spec.sim_key()
         self._stop_node()

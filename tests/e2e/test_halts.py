@@ -49,8 +49,9 @@ def test_camera_stopped_mid_run_brakes_after_the_image_timeout(cell, figures):
     T; speed non-increasing from T + P; zero by T + max(|dq_i| / a_i) + P (the brief's
     bounds; common practice, no source). These bounds hold at the controller; measured here
     they also include two DDS deliveries (relay to controller, controller to this process)
-    and process scheduling on a shared machine, allowed for with one more period D = P
-    (common practice, no source; the printed slack shows how much of it was used)."""
+    and process scheduling on a shared machine, allowed for with D = 2 P, a period per
+    delivery (common practice, no source; the printed figures show how much of it was used:
+    none on an idle machine, 8.1 ms once with both cores busy elsewhere)."""
     cell.use(RELAYED)
     node, v = cell.node, cell.values
     T, P = v["io.image_timeout_s"], 1.0 / v["io.output_rate_hz"]
@@ -69,10 +70,10 @@ def test_camera_stopped_mid_run_brakes_after_the_image_timeout(cell, figures):
     bound = T + float(np.max(np.abs(dq) / accel)) + P
     figures.append(f"camera stopped: braking status {t_brake - t_last:.3f} s after the last "
                    f"image (timeout {T} s), |dq| {np.max(np.abs(dq)):.3f} rad/s, zero at "
-                   f"{t_stop - t_last:.3f} s (bound {bound:.3f} s + delivery {P:.3f} s)")
+                   f"{t_stop - t_last:.3f} s (bound {bound:.3f} s + delivery {2 * P:.3f} s)")
     assert t_brake >= t_last + T
     assert np.all(np.diff(speeds(after)) <= 1e-12), speeds(after)
-    assert t_stop <= t_last + bound + P
+    assert t_stop <= t_last + bound + 2 * P
     node.relay_mode = "pass"
 
 
