@@ -10,6 +10,10 @@ translational and rotational flows of the servo's own first motion nearly cancel
 start), that mirrored motion also fits a plausible depth error. The nod, a small turn about the
 camera centre and back before the law moves, has depth-free flow and breaks the tie.
 
+A command sent in another joint order than the servo's chain is the other way to move wrongly;
+the image check cannot see it (it predicts from the measured joints), the follow check does (its
+test is at the end).
+
 Bounds are ours (common practice, no source): 'within a few frames' is taken as <= 10 camera
 frames from the first image to the halt decision; the nod's peak feature shift within 30 % of
 control.direction_probe_px (the drives' lag and the limiter round the sine off).
@@ -25,7 +29,8 @@ from scipy.spatial.transform import Rotation
 
 from vservo_node import servo as servo_module
 from vservo_node.control.frames import transform
-from vservo_node.episode import episode_params, run_scenario_episode
+from vservo_node.episode import PointCase, episode_params, run_point_case, run_scenario_episode
+from vservo_node.servo import Servo
 from vservo_node.sim import load_scenario
 
 FEW_FRAMES = 10
@@ -129,3 +134,28 @@ def test_tilted_hand_eye_and_depth_errors_do_not_trip_the_check(depth):
     r = run_scenario_episode(sc)
     assert r.converged, r.reason
     assert r.pose_error_mm < 2.0 and r.pose_error_deg < 0.5
+
+
+@pytest.mark.parametrize("robot, order", [
+    ("vs7_bench", (0, 1, 2, 3, 5, 4, 6)),    # two wrist joints swapped in the command
+    ("vs7_bench", (6, 5, 4, 3, 2, 1, 0)),    # the whole command reversed
+    ("vs6_bench", (1, 0, 2, 3, 4, 5)),       # the first two swapped
+])
+def test_command_in_the_wrong_joint_order_halts_wrong_direction(monkeypatch, robot, order):
+    """The command reaches the drives in another joint order than the servo's chain (a wrong
+    io.command_joint_order). The image check cannot see it (it predicts the features from the
+    *measured* joints, which moved as they were told); the follow check compares the joints'
+    net travel with the commanded net travel over each follow window and finds it pointing
+    elsewhere. Without that comparison these runs ended 'diverging' after 1.1-6 s (measured).
+    Bound (ours, no source): wrong_direction within 2 s, i.e. within the first follow windows
+    that ask for real travel."""
+    original = Servo.step
+
+    def step(self, obs, q, t, dt):
+        cmd, status = original(self, obs, q, t, dt)
+        return cmd[list(order)], status
+
+    monkeypatch.setattr(Servo, "step", step)
+    r = run_point_case(PointCase(robot=robot, translation_m=(0.08, 0.0, 0.05), tilt_deg=10.0))
+    assert r.reason == "wrong_direction", r.reason
+    assert r.time_s < 2.0

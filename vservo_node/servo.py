@@ -42,7 +42,8 @@ HALT_REASONS = {
     "joint_limit_envelope": "a joint reached its braking envelope",
     "motion_envelope": "the tool left its motion envelope",
     "too_close": "a feature came closer than the minimum camera distance",
-    "wrong_direction": "features move against the motion the image Jacobian predicts",
+    "wrong_direction": "features move against the motion the image Jacobian predicts, or the "
+                       "joints against their command",
     "not_following": "the arm is not following its command",
     "diverging": "the image error grows",
     "initial_error_too_large": "the first image error is above control.max_initial_error_px",
@@ -349,8 +350,9 @@ class Servo:
         if self._outside_envelope(q):
             self.halt("motion_envelope", t)
             return
-        if self._not_following(q, t):
-            self.halt("not_following", t)
+        following = self._following(q, t)
+        if following:
+            self.halt(following, t)
             return
         dq, info = self.law.compute(J_img, e, rms_px, q, t,
                                     null_space_enabled=self.state == "servoing")
@@ -483,20 +485,36 @@ class Servo:
     def _outside_envelope(self, q: np.ndarray) -> bool:
         return self._envelope_used(q) > 1.0
 
-    def _not_following(self, q: np.ndarray, t: float) -> bool:
+    # The joints count as moving against their command when their net travel over a follow
+    # window points more than 60 deg away from the commanded net travel (our threshold, common
+    # practice, no source; the drives' lag shifts the two in time, not in direction, unless the
+    # motion turns within the window).
+    FOLLOW_COSINE = 0.5
+
+    def _following(self, q: np.ndarray, t: float) -> str:
+        """Judge the arm against its command over each follow window: "" (fine or not judged),
+        "not_following" (it travelled less than follow_min_ratio of the commanded net travel)
+        or "wrong_direction" (it travelled the wrong way: the command's joint order or signs
+        do not match the joints it moves). Judged only when the command asked for real net
+        travel (5 mrad over the window); a motion that comes back (the start nod, a reversal)
+        asks for little net travel and is not judged."""
         s, run = self.settings, self._run
         if run.follow_q0 is None:
             run.follow_q0, run.follow_t0, run.follow_cmd = q.copy(), t, 0.0
-            return False
+            return ""
         if t - run.follow_t0 < s.follow_window_s:
-            return False
-        # net travel against net commanded travel: a motion that comes back (the start nod,
-        # a reversal) asks for little net travel and is not judged
-        measured = float(np.linalg.norm(q - run.follow_q0))
-        commanded = float(np.linalg.norm(run.follow_cmd))
+            return ""
+        moved = q - run.follow_q0
+        asked = np.asarray(run.follow_cmd, dtype=float)
         run.follow_q0, run.follow_t0, run.follow_cmd = q.copy(), t, 0.0
-        # judged only when the command asked for real travel (5 mrad over the window)
-        return commanded > 5e-3 and measured < s.follow_min_ratio * commanded
+        measured, commanded = float(np.linalg.norm(moved)), float(np.linalg.norm(asked))
+        if commanded <= 5e-3:
+            return ""
+        if measured < s.follow_min_ratio * commanded:
+            return "not_following"
+        if float(moved @ asked) < self.FOLLOW_COSINE * measured * commanded:
+            return "wrong_direction"
+        return ""
 
     def _margins(self, info, uv: np.ndarray, q: np.ndarray) -> float:
         """Speed scale in [margin_floor, 1]: the smallest of the singularity, joint-limit,
