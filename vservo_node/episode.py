@@ -399,12 +399,12 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
         t = k * period
         while frame * frame_period <= t + 1e-12:
             t_frame = frame * frame_period
-            cell.step(t_frame - cell.t)
+            cell.step(max(t_frame - cell.t, 0.0))   # frame and tick times may differ by rounding
             obs, _ = perception.process(bgr(cell.render(t_frame)), t_frame)
             servo.observe(_depth_scaled(obs, sc.depth_scale_belief) or no_features,
                           cell.joint_state(t_frame)[0], t_frame)
             frame += 1
-        cell.step(t - cell.t)
+        cell.step(max(t - cell.t, 0.0))
         cmd, status = servo.command(cell.joint_state(t)[0], t, period)
         cell.command_velocity(cmd, t)
         meter.add(*cell.arm.true_state(t), status)

@@ -110,6 +110,9 @@ SCHEMA: tuple[Param, ...] = (
        unit="px", low=0.0, high=50.0),
     _p("control.direction_probe_s", float, 0.3, "duration of the start nod", unit="s",
        low=0.05, high=5.0),
+    _p("control.predict_between_frames", bool, False, "at each output tick, re-run the law on "
+       "the features predicted from the joint travel since the last image (first order); helps "
+       "slow cameras"),
     _p("control.loop_delay_s", float, 0.03, "expected image-to-command delay (checked against "
        "the gain)", unit="s", low=0.0, high=2.0),
     # --- limits --------------------------------------------------------------------------------

@@ -130,6 +130,7 @@ class ServoSettings:
     wrong_direction_min_px: float = 2.0   # judge once the predicted motion (RMS) reaches this
     direction_probe_px: float = 6.0       # start nod: peak feature shift (0 = no nod)
     direction_probe_s: float = 0.3        # start nod: duration (one sine period)
+    predict_between_frames: bool = False  # re-run the law at each output tick on predicted features
     diverge_factor: float = 1.5           # halt when rms > factor * best + diverge_margin_px
     diverge_margin_px: float = 20.0
     follow_window_s: float = 0.5          # judge following over this window
@@ -163,6 +164,8 @@ class ServoSettings:
             max_initial_error_px=get("control.max_initial_error_px", cls.max_initial_error_px),
             direction_probe_px=get("control.direction_probe_px", cls.direction_probe_px),
             direction_probe_s=get("control.direction_probe_s", cls.direction_probe_s),
+            predict_between_frames=get("control.predict_between_frames",
+                                       cls.predict_between_frames),
             depth_source="observed" if depth in ("target_model", "depth_image") else depth,
             constant_depth_m=get("depth.constant_m", cls.constant_depth_m),
             max_translation_m=get("limits.max_translation_m", cls.max_translation_m),
@@ -203,6 +206,7 @@ class _Frame:
     e: np.ndarray
     J_move: np.ndarray   # (2, 2N, n): feature motion from camera translation, from rotation
     rms_px: float
+    depths: tuple | None = None   # (z_now, xy_ref, z_ref) for the law between frames
 
 
 class Servo:
@@ -327,7 +331,7 @@ class Servo:
             return
         if prev is None or prev.keys != keys:
             self.law.restart(e, t)
-        frame = _Frame(t, q, keys, e, J_move, rms_px)
+        frame = _Frame(t, q, keys, e, J_move, rms_px, (z_now, xy_ref, z_ref))
         anchor = run.direction_anchor
         if anchor is None or anchor.keys != keys:
             run.direction_anchor = frame
@@ -546,6 +550,8 @@ class Servo:
         """Limited joint command for this output period and the status record."""
         q = np.asarray(q, dtype=float)
         if self.state in ("servoing", "settling", "braking"):
+            if self.state != "braking" and self.settings.predict_between_frames:
+                self._predict(q, t)
             desired = self._desired if self.state != "braking" else np.zeros(self.arm.n)
             scale = min(self.external_scale, self._margin_scale)
             J_tool_pt, J_cam_pt, J_ang = self._cartesian_jacobians(q)
@@ -571,6 +577,40 @@ class Servo:
         if obs is not None:
             self.observe(obs, q, t)
         return self.command(q, t, dt)
+
+    def _predict(self, q: np.ndarray, t: float) -> None:
+        """Between frames, re-run the law on the features predicted for the joints now: the
+        last frame's error plus the local image Jacobian times the joint travel since that
+        frame (first order: s(q) ~ s(q_f) + J (q - q_f), Chaumette & Hutchinson 2006, Part I,
+        eq. 3-4 with v_c = J_cam dq), and the image Jacobian rebuilt at the predicted features
+        and the joints now (depths kept from the frame). The supervisor still judges only
+        real frames; the nod, when running, is left alone."""
+        frame, run = self._frame, self._run
+        if frame is None or frame.depths is None or run is None or self._nodding(t):
+            return
+        dq_since = q - frame.q
+        if not np.all(np.isfinite(dq_since)):
+            return
+        e = frame.e + (frame.J_move[0] + frame.J_move[1]) @ dq_since
+        norm_e = float(np.linalg.norm(frame.e))
+        rms_px = frame.rms_px * float(np.linalg.norm(e)) / norm_e if norm_e > 0 else 0.0
+        z_now, xy_ref, z_ref = frame.depths
+        xy_now = xy_ref + e.reshape(-1, 2)
+        camera_jac = self.arm.camera_from_tool() @ self.arm.jacobian_tool(q)
+        J_img = interaction_matrix(self.settings.interaction_estimate, xy_now, z_now, xy_ref,
+                                   z_ref) @ camera_jac
+        dq, info = self.law.compute(J_img, e, rms_px, q, t,
+                                    null_space_enabled=self.state == "servoing")
+        if info.fault:
+            return
+        self._law_info = info
+        self._desired = dq
+
+    def _nodding(self, t: float) -> bool:
+        s, run = self.settings, self._run
+        if s.direction_probe_px <= 0 or s.direction_probe_s <= 0:
+            return False
+        return run.probe_t0 is None or t - run.probe_t0 < s.direction_probe_s
 
     def _cartesian_jacobians(self, q):
         J_tool_pt = self.arm.point_jacobian_base(q, "tool", self.tool_point)
