@@ -503,7 +503,9 @@ class Servo:
         travel (5 mrad over the window); a motion that comes back (the start nod, a reversal)
         asks for little net travel and is not judged."""
         s, run = self.settings, self._run
-        if run.follow_q0 is None:
+        if run.follow_q0 is None or self._nodding(t):
+            # the first window opens after the start nod: the nod's net travel is ~0 by design,
+            # so its direction is noise (and stale joints mid-nod would look like a wrong one)
             run.follow_q0, run.follow_t0, run.follow_cmd = q.copy(), t, 0.0
             return ""
         if t - run.follow_t0 < s.follow_window_s:
