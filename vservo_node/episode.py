@@ -329,8 +329,13 @@ def _depth_scaled(view_or_obs, scale: float):
     return dataclasses.replace(view_or_obs, depth=np.asarray(view_or_obs.depth) * scale)
 
 
+SENSING = ("image", "projected")
+
+
 def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
-                         record: bool = False, *, focal_scale: float = 1.0) -> EpisodeResult:
+                         record: bool = False, *, focal_scale: float = 1.0,
+                         sensing: str = "image", noise_px: float | None = None
+                         ) -> EpisodeResult:
     """One run of a scenario through the node's code path, without ROS or clocks.
 
     ``scenario``: a shipped name, a path or a loaded ``sim.Scenario``. ``overrides``: controller
@@ -340,6 +345,10 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     ``seed``: mixed with the scenario's seed for the image and joint-state noise.
     ``focal_scale``: the controller believes focal lengths ``focal_scale`` times the true ones
     (the scenario format has no entry for it).
+    ``sensing``: ``image`` (render each frame and perceive it, as below) or ``projected``
+    (``sim.projected.ProjectedSensor``: the features projected through the true camera with
+    ``noise_px`` of pixel noise, default by target kind; no images, no detection; teaching
+    likewise), much faster, for sweeps that study the servo rather than the detectors.
 
     The SimCell drives the true arm (true hand-eye, the scenario's lag, latency and joint
     noise) and renders the true camera. The controller side is built as the node builds it:
@@ -365,6 +374,8 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     from vservo_node.vision import image_io
     from vservo_node.vision.reference import load_reference, save_reference
 
+    if sensing not in SENSING:
+        raise ValueError(f"sensing must be one of {SENSING}, got {sensing!r}")
     sc = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
     sc = _reseeded(sc, seed)
     values = episode_params(overrides, camera_rate_hz=sc.fps)
@@ -377,15 +388,28 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     def bgr(rgb):  # the node reads the sim's rgb8 images this way
         return image_io.to_bgr_or_mono(rgb, "rgb8", width, height)
 
-    # teach: capture, save and load the reference, then rebuild perception with it (the node's
-    # capture_reference service followed by its reference.file update)
-    taught_image = bgr(cell.render_at(sc.q_taught, TEACH_TIME_S))
-    reference = Perception(sc.target, camera, None, depth).capture(taught_image, "episode")
-    with tempfile.TemporaryDirectory() as folder:
-        reference = load_reference(save_reference(reference, f"{folder}/episode.yaml"),
-                                   sc.target)
-    perception = Perception(sc.target, camera, reference, depth)
-    servo.set_reference(_depth_scaled(taught_view(reference, camera), sc.depth_scale_belief))
+    if sensing == "projected":
+        from vservo_node.sim.projected import ProjectedSensor
+
+        sensor = ProjectedSensor(sc, camera, depth.source, noise_px)
+        servo.set_reference(_depth_scaled(sensor.taught_view(sc.q_taught, TEACH_TIME_S),
+                                          sc.depth_scale_belief))
+
+        def observe(t_frame):
+            return sensor.observe(cell.arm.true_state(t_frame)[0], t_frame)
+    else:
+        # teach: capture, save and load the reference, then rebuild perception with it (the
+        # node's capture_reference service followed by its reference.file update)
+        taught_image = bgr(cell.render_at(sc.q_taught, TEACH_TIME_S))
+        reference = Perception(sc.target, camera, None, depth).capture(taught_image, "episode")
+        with tempfile.TemporaryDirectory() as folder:
+            reference = load_reference(save_reference(reference, f"{folder}/episode.yaml"),
+                                       sc.target)
+        perception = Perception(sc.target, camera, reference, depth)
+        servo.set_reference(_depth_scaled(taught_view(reference, camera), sc.depth_scale_belief))
+
+        def observe(t_frame):
+            return perception.process(bgr(cell.render(t_frame)), t_frame)[0]
 
     meter = _Meter(cell.arm_model, cell.taught_camera_pose, sc.q_start,
                    values["robot.tool_point"], record)
@@ -400,7 +424,7 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
         while frame * frame_period <= t + 1e-12:
             t_frame = frame * frame_period
             cell.step(max(t_frame - cell.t, 0.0))   # frame and tick times may differ by rounding
-            obs, _ = perception.process(bgr(cell.render(t_frame)), t_frame)
+            obs = observe(t_frame)
             servo.observe(_depth_scaled(obs, sc.depth_scale_belief) or no_features,
                           cell.joint_state(t_frame)[0], t_frame)
             frame += 1

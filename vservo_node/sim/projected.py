@@ -1,0 +1,133 @@
+"""Projected sensing: the target's feature points projected through the true camera, with pixel
+noise, in place of rendering an image and perceiving it.
+
+For sweeps of many episodes where what is studied is the servo (start offsets, calibration
+errors, gains) rather than the detectors. What it keeps of the image path: the true camera model
+with its lens distortion, the image border, painted-over features and image-space occluders (the
+same visibility as the cell's ground truth, ``SimCell._detectable``), normalization through the
+camera model the controller *believes*, PnP depths through that model (``depth.source``
+target_model, as ``Perception`` does; taught depths from PnP at the taught pose, as
+``capture_reference`` does), feature keys of the target's own. What it drops: detection and
+matching (their noise is replaced by Gaussian pixel noise of ``noise_px`` per axis; their
+failures, mismatches and the dots' perspective centroid bias do not occur), the photometric
+effects, and the cost. ``depth.source`` depth_image gives the true depths.
+
+Noise defaults: the frame-to-frame jitter of the perceived pixels on the shipped scenarios'
+images, camera still (benchmarks/sensing_jitter.py; measured at the taught pose / half-way to
+the start): dots 0.006 / 0.007 px, fiducial corners 0.0025 / 0.003 px, the poster's servo
+points 0.008 / 0.19 px (a homography fit to ORB matches, looser away from the taught view). The
+defaults take the half-way figures for dots and markers and 0.01 px for the poster: near the
+goal, where its jitter decides whether the run settles within tolerance (0.05 px kept
+tray_poster_offset above its 0.1 px tolerance); its looser points far from the goal are not
+modelled. The detectors' static bias against the true projection (tests/vision) is not
+modelled: the reference is taught through the same detector, so it cancels at the goal.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from vservo_node.control.frames import invert
+from vservo_node.servo import Observation, TaughtView
+from vservo_node.sim import seeding
+from vservo_node.sim.truth import _unambiguous, project_points
+from vservo_node.vision import depth as depth_mod
+from vservo_node.vision.matching import MIN_MATCHED
+from vservo_node.vision.reference import BadReferenceError
+
+NOISE_PX = {"dots": 0.007, "markers": 0.003, "textured": 0.01}
+# the projected points' own random stream (not the images': nothing is rendered here)
+PROJECTED_NOISE = 3
+
+
+def default_noise_px(target) -> float:
+    """The default pixel noise (px, per axis) of ``target``'s kind (module doc)."""
+    return NOISE_PX.get(target.kind, 0.1)
+
+
+class ProjectedSensor:
+    """Observations of ``scenario``'s target for the true arm at joints q.
+
+    Args:
+        scenario: a loaded ``sim.Scenario`` (true camera, target, its pose, hidden features,
+            occluders, true hand-eye, seed).
+        camera: the camera model the controller believes (normalization, PnP).
+        depth_source: ``depth.source`` (``vservo_node.params.DEPTH_SOURCES``).
+        noise_px: Gaussian pixel noise per axis (px); None: :func:`default_noise_px`.
+    """
+
+    def __init__(self, scenario, camera, depth_source: str = "taught",
+                 noise_px: float | None = None):
+        self.scenario = scenario
+        self.camera = camera
+        self.depth_source = depth_source
+        target = scenario.target
+        self.noise_px = default_noise_px(target) if noise_px is None else float(noise_px)
+        if not self.noise_px >= 0:
+            raise ValueError(f"noise_px must be >= 0, got {noise_px!r}")
+        if not target.has_geometry:
+            raise ValueError(f"projected sensing needs the positions of {target.name!r}'s "
+                             "features on the board; use image sensing")
+        self.keys = tuple(target.keys())
+        self.points_target = target.model_points()
+        self.arm = scenario.arm_model("true")
+        self.true_camera = scenario.camera
+        hidden = set(scenario.hidden)
+        self.shown = np.array([(k[0], k[1]) not in hidden for k in self.keys])
+        self.occluders = tuple(scenario.photometric.occluders)
+
+    def pixels(self, q, t: float):
+        """(uv (N, 2) true distorted pixels, Z (N,) m, visible (N,) bool) at joints q, time t."""
+        T_camera_target = invert(self.arm.camera_pose(q)) @ self.scenario.T_base_target
+        points = self.points_target @ T_camera_target[:3, :3].T + T_camera_target[:3, 3]
+        uv = project_points(self.true_camera, points)
+        w, h = self.true_camera.width, self.true_camera.height
+        with np.errstate(invalid="ignore"):
+            visible = ((uv[:, 0] >= -0.5) & (uv[:, 0] <= w - 0.5)
+                       & (uv[:, 1] >= -0.5) & (uv[:, 1] <= h - 0.5))
+        visible[visible] = _unambiguous(self.true_camera, points[visible], uv[visible])
+        visible &= self.shown
+        for occ in self.occluders:
+            if occ.active(t):
+                x0, y0, x1, y1 = occ.rect_px
+                u, v = uv[:, 0], uv[:, 1]
+                with np.errstate(invalid="ignore"):
+                    visible &= ~((u >= x0 - 0.5) & (u < x1 - 0.5) & (v >= y0 - 0.5)
+                                 & (v < y1 - 0.5))
+        return uv, points[:, 2], visible
+
+    def _noisy(self, uv, t: float):
+        if self.noise_px == 0 or len(uv) == 0:
+            return uv
+        rng = np.random.default_rng(seeding.seed_material(self.scenario.seed, PROJECTED_NOISE, t))
+        return uv + rng.normal(0.0, self.noise_px, uv.shape)
+
+    def observe(self, q, t: float) -> Observation | None:
+        """The Observation at true joints q and time t (s); None when no feature is visible."""
+        uv, z, visible = self.pixels(q, t)
+        if not visible.any():
+            return None
+        keys = tuple(k for k, v in zip(self.keys, visible) if v)
+        seen = self._noisy(uv[visible], t)
+        depth = None
+        if self.depth_source == "target_model" and len(keys) >= MIN_MATCHED:
+            try:
+                depth = depth_mod.from_pnp(seen, self.points_target[visible], self.camera).z
+            except ValueError:
+                depth = None
+        elif self.depth_source == "depth_image":
+            depth = z[visible].copy()
+        return Observation(keys, seen, self.camera.pixels_to_normalized(seen), depth)
+
+    def taught_view(self, q_taught, t: float) -> TaughtView:
+        """The TaughtView at the taught joints, exposed at time t: as ``capture_reference``
+        teaches (PnP depths: the target has geometry). BadReferenceError when fewer than
+        MIN_MATCHED features are visible."""
+        uv, _, visible = self.pixels(q_taught, t)
+        if visible.sum() < MIN_MATCHED:
+            raise BadReferenceError(f"cannot teach: {int(visible.sum())} of {len(self.keys)} "
+                                    f"features visible at the taught pose")
+        seen = self._noisy(uv[visible], t)
+        depths = depth_mod.from_pnp(seen, self.points_target[visible], self.camera).z
+        return TaughtView(tuple(k for k, v in zip(self.keys, visible) if v),
+                          self.camera.pixels_to_normalized(seen), seen, depths,
+                          image_size=(self.camera.width, self.camera.height))
