@@ -383,7 +383,10 @@ def _limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point
     _check_shapes(arrays, n, dt, speed_scale)
     previous = arrays["previous"]
 
-    bad = [k for k, v in arrays.items() if not np.isfinite(v).all()]
+    # one test over every value (shapes are checked); which input was bad only on a fault
+    bad = []
+    if not np.isfinite(np.concatenate([v.ravel() for v in arrays.values()])).all():
+        bad = [k for k, v in arrays.items() if not np.isfinite(v).all()]
     if not np.isfinite(speed_scale):
         bad.append("speed_scale")
     if bad:
