@@ -108,6 +108,8 @@ class _Meter:
         self.axis = T_base_camera_goal[:3, 2]
         self.depth0 = float(self.axis @ arm_true.camera_pose(q0)[:3, 3])
         self.finite = np.isfinite(arm_true.lower)
+        self.lower_finite = arm_true.lower[self.finite]
+        self.upper_finite = arm_true.upper[self.finite]
         self.peaks = dict(joint=0.0, tool=0.0, camera=0.0, angular=0.0)
         self.margin = math.inf
         self.depth_dev = 0.0
@@ -119,13 +121,15 @@ class _Meter:
         """Account for the true state (q rad, dq rad/s) and the servo's status at this tick."""
         arm, p = self.arm, self.peaks
         p["joint"] = max(p["joint"], float(np.max(np.abs(dq) / arm.velocity_limits)))
-        p["tool"] = max(p["tool"], float(np.linalg.norm(
-            arm.point_jacobian_base(q, "tool", self.tool_point) @ dq)))
-        p["camera"] = max(p["camera"], float(np.linalg.norm(
-            arm.point_jacobian_base(q, "camera", np.zeros(3)) @ dq)))
-        p["angular"] = max(p["angular"], float(np.linalg.norm(arm.jacobian_base(q)[3:] @ dq)))
-        self.margin = min(self.margin, float(np.min(np.concatenate([
-            (q - arm.lower)[self.finite], (arm.upper - q)[self.finite]]))))
+        # one kinematics update for the three speeds (the values of point_jacobian_base and
+        # jacobian_base); |v| as np.linalg.norm computes it for a vector, sqrt(v . v)
+        J_tool, J_camera, J_angular = arm.cartesian_jacobians(q, self.tool_point)
+        for name, J in (("tool", J_tool), ("camera", J_camera), ("angular", J_angular)):
+            v = J @ dq
+            p[name] = max(p[name], math.sqrt(v @ v))
+        q_finite = q[self.finite]
+        self.margin = min(self.margin, float((q_finite - self.lower_finite).min()),
+                          float((self.upper_finite - q_finite).min()))
         T_cam = arm.camera_pose(q)
         self.depth_dev = max(self.depth_dev, abs(float(self.axis @ T_cam[:3, 3]) - self.depth0))
         if math.isnan(self.initial_rms) and not math.isnan(status["rms_px"]):

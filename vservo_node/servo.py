@@ -615,10 +615,8 @@ class Servo:
         return run.probe_t0 is None or t - run.probe_t0 < s.direction_probe_s
 
     def _cartesian_jacobians(self, q):
-        J_tool_pt = self.arm.point_jacobian_base(q, "tool", self.tool_point)
-        J_cam_pt = self.arm.point_jacobian_base(q, "camera", np.zeros(3))
-        J_ang = self.arm.jacobian_base(q)[3:]
-        return J_tool_pt, J_cam_pt, J_ang
+        """Tool point, camera origin (linear) and tool angular Jacobians, 3 x n each."""
+        return self.arm.cartesian_jacobians(q, self.tool_point)
 
     def _end(self, state: str, reason: str, t: float) -> None:
         self.state, self.reason = state, reason

@@ -141,6 +141,36 @@ def test_point_and_frame_jacobians_match_finite_differences():
                                    _fd_base(lambda qq, f=frame: arm.fk(qq, f), q), atol=FD_TOL)
 
 
+def test_cartesian_jacobians_match_finite_differences_and_the_single_queries():
+    # The limiter's three Jacobians from one call: the tool point's and the camera origin's
+    # linear velocity (v_p = v + w x r, Siciliano et al. 2009, sec. 3.1.1) and the tool's
+    # angular velocity, checked by central differences of FK (points; the angular part via
+    # _fd_base) and against the single queries they replace (equal values, same expressions).
+    rng = np.random.default_rng(13)
+    tool_point = np.array([0.01, -0.02, 0.12])
+    for arm in (_vs6(), _vs7(), _mobile()):
+        arm.set_hand_eye(pin.SE3(pin.rpy.rpyToMatrix(-0.4, 0.2, 0.9),
+                                 np.array([0.04, 0.02, -0.06])).homogeneous)
+        for _ in range(3):
+            q = _random_q(arm, rng)
+            J_tool, J_camera, J_angular = arm.cartesian_jacobians(q, tool_point)
+            for J, frame, offset in ((J_tool, "tool", tool_point), (J_camera, "camera", None)):
+                def point(qq, frame=frame, offset=offset):
+                    T = arm.fk(qq, frame)
+                    return T[:3, 3] if offset is None else (T @ np.append(offset, 1.0))[:3]
+
+                fd = np.column_stack([(point(q + H * e) - point(q - H * e)) / (2 * H)
+                                      for e in np.eye(arm.n)])
+                np.testing.assert_allclose(J, fd, atol=FD_TOL)
+            np.testing.assert_allclose(J_angular, _fd_base(arm.fk, q)[3:], atol=FD_TOL)
+            np.testing.assert_array_equal(J_tool, arm.point_jacobian_base(q, "tool", tool_point))
+            np.testing.assert_array_equal(J_camera,
+                                          arm.point_jacobian_base(q, "camera", np.zeros(3)))
+            np.testing.assert_array_equal(J_angular, arm.jacobian_base(q)[3:])
+    with pytest.raises(ValueError, match="tool_point must have shape"):
+        arm.cartesian_jacobians(q, [0.0, 0.1])
+
+
 # ------------------------------------------------------------------ closed form
 def test_planar_three_link_closed_form():
     # Siciliano et al. 2009, sec. 3.1 (Jacobian computation, three-link planar arm example),

@@ -20,7 +20,7 @@ import numpy as np
 import pinocchio as pin
 import yaml
 
-from vservo_node.control.frames import invert, rotation_block, skew, twist_transform
+from vservo_node.control.frames import invert, rotation_block, twist_transform
 from vservo_node.paths import shipped
 
 # pinocchio joint model short names, by the kind of URDF joint they come from.
@@ -123,6 +123,9 @@ class ArmModel:
         idx_q = np.array([j.idx_q for j in joints])
         self._q_scalar = (np.flatnonzero(~self.continuous), idx_q[~self.continuous])
         self._q_cos = (np.flatnonzero(self.continuous), idx_q[self.continuous])
+        # no continuous joint and q laid out as in pinocchio: the configuration is q itself
+        self._q_identity = (not self.continuous.any() and self._model.nq == self.n
+                            and np.array_equal(idx_q, np.arange(self.n)))
         self.lower = np.full(self.n, -np.inf)
         self.upper = np.full(self.n, np.inf)
         self.lower[self._q_scalar[0]] = self._model.lowerPositionLimit[self._q_scalar[1]]
@@ -194,6 +197,8 @@ class ArmModel:
         return self._to_pinocchio(self._check_q(q))
 
     def _to_pinocchio(self, q: np.ndarray) -> np.ndarray:
+        if self._q_identity:
+            return q.copy()
         q_pin = np.empty(self._model.nq)
         q_pin[self._q_scalar[1]] = q[self._q_scalar[0]]
         angles = q[self._q_cos[0]]
@@ -235,7 +240,7 @@ class ArmModel:
         """Compute placements and joint Jacobians for ``q`` unless they are those of the last
         call (the cache holds a copy, so changing the caller's array in place is safe)."""
         q = self._check_q(q)
-        if self._q_last is not None and np.array_equal(q, self._q_last):
+        if self._q_last is not None and (q == self._q_last).all():  # same shape: checked
             return
         pin.computeJointJacobians(self._model, self._data, self._to_pinocchio(q))
         pin.updateFramePlacements(self._model, self._data)
@@ -285,7 +290,7 @@ class ArmModel:
             # Move the reference point from the parent frame's origin to the offset frame's:
             # v_p = v + w x r = v - [r]x w, with r in base axes.
             R_base_parent = self._T_base_root[:3, :3] @ self._data.oMf[fid].rotation
-            J[:3] -= skew(R_base_parent @ T_offset[:3, 3]) @ J[3:]
+            J[:3] -= _skew(R_base_parent @ T_offset[:3, 3]) @ J[3:]
         return J
 
     def jacobian_base(self, q) -> np.ndarray:
@@ -309,12 +314,42 @@ class ArmModel:
             raise ValueError(f"offset_in_frame must have shape (3,), got {offset.shape}")
         J = self.frame_jacobian_base(q, frame)
         r = self.fk(q, frame)[:3, :3] @ offset
-        return J[:3] - skew(r) @ J[3:]
+        return J[:3] - _skew(r) @ J[3:]
+
+    def cartesian_jacobians(self, q, tool_point) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Return the three 3 x n Jacobians the command limiter needs at ``q``, from one
+        kinematics update: the linear velocity of the tool point ``tool_point`` (3,), metres in
+        tool axes, the linear velocity of the camera origin (believed hand-eye), and the tool's
+        angular velocity, all in base axes. The same values as
+        ``point_jacobian_base(q, "tool", tool_point)``, ``point_jacobian_base(q, "camera",
+        zeros(3))`` and ``jacobian_base(q)[3:]``, computed by the same expressions."""
+        offset = np.asarray(tool_point, dtype=float)
+        if offset.shape != (3,):
+            raise ValueError(f"tool_point must have shape (3,), got {offset.shape}")
+        T_tool_camera = self._hand_eye()
+        self._update(q)
+        placement = self._data.oMf[self._tool_id]
+        J = self._R_base_root_block @ pin.getFrameJacobian(
+            self._model, self._data, self._tool_id, pin.ReferenceFrame.LOCAL_WORLD_ALIGNED)
+        R_base_tool = (self._T_base_root @ placement.homogeneous)[:3, :3]
+        tool_point_jac = J[:3] - _skew(R_base_tool @ offset) @ J[3:]
+        # the camera origin: v + w x r with r the hand-eye offset in base axes (as
+        # frame_jacobian_base moves the reference point; the zero offset adds nothing)
+        R_base_parent = self._T_base_root[:3, :3] @ placement.rotation
+        camera_point_jac = J[:3] - _skew(R_base_parent @ T_tool_camera[:3, 3]) @ J[3:]
+        return tool_point_jac, camera_point_jac, J[3:]
 
     def camera_from_tool(self) -> np.ndarray:
         """Return the 6x6 twist transform with ``V_camera = camera_from_tool() @ V_tool``
         (twists ``[v; w]`` in their own frames): ``twist_transform(invert(T_tool_camera))``."""
         return twist_transform(invert(self._hand_eye()))
+
+
+def _skew(v: np.ndarray) -> np.ndarray:
+    """``frames.skew`` for a 3-vector computed here (no argument checks: this runs several
+    times per output cycle)."""
+    x, y, z = v.tolist()
+    return np.array([[0.0, -z, y], [z, 0.0, -x], [-y, x, 0.0]])
 
 
 @dataclass(frozen=True)

@@ -76,7 +76,8 @@ errors and raise ValueError.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
+import math
+from dataclasses import dataclass, field
 from types import MappingProxyType
 from typing import Mapping
 
@@ -203,10 +204,14 @@ def stopping_speed(distance: np.ndarray, accel: np.ndarray, dt: float) -> np.nda
     step = accel * dt
     D = np.where(np.isfinite(distance), np.maximum(distance, 0.0), 0.0) / (step * dt)
     m = np.floor(0.5 * (np.sqrt(1.0 + 8.0 * D) - 1.0))
-    m = np.where((m + 1) * (m + 2) / 2 <= D, m + 1, m)      # guard round-off of the sqrt
-    m = np.where(m * (m + 1) / 2 > D, m - 1, m)
-    r = (D - m * (m + 1) / 2) / (m + 1)
-    return np.where(np.isposinf(distance), np.inf, (m + r) * step)
+    # m is a whole number, so m + 2 == (m + 1) + 1 exactly
+    m_1 = m + 1
+    m = np.where(m_1 * (m_1 + 1) / 2 <= D, m_1, m)           # guard round-off of the sqrt
+    m_1 = m + 1
+    m = np.where(m * m_1 / 2 > D, m - 1, m)
+    m_1 = m + 1
+    r = (D - m * m_1 / 2) / m_1
+    return np.where(distance == np.inf, np.inf, (m + r) * step)
 
 
 # --------------------------------------------------------------------------------------------
@@ -218,65 +223,108 @@ Fractions = dict[str, tuple[float, int | None]]
 
 def _box_fraction(base: np.ndarray, delta: np.ndarray, lo: np.ndarray, hi: np.ndarray
                   ) -> tuple[float, int | None]:
-    """Largest s >= 0 with lo <= base + s delta <= hi, and the joint that sets it."""
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):   # inf: no bound
-        s = np.where(delta > 0, (hi - base) / delta,
-                     np.where(delta < 0, (lo - base) / delta, np.inf))
-    s = np.maximum(s, 0.0)
-    joint = int(np.argmin(s))
-    return float(s[joint]), joint
+    """Largest s >= 0 with lo <= base + s delta <= hi, and the joint that sets it (the first
+    on ties; joint 0 when nothing bounds s, which is then inf)."""
+    # Plain floats: a handful of joints, and this runs several times per output cycle.
+    best, joint = np.inf, 0
+    for i, (b, d, low, high) in enumerate(zip(base.tolist(), delta.tolist(), lo.tolist(),
+                                              hi.tolist())):
+        if d > 0:
+            s = (high - b) / d
+        elif d < 0:
+            s = (low - b) / d
+        else:
+            continue                      # no bound from this joint
+        if s < 0.0:
+            s = 0.0
+        if s < best:
+            best, joint = s, i
+    return best, joint
 
 
-def _ball_fraction(A: np.ndarray, base: np.ndarray, delta: np.ndarray, radius: float) -> float:
-    """Largest s >= 0 with ||A (base + s delta)|| <= radius (larger root of a quadratic)."""
-    # Solved along the unit direction and scaled back: with a tiny delta (1e-160) the
-    # quadratic's coefficients underflow and the root came out as 0 instead of huge.
-    length = float(np.linalg.norm(delta))
+def _box_fraction_from_zero(delta: np.ndarray, lo: np.ndarray, hi: np.ndarray
+                            ) -> tuple[float, int | None]:
+    """:func:`_box_fraction` with base 0 (``hi - 0`` is ``hi`` exactly)."""
+    best, joint = np.inf, 0
+    for i, (d, low, high) in enumerate(zip(delta.tolist(), lo.tolist(), hi.tolist())):
+        if d > 0:
+            s = high / d
+        elif d < 0:
+            s = low / d
+        else:
+            continue
+        if s < 0.0:
+            s = 0.0
+        if s < best:
+            best, joint = s, i
+    return best, joint
+
+
+def _ball_fractions_from_zero(A_stacked: np.ndarray, radii: tuple[float, ...],
+                              delta: np.ndarray) -> list[float]:
+    """Largest s >= 0 with ||A_k s delta|| <= r_k, for several balls at once: ``A_stacked``
+    holds their 3 x n matrices one under the other, ``radii`` the r_k. (The base of every step
+    is 0 here: each static set contains 0 and the limiter scales commands from it.)"""
+    # Solved along the unit direction u and scaled back: with a tiny delta (1e-160) the
+    # quadratic's coefficients underflow and the root came out as 0 instead of huge. From 0,
+    # the larger root of |A u|^2 s^2 = r^2 is sqrt(aa r^2) / aa with aa = |A u|^2.
+    length = math.sqrt(delta @ delta)      # np.linalg.norm of a vector computes it so
     if length == 0.0:
-        return np.inf
-    a, b = A @ (delta / length), A @ base
-    aa, ab, slack = a @ a, a @ b, radius * radius - b @ b
-    if aa == 0.0:
-        return np.inf
-    slack = max(slack, 0.0)
-    root = np.sqrt(ab * ab + aa * slack)
-    # Two algebraically equal forms of the same root; each avoids cancellation on its side.
-    along_unit = float((root - ab) / aa) if ab <= 0 else float(slack / (ab + root))
-    with np.errstate(over="ignore"):
-        return along_unit / length
+        return [np.inf] * len(radii)
+    a = A_stacked @ (delta / length)
+    out = []
+    for i, radius in enumerate(radii):
+        ai = a[3 * i:3 * i + 3]
+        aa = float(ai @ ai)
+        if aa == 0.0:
+            out.append(np.inf)
+            continue
+        root = math.sqrt(aa * max(radius * radius, 0.0))
+        out.append((root / aa) / length)   # Python floats: overflow gives inf, no warning
+    return out
+
+
+#: The Cartesian limits, in the order of _StaticSet.radii and the rows of _StaticSet.A.
+BALLS = ("tool_linear_speed", "camera_linear_speed", "angular_speed")
 
 
 @dataclass(frozen=True)
 class _StaticSet:
-    """The static (previous-independent) constraints for one call."""
+    """The static (previous-independent) constraints for one call: joint velocity and position
+    envelope boxes, and the Cartesian balls ||A_k x|| <= radius_k (A: the three 3 x n
+    Jacobians of :data:`BALLS` stacked)."""
 
     lo_velocity: np.ndarray
     hi_velocity: np.ndarray
     lo_envelope: np.ndarray
     hi_envelope: np.ndarray
-    balls: tuple[tuple[str, np.ndarray, float], ...]
+    A: np.ndarray
+    radii: tuple[float, float, float]
 
-    def fractions(self, base: np.ndarray, delta: np.ndarray) -> Fractions:
-        """Per limit, the largest step fraction from base along delta (base assumed inside)."""
-        out = {"position_envelope": _box_fraction(base, delta, self.lo_envelope, self.hi_envelope),
-               "joint_velocity": _box_fraction(base, delta, self.lo_velocity, self.hi_velocity)}
-        for name, A, radius in self.balls:
-            out[name] = (_ball_fraction(A, base, delta, radius), None)
+    def fractions(self, x: np.ndarray) -> Fractions:
+        """Per limit, the largest fraction of ``x`` (a step from 0) it allows."""
+        out = {"position_envelope": _box_fraction_from_zero(x, self.lo_envelope,
+                                                            self.hi_envelope),
+               "joint_velocity": _box_fraction_from_zero(x, self.lo_velocity, self.hi_velocity)}
+        for name, fraction in zip(BALLS, _ball_fractions_from_zero(self.A, self.radii, x)):
+            out[name] = (fraction, None)
         return out
 
 
 def _static_set(q, dt, limits: LimitSet, tool_point_jac, camera_point_jac, angular_jac,
                 speed_scale) -> _StaticSet:
+    n = limits.n
     vmax = limits.velocity_max * speed_scale
+    # both envelopes in one call (element-wise, so the same values as two calls)
+    envelope = stopping_speed(
+        np.concatenate([q - limits.lower - POSITION_ROUNDOFF,
+                        limits.upper - q - POSITION_ROUNDOFF]),
+        np.concatenate([limits.acceleration, limits.acceleration]), dt)
     return _StaticSet(
-        lo_velocity=-vmax, hi_velocity=vmax,
-        lo_envelope=-stopping_speed(q - limits.lower - POSITION_ROUNDOFF, limits.acceleration,
-                                    dt),
-        hi_envelope=stopping_speed(limits.upper - q - POSITION_ROUNDOFF, limits.acceleration,
-                                   dt),
-        balls=(("tool_linear_speed", tool_point_jac, limits.tool_linear_max * speed_scale),
-               ("camera_linear_speed", camera_point_jac, limits.camera_linear_max * speed_scale),
-               ("angular_speed", angular_jac, limits.angular_max * speed_scale)))
+        lo_velocity=-vmax, hi_velocity=vmax, lo_envelope=-envelope[:n], hi_envelope=envelope[n:],
+        A=np.concatenate([tool_point_jac, camera_point_jac, angular_jac]),
+        radii=(limits.tool_linear_max * speed_scale, limits.camera_linear_max * speed_scale,
+               limits.angular_max * speed_scale))
 
 
 def _decelerated(previous: np.ndarray, accel: np.ndarray, dt: float) -> float:
@@ -319,6 +367,15 @@ def limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point_
     ``speed_scale`` in [0, 1] scales every speed limit (not accelerations); 0 brings the arm to
     rest at the deceleration limit.
     """
+    command, report = _limit_command(desired, previous, q, dt, limits, tool_point_jac,
+                                      camera_point_jac, angular_jac, speed_scale)
+    return command, LimitReport(**report)
+
+
+def _limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point_jac,
+                   camera_point_jac, angular_jac, speed_scale: float
+                   ) -> tuple[np.ndarray, dict]:
+    """:func:`limit_command` with the report as a dict of LimitReport fields (no counts)."""
     n, accel = limits.n, limits.acceleration
     arrays = {"desired": desired, "previous": previous, "q": q, "tool_point_jac": tool_point_jac,
               "camera_point_jac": camera_point_jac, "angular_jac": angular_jac}
@@ -326,23 +383,25 @@ def limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point_
     _check_shapes(arrays, n, dt, speed_scale)
     previous = arrays["previous"]
 
-    bad = [k for k, v in arrays.items() if not np.all(np.isfinite(v))]
+    # one test over every value (shapes are checked); which input was bad only on a fault
+    bad = []
+    if not np.isfinite(np.concatenate([v.ravel() for v in arrays.values()])).all():
+        bad = [k for k, v in arrays.items() if not np.isfinite(v).all()]
     if not np.isfinite(speed_scale):
         bad.append("speed_scale")
     if bad:
         what = "non-finite " + ", ".join(bad)
         if not np.all(np.isfinite(previous)):
-            return np.zeros(n), LimitReport("fault", np.zeros(n), 0.0, 0.0, (), None, None,
-                                            what + "; previous command unknown, output zero")
+            return np.zeros(n), _fields("fault", np.zeros(n), 0.0, 0.0, (), None, None,
+                                        what + "; previous command unknown, output zero")
         c = _decelerated(previous, accel, dt)
-        return c * previous, LimitReport("fault", c * previous, c, 0.0, (), None, None,
-                                         what + "; ramping down at the deceleration limit")
+        return c * previous, _fields("fault", c * previous, c, 0.0, (), None, None,
+                                     what + "; ramping down at the deceleration limit")
 
     static = _static_set(arrays["q"], dt, limits, arrays["tool_point_jac"],
                          arrays["camera_point_jac"], arrays["angular_jac"], speed_scale)
-    zero = np.zeros(n)
     accel_lo, accel_hi = previous - accel * dt, previous + accel * dt
-    along_previous = static.fractions(zero, previous)
+    along_previous = static.fractions(previous)
     if _feasible(along_previous):
         mode, base, c, recovered = "track", previous, 1.0, {}
     else:
@@ -353,16 +412,16 @@ def limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point_
         if c > c_feasible:
             base = np.clip(np.clip(base, static.lo_envelope, static.hi_envelope),
                            accel_lo, accel_hi)
-            if not _feasible(static.fractions(zero, base)):
+            if not _feasible(static.fractions(base)):
                 name, joint, _ = _winner(recovered)
-                return base, LimitReport(mode, base, c, 0.0, _acted(recovered), name, joint)
+                return base, _fields(mode, base, c, 0.0, _acted(recovered), name, joint)
 
     # Scale the desired command into the speed limits first (direction kept: every static set
     # contains 0), then step toward that target. Stepping toward an infeasible desired command
     # would freeze the output on the boundary of a binding Cartesian limit (s -> 0 there) while
     # the desired direction keeps turning: the arm would go on moving the old way.
     desired = arrays["desired"]
-    scaling = static.fractions(zero, desired)
+    scaling = static.fractions(desired)
     name_d, joint_d, c_d = _winner(scaling)
     target = desired * min(c_d, 1.0)
     delta = target - base
@@ -377,8 +436,14 @@ def limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point_
     elif s >= 1.0:
         name, joint = None, None
     s = min(s, 1.0)
-    return base + s * delta, LimitReport(mode, base, c, s, acted, name, joint,
-                                         target_scale=min(c_d, 1.0))
+    return base + s * delta, _fields(mode, base, c, s, acted, name, joint,
+                                     target_scale=min(c_d, 1.0))
+
+
+def _fields(mode, base, base_scale, scale, acted, winner, winner_joint, fault=None,
+            target_scale=1.0) -> dict:
+    return dict(mode=mode, base=base, base_scale=base_scale, scale=scale, acted=acted,
+                winner=winner, winner_joint=winner_joint, fault=fault, target_scale=target_scale)
 
 
 def _check_shapes(arrays: dict[str, np.ndarray], n: int, dt: float, speed_scale: float) -> None:
@@ -409,14 +474,14 @@ class Limiter:
 
     def step(self, desired, q, dt: float, tool_point_jac, camera_point_jac, angular_jac,
              speed_scale: float = 1.0) -> tuple[np.ndarray, LimitReport]:
-        command, report = limit_command(desired, self.previous, q, dt, self.limits,
-                                        tool_point_jac, camera_point_jac, angular_jac,
-                                        speed_scale)
-        for name in report.acted:
+        command, report = _limit_command(desired, self.previous, q, dt, self.limits,
+                                         tool_point_jac, camera_point_jac, angular_jac,
+                                         speed_scale)
+        for name in report["acted"]:
             self.counts[name] += 1
-        if report.mode == "recover":
+        if report["mode"] == "recover":
             self.counts["previous_infeasible"] += 1
-        elif report.mode == "fault":
+        elif report["mode"] == "fault":
             self.counts["fault"] += 1
         self.previous = command
-        return command, replace(report, counts=MappingProxyType(dict(self.counts)))
+        return command, LimitReport(**report, counts=MappingProxyType(dict(self.counts)))

@@ -148,7 +148,8 @@ class SimArm:
     def command_velocity(self, dq, t: float) -> None:
         """Command joint velocities ``dq`` (n,) given at time ``t``; clamped to the URDF
         velocity limits when applied."""
-        self._queue(t, "velocity", np.clip(self._vector(dq, "dq"), -self.vmax, self.vmax))
+        v = self._vector(dq, "dq")  # finite: the clamp as minimum(maximum()) is np.clip's value
+        self._queue(t, "velocity", np.minimum(np.maximum(v, -self.vmax), self.vmax))
 
     def command_position(self, q, t: float, duration: float | None = None) -> None:
         """Command a move to joint positions ``q`` (n,) given at time ``t``, arriving at rest
@@ -161,28 +162,81 @@ class SimArm:
 
     # ------------------------------------------------------------------ stepping
     def step(self, dt: float) -> None:
-        """Advance the simulation by ``dt`` >= 0 seconds."""
+        """Advance the simulation by ``dt`` >= 0 seconds.
+
+        Consecutive cycles with one plan (the same velocity reference, the same brake ramp, or
+        holding still: no command taking effect and no timeout in between) run as one stretch:
+        the lag's and the brake's solutions are exact for any duration, so the state at the
+        stretch's end is evaluated once from its start, the same motion as cycle by cycle up to
+        float rounding. A stretch of lag cycles that could reach a position limit runs cycle by
+        cycle, as a joint stopped there starts the next cycle at rest."""
         if not dt >= 0:
             raise ValueError(f"dt must be >= 0, got {dt!r}")
         t_end = self.t + dt
         h = self.dynamics.cycle_s
         while self._cycle_time(self._cycle_index + 1) <= t_end + 1e-12:
-            self._run_cycle(self._cycle_time(self._cycle_index), h)
-            self._cycle_index += 1
+            k = self._cycle_index
+            t0 = self._cycle_time(k)
+            self._apply_commands(t0)
+            cycle = self._plan_cycle(t0)
+            m = self._stretch(k, t_end + 1e-12)
+            if m > 1 and cycle.kind == "lag" and not self._lag_stays_inside(cycle, m * h):
+                m = 1
+            last = k + m - 1
+            self._history.append(cycle)
+            self._history_t.append(t0)
+            cutoff = self._cycle_time(last) - self.dynamics.history_s
+            while len(self._history_t) > 1 and self._history_t[1] <= cutoff:
+                self._history.popleft()
+                self._history_t.popleft()
+            self._q, self._dq = self._evaluate(cycle, self._cycle_time(last) + h)
+            self._cycle_index = last + 1
         self.t = t_end
+
+    def _stretch(self, k: int, t_limit: float) -> int:
+        """How many cycles from cycle ``k`` (already applied and planned) share its plan and
+        end by ``t_limit``: the later ones apply no command, start no brake and end no
+        brake (the tests of :meth:`_apply_commands` and :meth:`_plan_cycle`)."""
+        mode = self._mode
+        if mode == "position":
+            return 1
+        pending = self._pending[0][0] if self._pending else math.inf
+        if mode == "velocity":
+            until = self._last_velocity_time + self.dynamics.command_timeout_s
+        elif mode == "brake":
+            until = self._brake[0] + self._brake[3]
+        else:
+            until = math.inf
+        m = 1
+        while self._cycle_time(k + m + 1) <= t_limit:
+            t_j = self._cycle_time(k + m)
+            if pending <= t_j + 1e-12 or t_j >= until - 1e-12:
+                break
+            m += 1
+        return m
+
+    def _lag_stays_inside(self, cycle: "_Cycle", duration: float) -> bool:
+        """Whether a lag stretch of ``duration`` seconds keeps every joint strictly inside its
+        limits: the velocity moves between dq0 and r, so no joint travels further than
+        max(|dq0|, |r|) * duration."""
+        reach = np.maximum(np.abs(cycle.dq0), np.abs(cycle.r)) * duration
+        return bool((cycle.q0 - reach > self.lower).all()
+                    and (cycle.q0 + reach < self.upper).all())
 
     def _cycle_time(self, k: int) -> float:
         return self._t_origin + k * self.dynamics.cycle_s
 
-    def _run_cycle(self, t0, h):
-        self._apply_commands(t0)
-        cycle = self._plan_cycle(t0)
-        self._history.append(cycle)
-        self._history_t.append(t0)
-        while self._history_t[0] < t0 - self.dynamics.history_s:
-            self._history.popleft()
-            self._history_t.popleft()
-        self._q, self._dq = self._evaluate(cycle, t0 + h)
+    def _history_floor(self) -> float:
+        """Start of the oldest cycle kept: the cycles starting ``history_s`` or less before the
+        last one run."""
+        h = self.dynamics.cycle_s
+        cutoff = self._cycle_time(self._cycle_index - 1) - self.dynamics.history_s
+        j = max(0, math.ceil((cutoff - self._t_origin) / h))
+        while j > 0 and self._cycle_time(j - 1) >= cutoff:
+            j -= 1
+        while self._cycle_time(j) < cutoff:
+            j += 1
+        return self._cycle_time(j)
 
     def _apply_commands(self, t0):
         while self._pending and self._pending[0][0] <= t0 + 1e-12:
@@ -262,6 +316,8 @@ class SimArm:
                 dq = cycle.r + (cycle.dq0 - cycle.r) * decay
             else:
                 q, dq = cycle.q0 + cycle.r * dt, cycle.r.copy()
+        if (q > self.lower).all() and (q < self.upper).all():
+            return q, dq  # inside every limit: nothing to clip or stop
         stopped = ((q <= self.lower) & (dq <= 0)) | ((q >= self.upper) & (dq >= 0))
         return np.clip(q, self.lower, self.upper), np.where(stopped, 0.0, dq)
 
@@ -277,7 +333,7 @@ class SimArm:
         if t >= current_start - 1e-12:
             return self._preview(current_start, t)
         i = bisect.bisect_right(self._history_t, t) - 1
-        if i < 0:
+        if i < 0 or t < self._history_floor():
             raise ValueError(f"state asked for t={t:.6f} s, older than the kept history "
                              f"({self.dynamics.history_s} s)")
         return self._evaluate(self._history[i], t)
@@ -301,7 +357,8 @@ class SimArm:
         if d.joint_noise_std > 0 or d.velocity_noise_std > 0:
             rng = np.random.default_rng(seeding.seed_material(d.seed, seeding.JOINT_NOISE, t))
             q = q + rng.normal(0.0, d.joint_noise_std, self.n)
-            dq = dq + rng.normal(0.0, d.velocity_noise_std, self.n)
+            if d.velocity_noise_std > 0:  # (a draw with std 0 adds zeros)
+                dq = dq + rng.normal(0.0, d.velocity_noise_std, self.n)
         return q, dq
 
     @property
