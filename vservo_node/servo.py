@@ -351,7 +351,8 @@ class Servo:
         if t - run.t_start > s.max_run_s:
             self.halt("run_timeout", t)
             return
-        if self._outside_envelope(q):
+        envelope_used = self._envelope_used(q)
+        if envelope_used > 1.0:
             self.halt("motion_envelope", t)
             return
         following = self._following(q, t)
@@ -370,7 +371,7 @@ class Servo:
         else:                  # the law waits for the nod; its soft start begins after it
             self.law.restart(e, t)
             self._desired = nod
-        self._margin_scale = self._margins(info, uv_now, q)
+        self._margin_scale = self._margins(info, uv_now, q, envelope_used)
         # arrival: below tolerance for the dwell time with the joints (nearly) stopped
         if rms_px <= s.tolerance_px:
             if run.below_since is None:
@@ -522,7 +523,7 @@ class Servo:
             return "wrong_direction"
         return ""
 
-    def _margins(self, info, uv: np.ndarray, q: np.ndarray) -> float:
+    def _margins(self, info, uv: np.ndarray, q: np.ndarray, envelope_used: float) -> float:
         """Speed scale in [margin_floor, 1]: the smallest of the singularity, joint-limit,
         image-border and motion-envelope margins (our design; common practice, no source).
         Each slows the motion smoothly as its hazard nears; hard halts act beyond."""
@@ -544,7 +545,7 @@ class Servo:
             room_px = np.min(np.minimum.reduce([uv[:, 0], uv[:, 1], width - 1 - uv[:, 0],
                                                 height - 1 - uv[:, 1]]))
             scales.append(ramp(float(room_px), s.border_margin_px))
-        scales.append(ramp(1.0 - self._envelope_used(q), s.envelope_zone))
+        scales.append(ramp(1.0 - envelope_used, s.envelope_zone))
         return min(scales)
 
     # --- the output cycle ------------------------------------------------------------------

@@ -1,9 +1,12 @@
 """frames.py against pinocchio, transforms3d, SciPy and finite differences of poses."""
 
+import math
+
 import numpy as np
 import pinocchio as pin
 import pytest
 from scipy.linalg import expm
+from scipy.spatial.transform import Rotation
 from transforms3d import axangles, euler, quaternions
 
 from vservo_node.control import frames
@@ -148,3 +151,15 @@ def test_pose_error_in_metres_and_radians():
 def test_bad_inputs_are_refused_with_a_reason(call, message):
     with pytest.raises(ValueError, match=message):
         call()
+
+
+@pytest.mark.parametrize("angle", [1e-9, 1e-4, 0.5, 2.0, math.pi - 1e-6, math.pi])
+def test_pose_error_angle_over_the_whole_range(angle):
+    # Source: SciPy Rotation.magnitude (reference library), near zero, mid-range and near pi.
+    axis = np.array([0.3, -0.5, 0.8]) / np.linalg.norm([0.3, -0.5, 0.8])
+    R = Rotation.from_rotvec(axis * angle).as_matrix()
+    T1 = _pose()
+    T2 = T1 @ frames.transform(R, np.zeros(3))
+    _, rotation = frames.pose_error(T1, T2)
+    expected = Rotation.from_matrix(T1[:3, :3].T @ T2[:3, :3]).magnitude()
+    assert rotation == pytest.approx(expected, abs=1e-9)

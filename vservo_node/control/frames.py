@@ -7,6 +7,8 @@ Conventions (DEVELOPERS.md):
 - Twists are ``[v; w]``: linear velocity (m/s) first, then angular velocity (rad/s).
 """
 
+import math
+
 import numpy as np
 from scipy.spatial.transform import Rotation
 
@@ -120,6 +122,11 @@ def pose_error(T1, T2):
     """Return ``(translation_m, rotation_rad)`` between two poses given in the same frame:
     the distance between their origins and the angle of the relative rotation ``R1^T R2``."""
     T1, T2 = _homogeneous(T1, "T1"), _homogeneous(T2, "T2")
-    translation = float(np.linalg.norm(T2[:3, 3] - T1[:3, 3]))
-    rotation = float(Rotation.from_matrix(T1[:3, :3].T @ T2[:3, :3]).magnitude())
+    d = T2[:3, 3] - T1[:3, 3]
+    translation = math.sqrt(float(d @ d))
+    R = T1[:3, :3].T @ T2[:3, :3]
+    # angle = atan2(sin, cos) with 2 sin = |vee(R - R^T)| and 2 cos = trace - 1 (Rodrigues;
+    # Lynch & Park 2017, Modern Robotics, sec. 3.2.3.3): accurate near 0 and near pi alike
+    s = math.hypot(R[2, 1] - R[1, 2], R[0, 2] - R[2, 0], R[1, 0] - R[0, 1])
+    rotation = math.atan2(0.5 * s, 0.5 * (R[0, 0] + R[1, 1] + R[2, 2] - 1.0))
     return translation, rotation

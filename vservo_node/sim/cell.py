@@ -69,10 +69,18 @@ class SimCell:
             dynamics = dataclasses.replace(dynamics, command_timeout_s=float(command_timeout))
         q0 = scenario.q_start if q0 is None else q0
         self.arm = SimArm(self.arm_model, q0, dynamics, t0=t0)
-        self.camera = SimCamera(scenario.camera, target_texture(scenario.target, scenario.hidden),
-                                scenario.photometric, seed=scenario.seed)
+        self._camera = None   # built on first use: projected sensing never renders
         hidden = set(scenario.hidden)
         self._hidden_mask = np.array([(k[0], k[1]) in hidden for k in scenario.target.keys()])
+
+    @property
+    def camera(self) -> SimCamera:
+        """The simulated camera (texture, table, noise tiles), built on first use."""
+        if self._camera is None:
+            sc = self.scenario
+            self._camera = SimCamera(sc.camera, target_texture(sc.target, sc.hidden),
+                                     sc.photometric, seed=sc.seed)
+        return self._camera
 
     @property
     def t(self) -> float:
@@ -124,7 +132,7 @@ class SimCell:
     def _detectable(self, truth: Truth) -> np.ndarray:
         """In view, not painted over and not under an occluder active at ``truth.t``."""
         visible = truth.in_view & ~self._hidden_mask
-        for occluder in self.camera.photometric.occluders:
+        for occluder in self.scenario.photometric.occluders:
             if occluder.active(truth.t):
                 x0, y0, x1, y1 = occluder.rect_px
                 u, v = truth.uv[:, 0], truth.uv[:, 1]

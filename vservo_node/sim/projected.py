@@ -44,6 +44,22 @@ def default_noise_px(target) -> float:
     return NOISE_PX.get(target.kind, 0.1)
 
 
+def _monotonic_radius(camera) -> float:
+    """Normalized radius below which the camera's radial distortion map r -> r * radial(r)
+    still increases (90 % of the first turning point, sampled to r = 3); 0 for models other
+    than plumb_bob / rational_polynomial (every visible point is then checked)."""
+    if camera.effective_distortion not in ("plumb_bob", "rational_polynomial"):
+        return 0.0
+    D = camera.D
+    k1, k2, _, _, k3 = D[:5]
+    k4, k5, k6 = D[5:8] if D.size >= 8 else (0.0, 0.0, 0.0)
+    r = np.linspace(0.0, 3.0, 30001)
+    r2 = r * r
+    mapped = r * ((1 + r2 * (k1 + r2 * (k2 + r2 * k3))) / (1 + r2 * (k4 + r2 * (k5 + r2 * k6))))
+    falling = np.flatnonzero(np.diff(mapped) <= 0)
+    return 0.9 * (r[falling[0]] if falling.size else 3.0)
+
+
 class ProjectedSensor:
     """Observations of ``scenario``'s target for the true arm at joints q.
 
@@ -71,6 +87,7 @@ class ProjectedSensor:
         self.points_target = target.model_points()
         self.arm = scenario.arm_model("true")
         self.true_camera = scenario.camera
+        self._r_safe = _monotonic_radius(self.true_camera)
         hidden = set(scenario.hidden)
         self.shown = np.array([(k[0], k[1]) not in hidden for k in self.keys])
         self.occluders = tuple(scenario.photometric.occluders)
@@ -84,7 +101,14 @@ class ProjectedSensor:
         with np.errstate(invalid="ignore"):
             visible = ((uv[:, 0] >= -0.5) & (uv[:, 0] <= w - 0.5)
                        & (uv[:, 1] >= -0.5) & (uv[:, 1] <= h - 0.5))
-        visible[visible] = _unambiguous(self.true_camera, points[visible], uv[visible])
+        # a pixel the lens polynomial reached by folding back is not an image of the point
+        # (sim.truth._unambiguous); rays inside the radius where the radial map still grows
+        # cannot fold, so only the others need the (iterative) check
+        with np.errstate(invalid="ignore", divide="ignore"):
+            r2 = (points[:, 0] ** 2 + points[:, 1] ** 2) / points[:, 2] ** 2
+        check = visible & ~(r2 < self._r_safe ** 2)
+        if check.any():
+            visible[check] = _unambiguous(self.true_camera, points[check], uv[check])
         visible &= self.shown
         for occ in self.occluders:
             if occ.active(t):
