@@ -6,6 +6,7 @@ Episodes run at half resolution (320x240) to keep the file at a few seconds per 
 """
 from __future__ import annotations
 
+import dataclasses
 import io
 import json
 import sys
@@ -38,6 +39,8 @@ def _sweep(**entries):
     ({"map": ["calib.depth"]}, "one or two of the swept axes"),
     ({"mode": "sobol"}, "expected one of ('grid', 'random')"),
     ({"success": {"pose_mm": 1.0, "pose_cm": 2.0}}, "unknown key(s) ['pose_cm']"),
+    ({"sensing": "rendered"}, "expected one of ('image', 'projected')"),
+    ({"axes": {"sensing.noise_px": {"values": [-0.1]}}}, "must be >= 0 px"),
 ])
 def test_a_bad_sweep_file_is_refused_naming_the_entry(entries, complaint):
     with pytest.raises(SweepError) as info:
@@ -120,6 +123,23 @@ def test_the_quick_sweep_gives_the_same_table_in_one_process_and_in_two(tmp_path
     # (Chaumette & Hutchinson 2006, Part I: local asymptotic stability; Hutchinson, Hager &
     # Corke 1996: robust to calibration error): every episode succeeds
     assert one.summary["success_rate"] == 1.0, one.summary["failure_reasons"]
+
+
+def test_a_projected_sweep_repeats_itself_and_agrees_with_the_image_sweep(tmp_path):
+    """Projected sensing (sim/projected.py) on the quick sweep: the same table twice, every
+    episode a success as with images, and each episode's time to converge within 5 % of the
+    image run's (ours, no source; measured: equal on all four)."""
+    quick = load_sweep("quick")
+    projected = dataclasses.replace(quick, sensing="projected")
+    first = run_sweep(projected, workers=1, progress=False)
+    again = run_sweep(projected, workers=2, progress=False)
+    assert (write_table(first.rows, tmp_path / "a.csv").read_bytes()
+            == write_table(again.rows, tmp_path / "b.csv").read_bytes())
+    assert first.summary["sensing"] == "projected"
+    assert first.summary["success_rate"] == 1.0, first.summary["failure_reasons"]
+    image = run_sweep(quick, workers=2, progress=False)
+    for p, i in zip(first.rows, image.rows):
+        assert p["time_s"] == pytest.approx(i["time_s"], rel=0.05), (p, i)
 
 
 def test_success_falls_off_as_the_start_rotation_grows(tmp_path):
