@@ -162,8 +162,10 @@ class Perception:
         t1 = time.perf_counter()
         if self._ref_points is None:  # the same until the reference or the camera changes
             self._ref_points = self.reference.points_for(self.camera, detection.image_size)
+        # the match's quality figures are not reported here, so the diagnostic homography
+        # fit of dot matches is skipped (fit_rms; other kinds match by key and ignore it)
         match = self.reference.match(detection, self.camera, predicted=self._predicted,
-                                     ref_points=self._ref_points)
+                                     ref_points=self._ref_points, fit_rms=False)
         info.timings["match"] = 1e3 * (time.perf_counter() - t1)
         info.n_matched, info.missing, info.outliers = len(match), match.missing, match.rejected
         info.uv, info.uv_ref = match.points, match.ref_points

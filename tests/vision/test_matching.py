@@ -182,3 +182,19 @@ def test_ransac_shortcut_only_claims_what_opencv_does():
             clean_claimed += says
     # random layouts include skinny 4-point samples that extrapolate noise far: not all fire
     assert claimed > 100 and clean_claimed > 0.25 * clean, (claimed, clean_claimed, clean)
+
+
+def test_skipping_the_diagnostic_fit_changes_nothing_else():
+    """fit_rms=False (what Perception asks for) leaves homography_rms_px NaN and every
+    correspondence, rejection and other figure as with the fit."""
+    pts = view(LAYOUT) + np.random.default_rng(4).normal(0.0, 0.2, (5, 2))
+    det = detection(np.vstack([pts, [[100, 420]]]), np.vstack([COLOURS, COLOURS[2]]))
+    with_fit = match_dots(det, KEYS, srgb_to_lab(COLOURS), LAYOUT)
+    without = match_dots(det, KEYS, srgb_to_lab(COLOURS), LAYOUT, fit_rms=False)
+    assert np.isfinite(with_fit.quality["homography_rms_px"])
+    assert np.isnan(without.quality["homography_rms_px"])
+    assert (without.keys, without.rejected, without.missing) == (
+        with_fit.keys, with_fit.rejected, with_fit.missing)
+    assert np.array_equal(without.points, with_fit.points)
+    assert np.array_equal(without.quality["delta_e"], with_fit.quality["delta_e"])
+    assert without.quality["gain"] == with_fit.quality["gain"]
