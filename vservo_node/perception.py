@@ -122,6 +122,7 @@ class Perception:
         self.reference: Reference | None = None
         self._tracker = Tracker(make_detector(target))
         self._predicted: dict | None = None
+        self._ref_points: np.ndarray | None = None  # reference.points_for(camera), per stream
         self.set_reference(reference)
 
     def set_reference(self, reference: Reference | None) -> None:
@@ -141,6 +142,7 @@ class Perception:
         """Forget the previous frames (next frame: full-frame search, no predictions)."""
         self._tracker.reset()
         self._predicted = None
+        self._ref_points = None
 
     def process(self, image: np.ndarray, t: float, depth_image: DepthImage | None = None
                 ) -> tuple[Observation | None, PerceptionInfo]:
@@ -158,7 +160,12 @@ class Perception:
             info.reason = "no reference loaded"
             return None, self._finish(info, t0)
         t1 = time.perf_counter()
-        match = self.reference.match(detection, self.camera, predicted=self._predicted)
+        if self._ref_points is None:  # the same until the reference or the camera changes
+            self._ref_points = self.reference.points_for(self.camera, detection.image_size)
+        # the match's quality figures are not reported here, so the diagnostic homography
+        # fit of dot matches is skipped (fit_rms; other kinds match by key and ignore it)
+        match = self.reference.match(detection, self.camera, predicted=self._predicted,
+                                     ref_points=self._ref_points, fit_rms=False)
         info.timings["match"] = 1e3 * (time.perf_counter() - t1)
         info.n_matched, info.missing, info.outliers = len(match), match.missing, match.rejected
         info.uv, info.uv_ref = match.points, match.ref_points

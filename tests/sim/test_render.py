@@ -271,3 +271,19 @@ def test_plane_through_the_camera_is_drawn_only_in_front(lens):
     assert on_board.sum() > 100 and off_board.sum() > 100
     assert drawn[on_board].all()
     assert not drawn[off_board].any()
+
+
+@pytest.mark.parametrize("model, d", [
+    ("plumb_bob", [-0.11, 0.06, 0.0004, -0.0003, 0.01]),
+    ("rational_polynomial", [-0.2, 0.1, 0.001, -0.002, 0.01, 0.05, -0.02, 0.01])])
+def test_outline_projection_matches_opencv(model, d):
+    """The renderer's numpy lens projection (target outlines) agrees with cv2.projectPoints,
+    the independent reference, to float rounding."""
+    from vservo_node.sim.render import _lens_projector
+
+    K = np.array([[615.0, 0.0, 321.5], [0.0, 612.0, 238.0], [0.0, 0.0, 1.0]])
+    camera = CameraModel(640, 480, K, d, model)
+    xy = np.random.default_rng(2).uniform(-0.6, 0.6, (500, 2))
+    ref, _ = cv2.projectPoints(np.column_stack([xy, np.ones(len(xy))]), np.zeros(3),
+                               np.zeros(3), K, np.asarray(d, float))
+    assert np.abs(_lens_projector(camera)(xy) - ref.reshape(-1, 2)).max() < 1e-9

@@ -147,3 +147,54 @@ def test_match_by_key():
     assert m.keys == ref_keys[:4] and m.missing == [("tag", 9, 0)]
     assert m.rejected == [(("tag", 5, 0), "not in reference")]
     assert np.allclose(m.points, det.points[[4, 3, 2, 1]])
+
+
+def test_ransac_shortcut_only_claims_what_opencv_does():
+    """``ransac_keeps_all`` may skip cv2.findHomography(RANSAC) only when OpenCV (the
+    independent reference) keeps every point: random views of 5 and 6 points with noise from
+    tiny to past the threshold, shifted outliers, swapped pairs and near-collinear triples.
+    It must also fire for clean views, or it saves nothing."""
+    import cv2
+
+    from vservo_node.vision.matching import ransac_keeps_all
+
+    rng = np.random.default_rng(5)
+    claimed = clean_claimed = clean = 0
+    for i in range(3000):
+        n = 5 + i % 2
+        src = rng.uniform(0.0, 640.0, (n, 2))
+        if i % 7 == 0:  # a point almost on the line through two others
+            src[2] = src[0] + (src[1] - src[0]) * rng.uniform() + rng.normal(0.0, 1e-3, 2)
+        H = np.eye(3) + rng.normal(0.0, 0.1, (3, 3)) * [[1, 1, 50], [1, 1, 50], [1e-3, 1e-3, 0]]
+        sigma = (0.05, 0.3, 1.0, 3.0)[i % 4]
+        dst = view(src, H) + rng.normal(0.0, sigma, src.shape)
+        if i % 3 == 0:
+            dst[0] += rng.uniform(0.0, 10.0, 2)
+        if i % 11 == 0:
+            dst[[0, 1]] = dst[[1, 0]]
+        says = ransac_keeps_all(src, dst, 3.0)
+        _, mask = cv2.findHomography(src, dst, cv2.RANSAC, 3.0)
+        if says:
+            claimed += 1
+            assert mask is not None and mask.all(), (i, src, dst, mask)
+        if sigma == 0.05 and i % 3 and i % 7 and i % 11:
+            clean += 1
+            clean_claimed += says
+    # random layouts include skinny 4-point samples that extrapolate noise far: not all fire
+    assert claimed > 100 and clean_claimed > 0.25 * clean, (claimed, clean_claimed, clean)
+
+
+def test_skipping_the_diagnostic_fit_changes_nothing_else():
+    """fit_rms=False (what Perception asks for) leaves homography_rms_px NaN and every
+    correspondence, rejection and other figure as with the fit."""
+    pts = view(LAYOUT) + np.random.default_rng(4).normal(0.0, 0.2, (5, 2))
+    det = detection(np.vstack([pts, [[100, 420]]]), np.vstack([COLOURS, COLOURS[2]]))
+    with_fit = match_dots(det, KEYS, srgb_to_lab(COLOURS), LAYOUT)
+    without = match_dots(det, KEYS, srgb_to_lab(COLOURS), LAYOUT, fit_rms=False)
+    assert np.isfinite(with_fit.quality["homography_rms_px"])
+    assert np.isnan(without.quality["homography_rms_px"])
+    assert (without.keys, without.rejected, without.missing) == (
+        with_fit.keys, with_fit.rejected, with_fit.missing)
+    assert np.array_equal(without.points, with_fit.points)
+    assert np.array_equal(without.quality["delta_e"], with_fit.quality["delta_e"])
+    assert without.quality["gain"] == with_fit.quality["gain"]

@@ -19,6 +19,7 @@ where cv2.projectPoints puts them (tests/sim/test_render.py measures both).
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import cv2
 import numpy as np
@@ -27,6 +28,8 @@ import numpy as np
 Z_NEAR = 1e-3
 # Points sampled per polygon edge to bound the curved (distorted) image of a straight edge.
 _EDGE_SAMPLES = 16
+# Fractions along each edge where it is sampled.
+_EDGE_T = np.linspace(0.0, 1.0, _EDGE_SAMPLES, endpoint=False)[:, None, None]
 # Pixels of margin around a target's bounding box (bilinear footprint + rounding).
 _BOX_MARGIN = 2
 # The pyramid stops halving once the texture is this small (texels).
@@ -42,11 +45,16 @@ class TextureLevel:
     image: np.ndarray
     plane_from_texel: np.ndarray
 
-    @property
+    @cached_property
     def texels_per_m(self) -> float:
         """Texel density along the finer of the two texture axes, texels per metre."""
         return 1.0 / min(np.linalg.norm(self.plane_from_texel[:2, 0]),
                          np.linalg.norm(self.plane_from_texel[:2, 1]))
+
+    @cached_property
+    def texel_from_plane(self) -> np.ndarray:
+        """Inverse of ``plane_from_texel``."""
+        return np.linalg.inv(self.plane_from_texel)
 
 
 class PlanarTexture:
@@ -115,6 +123,8 @@ def _pyramid(image, A):
 def _clip_polygon(points, normal, offset):
     """Sutherland-Hodgman: the part of a convex polygon (rows of ``points``) where
     ``points @ normal >= offset``."""
+    if np.all(points @ normal >= offset):
+        return points  # nothing to clip (what the loop below would return, without the loop)
     out = []
     n = len(points)
     for i in range(n):
@@ -148,6 +158,33 @@ def _ray_map(camera):
     return _RAY_MAPS[key]
 
 
+def _lens_projector(camera):
+    """A function xy (N, 2) normalized -> pixels (N, 2) of ``camera``'s raw image, in numpy
+    for the polynomial lens models (OpenCV's model as cv2.projectPoints evaluates it: radial
+    k1..k6 as a ratio, tangential p1, p2; only fx, fy, cx, cy of K), since the per-call cost
+    of cv2.projectPoints is most of the work for the few dozen points of a target outline.
+    Other models (fisheye, rectified streams) go through the camera model itself."""
+    if camera.rectified or camera.distortion_model not in ("plumb_bob", "rational_polynomial"):
+        return camera.normalized_to_pixels
+    k = np.zeros(8)
+    k[:camera.D.size] = camera.D
+    k1, k2, p1, p2, k3, k4, k5, k6 = k.tolist()
+    K = camera.K
+    fx, fy, cx, cy = float(K[0, 0]), float(K[1, 1]), float(K[0, 2]), float(K[1, 2])
+
+    def project(xy):
+        x, y = xy[:, 0], xy[:, 1]
+        r2 = x * x + y * y
+        r4, r6 = r2 * r2, r2 * r2 * r2
+        radial = (1 + k1 * r2 + k2 * r4 + k3 * r6) / (1 + k4 * r2 + k5 * r4 + k6 * r6)
+        a1 = 2 * x * y
+        xd = x * radial + p1 * a1 + p2 * (r2 + 2 * x * x)
+        yd = y * radial + p1 * (r2 + 2 * y * y) + p2 * a1
+        return np.column_stack([fx * xd + cx, fy * yd + cy])
+
+    return project
+
+
 class PlaneRenderer:
     """Draws a :class:`PlanarTexture` into images of one camera.
 
@@ -158,6 +195,8 @@ class PlaneRenderer:
     def __init__(self, camera):
         self.camera = camera
         self.distorted = camera.effective_distortion != "none" and bool(np.any(camera.D != 0))
+        self._project = _lens_projector(camera)
+        self._focal = float(np.max(np.diag(camera.intrinsics)[:2]))
         self._rays = None  # (H, W, 2) float32 normalized ray of every pixel, built on demand
         self._ray_box = None
         self._ray_box_corners = None
@@ -206,7 +245,7 @@ class PlaneRenderer:
             return None
         return x0, y0, x1, y1
 
-    def _level(self, texture, Hn, xy):
+    def _level(self, texture, Hn, G, xy):
         """Texture level for the polygon with vertices ``xy`` (normalized coordinates).
 
         The image scale of the plane (pixels per metre) in its most compressed direction is the
@@ -215,15 +254,19 @@ class PlaneRenderer:
         keeps every sample's footprint at least a pixel wide: no aliasing, at the cost of up to
         two (plus foreshortening) pixels of blur where the target is closest.
         """
-        f = float(np.max(np.diag(self.camera.intrinsics)[:2]))
-        G = np.linalg.inv(Hn)  # camera ray (x, y, 1) -> plane (X, Y, 1) / Z
-        px_per_m = np.inf
-        for x, y in xy:
-            inv_z = (G @ np.array([x, y, 1.0]))[2]
-            # d(x, y)/d(X, Y) of x = (Hn P)_xy / (Hn P)_z at the plane point P seen along (x, y).
-            J = (Hn[:2, :2] - np.outer([x, y], Hn[2, :2])) * inv_z
-            px_per_m = min(px_per_m, f * np.linalg.svd(J, compute_uv=False)[1])
-        return texture.level_at_most(px_per_m)
+        inv_z = xy @ G[2, :2] + G[2, 2]  # G = inv(Hn): camera ray -> plane (X, Y, 1) / Z
+        # d(x, y)/d(X, Y) of x = (Hn P)_xy / (Hn P)_z at the plane point P seen along (x, y),
+        # one 2x2 matrix [[a, b], [c, d]] per vertex
+        a = (Hn[0, 0] - xy[:, 0] * Hn[2, 0]) * inv_z
+        b = (Hn[0, 1] - xy[:, 0] * Hn[2, 1]) * inv_z
+        c = (Hn[1, 0] - xy[:, 1] * Hn[2, 0]) * inv_z
+        d = (Hn[1, 1] - xy[:, 1] * Hn[2, 1]) * inv_z
+        # its singular values: s1^2 + s2^2 = a^2 + b^2 + c^2 + d^2 and s1 s2 = |det|; the
+        # smaller as |det| / s1 (no cancellation when the view is foreshortened)
+        squares, det = a * a + b * b + c * c + d * d, np.abs(a * d - b * c)
+        s1 = np.sqrt(0.5 * (squares + np.sqrt(np.maximum(squares * squares - 4 * det * det,
+                                                          0.0))))
+        return texture.level_at_most(self._focal * float(np.min(det / s1)))
 
     def _draw_by_homography(self, image, texture, Hn, xy):
         K = self.camera.intrinsics
@@ -231,7 +274,7 @@ class PlaneRenderer:
         if box is None:
             return None
         x0, y0, x1, y1 = box
-        level = self._level(texture, Hn, xy)
+        level = self._level(texture, Hn, np.linalg.inv(Hn), xy)
         shift = np.array([[1.0, 0.0, x0], [0.0, 1.0, y0], [0.0, 0.0, 1.0]])
         texel_from_roi = np.linalg.inv(K @ Hn @ level.plane_from_texel) @ shift
         roi = image[y0:y1, x0:x1]
@@ -249,14 +292,14 @@ class PlaneRenderer:
                 xy = _clip_polygon(xy, -np.eye(2)[axis], -hi[axis])
             if len(xy) < 3:
                 return None
-        t = np.linspace(0.0, 1.0, _EDGE_SAMPLES, endpoint=False)[:, None, None]
-        edges = (xy[None] + t * (np.roll(xy, -1, axis=0) - xy)[None]).reshape(-1, 2)
-        box = self._box(self.camera.normalized_to_pixels(edges))
+        edges = (xy[None] + _EDGE_T * (np.roll(xy, -1, axis=0) - xy)[None]).reshape(-1, 2)
+        box = self._box(self._project(edges))
         if box is None:
             return None
         x0, y0, x1, y1 = box
-        level = self._level(texture, Hn, xy)
-        texel_from_ray = np.linalg.inv(level.plane_from_texel) @ np.linalg.inv(Hn)
+        G = np.linalg.inv(Hn)  # camera ray (x, y, 1) -> plane (X, Y, 1) / Z
+        level = self._level(texture, Hn, G, xy)
+        texel_from_ray = level.texel_from_plane @ G
         r = rays[y0:y1, x0:x1]
         maps = cv2.perspectiveTransform(r, texel_from_ray)
         # The third row gives 1/Z of the ray's hit on the plane; where it is <= 0 the ray meets

@@ -22,6 +22,7 @@ it had is missing.
 """
 from __future__ import annotations
 
+import math
 import time
 from dataclasses import dataclass, field
 
@@ -181,23 +182,27 @@ class DotDetector:
         m00 = col.sum()
         if m00 <= 0:
             return None, "area"
-        dx = np.arange(x1 - x0) - col @ np.arange(x1 - x0) / m00
-        dy = np.arange(y1 - y0) - row @ np.arange(y1 - y0) / m00
-        a, c, b = col @ (dx * dx) / m00, row @ (dy * dy) / m00, dy @ weights @ dx / m00
-        root = np.hypot((a - c) / 2, b)
-        major = np.sqrt((a + c) / 2 + root)
-        minor = np.sqrt(max((a + c) / 2 - root, 0.0))
+        cols, rows = np.arange(x1 - x0), np.arange(y1 - y0)
+        dx = cols - col @ cols / m00
+        dy = rows - row @ rows / m00
+        # the second moments as Python floats: the scalar arithmetic below is then cheap
+        a, c = float(col @ (dx * dx) / m00), float(row @ (dy * dy) / m00)
+        b = float(dy @ weights @ dx / m00)
+        root = float(np.hypot((a - c) / 2, b))
+        major = math.sqrt((a + c) / 2 + root)
+        minor = math.sqrt(max((a + c) / 2 - root, 0.0))
         if major <= 0 or minor / major < self.min_roundness:
             return None, "roundness"
-        fill = area / (4 * np.pi * minor * major)  # ellipse semi-axes are 2 sqrt(eigenvalue)
+        fill = area / (4 * math.pi * minor * major)  # ellipse semi-axes are 2 sqrt(eigenvalue)
         if not self.fill_range[0] <= fill <= self.fill_range[1]:
             return None, "fill"
         interior = own & (weights >= 0.8 * weights.max())
-        linear = SRGB8_TO_LINEAR[image[y0:y1, x0:x1][interior]].mean(axis=0)
+        texels = SRGB8_TO_LINEAR[image[y0:y1, x0:x1][interior]]
+        linear = texels.sum(axis=0) / len(texels)  # = mean(axis=0), without its overhead
         colour = linear[::-1] if image.ndim == 3 else np.repeat(linear, 3)
         centre = (x0 - dx[0], y0 - dy[0])
-        return (centre, colour, float(area), float(np.sqrt(area / np.pi)),
-                float(minor / major), float(fill)), None
+        return (centre, colour, float(area), math.sqrt(area / math.pi),
+                minor / major, fill), None
 
     def _components(self, image, full_frame):
         score = self.score(image)

@@ -149,6 +149,76 @@ def _homography_fit(src, dst):
     return rms, np.linalg.det(H) * np.sign(w[0]) ** 3 > 0
 
 
+# Triples of a 4-point sample whose orientations OpenCV's homography RANSAC compares.
+_TRIPLES = np.array([[0, 1, 2], [1, 2, 3], [0, 2, 3], [0, 1, 3]])
+_FLT_EPSILON = float(np.finfo(np.float32).eps)
+# The shortcut below decides only with this much room (a factor on OpenCV's collinearity
+# tolerance, a fraction of its squared inlier threshold) and leaves closer calls to OpenCV.
+_COLLINEAR_ROOM = 100.0
+_INLIER_ROOM = 0.25
+_SHORTCUT_MAX_POINTS = 6
+
+
+def _subsets(n):
+    """(4-point subsets (S, 4), their triples (S, 4, 3)) of n points, cached."""
+    if n not in _SUBSETS:
+        subsets = np.array(list(itertools.combinations(range(n), 4)))
+        _SUBSETS[n] = subsets, subsets[:, _TRIPLES]
+    return _SUBSETS[n]
+
+
+_SUBSETS: dict = {}
+
+
+def ransac_keeps_all(src, dst, threshold_px) -> bool:
+    """True only when ``cv2.findHomography(src, dst, cv2.RANSAC, threshold_px)`` is certain
+    to keep every point, so the call (a few tenths of a millisecond) can be skipped.
+
+    OpenCV's RANSAC (calib3d fundam.cpp / ptsetreg.cpp) draws 4-point samples, skips those
+    with (nearly) collinear points or inconsistent triangle orientations between the two
+    sets, fits the sample's exact homography and counts points whose squared reprojection
+    error is within ``threshold_px**2``; the first model that keeps every point ends the
+    search with an all-inlier mask. So if every 4-point subset OpenCV could accept keeps
+    every point, and at least one subset is acceptable, the mask is all ones whatever the
+    random draws. This checks that for up to ``_SHORTCUT_MAX_POINTS`` points, on the float32
+    coordinates OpenCV uses, with room on each test so rounding cannot flip it; otherwise
+    (an outlier, a close call, many points) it says False and the caller asks OpenCV.
+
+    A sample's homography carries a point through its coordinates in the projective basis
+    of the sample (first three points scaled so that they sum to the fourth): the point
+    with those coordinates in the other image is where the homography maps it.
+    """
+    n = len(src)
+    if n < 5 or n > _SHORTCUT_MAX_POINTS or len(dst) != n:
+        return False
+    subsets, triples = _subsets(n)
+    pts = np.empty((2, n, 3))
+    pts[0, :, :2], pts[1, :, :2] = src, dst
+    pts[..., :2] = pts[..., :2].astype(np.float32)    # what OpenCV computes with
+    pts[..., 2] = 1.0
+    # signed doubled areas of every triple of every subset, in both images
+    area = np.linalg.det(pts[:, triples])                              # (2, S, 4)
+    # OpenCV calls a triple collinear when |area| <= FLT_EPSILON times a sum of coordinate
+    # differences; 4 x the bounding box's width + height bounds that sum
+    extent = 4.0 * np.ptp(pts[..., :2], axis=1).sum(axis=1)            # (2,)
+    if np.any(np.abs(area) <= _COLLINEAR_ROOM * _FLT_EPSILON * extent[:, None, None]):
+        return False  # a near-collinear triple: too close to call
+    negative = np.count_nonzero(area[0] * area[1] < 0, axis=1)
+    accepted = (negative == 0) | (negative == 4)
+    if not accepted.any():
+        return False
+    S = subsets[accepted]
+    basis = pts[:, S[:, :3]].swapaxes(-1, -2)                          # (2, S', 3, 3)
+    scale = np.linalg.solve(basis, pts[:, S[:, 3], :, None])[..., 0]   # (2, S', 3)
+    coords = np.linalg.solve(basis[0], pts[0].T[None].repeat(len(S), 0))  # (S', 3, n)
+    mapped = basis[1] @ (scale[1, :, :, None] / scale[0, :, :, None] * coords)
+    w = mapped[:, 2]
+    if np.any(np.abs(w) < 1e-9 * np.abs(mapped).max()):
+        return False
+    err = ((mapped[:, :2] / w[:, None] - pts[1, :, :2].T) ** 2).sum(axis=1)   # (S', n)
+    return bool(np.all(err <= _INLIER_ROOM * threshold_px ** 2))
+
+
 def _disambiguate(pairs, groups, allowed, points, ref_points, geometry_px, max_trials):
     """Try the assignments within repeated-colour groups; keep the best homography fit."""
     fixed = [(r, d) for r, d in pairs if not any(r in g for g in groups)]
@@ -196,7 +266,7 @@ def _exposure_gain(ref_lab, colours_linear, extra, gate, max_delta_e):
 def match_dots(detection, ref_keys, ref_lab, ref_points=None, predicted=None, *,
                max_delta_e=30.0, max_jump_px=40.0, px_weight=1.0, compensate_exposure=True,
                ambiguity_delta_e=15.0, geometry_px=3.0, max_trials=5000,
-               min_matched=MIN_MATCHED) -> MatchResult:
+               min_matched=MIN_MATCHED, fit_rms=True) -> MatchResult:
     """Match detected blobs to reference dots by colour, and by geometry where needed.
 
     Args:
@@ -211,6 +281,9 @@ def match_dots(detection, ref_keys, ref_lab, ref_points=None, predicted=None, *,
         compensate_exposure: fit one gain in linear light (0.25 .. 4) before the colour gate.
         ambiguity_delta_e: reference colours closer than this count as the same colour.
         geometry_px: homography residual allowed, current-image pixels.
+        fit_rms: fit the least-squares homography of the matches for the quality figure
+            ``homography_rms_px`` (a diagnostic; False leaves it NaN and saves ~0.2 ms for
+            callers that never read it, such as ``Perception``).
     The default thresholds are common practice, no source.
     """
     ref_keys = [tuple(k) for k in ref_keys]
@@ -249,13 +322,15 @@ def match_dots(detection, ref_keys, ref_lab, ref_points=None, predicted=None, *,
             quality.update(info)
         if len(pairs) >= 5:
             r, d = map(np.array, zip(*pairs))
-            _, inl = cv2.findHomography(ref_points[r], detection.points[d], cv2.RANSAC,
-                                        geometry_px)
+            inl = None
+            if not ransac_keeps_all(ref_points[r], detection.points[d], geometry_px):
+                _, inl = cv2.findHomography(ref_points[r], detection.points[d], cv2.RANSAC,
+                                            geometry_px)
             if inl is not None:
                 keep = inl.ravel().astype(bool)
                 reasons.update({int(j): "geometry" for j in d[~keep]})
                 pairs = [p for p, k in zip(pairs, keep) if k]
-        if len(pairs) >= 4:
+        if fit_rms and len(pairs) >= 4:
             r, d = map(list, zip(*pairs))
             fit = _homography_fit(ref_points[r], detection.points[d])
             if fit is not None:

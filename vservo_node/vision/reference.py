@@ -108,13 +108,16 @@ class Reference:
         return make_detector(target)
 
     def match(self, detection: Detection, camera: CameraModel | None = None, predicted=None,
-              min_matched=MIN_MATCHED, **options) -> MatchResult:
+              min_matched=MIN_MATCHED, ref_points=None, **options) -> MatchResult:
         """Match a detection (dots by colour and geometry, others by key) to this reference.
 
-        ``ref_points`` of the result are the reference pixels as the current camera sees them.
+        ``ref_points`` of the result are the reference pixels as the current camera sees them:
+        ``points_for(camera, detection.image_size)``, unless the caller passes them (a stream
+        whose camera does not change computes them once).
         ``options`` go to ``matching.match_dots``.
         """
-        ref_points = self.points_for(camera, detection.image_size)
+        if ref_points is None:
+            ref_points = self.points_for(camera, detection.image_size)
         if self.kind == "dots":
             return match_dots(detection, self.keys, self.colours_lab, ref_points, predicted,
                               min_matched=min_matched, **options)
