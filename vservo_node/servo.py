@@ -191,6 +191,7 @@ class _RunState:
     direction_anchor: "_Frame | None" = None
     probe_t0: float | None = None
     follow_cmd: np.ndarray | float = 0.0   # commanded joint travel (rad) in the window
+    follow_phase: str = "run"              # nod_out, nod_back or run (Servo._following)
     follow_t0: float = 0.0
     follow_q0: np.ndarray | None = None
     final_rms: float = math.nan
@@ -345,6 +346,12 @@ class Servo:
         self._frame = frame
         run.best_rms = min(run.best_rms, rms_px)
         run.final_rms = rms_px
+        # the arm against its command first: when it moves wrongly the error also grows, and
+        # the more specific reason is the more useful one
+        following = self._following(q, t)
+        if following:
+            self.halt(following, t)
+            return
         if rms_px > s.diverge_factor * run.best_rms + s.diverge_margin_px:
             self.halt("diverging", t)
             return
@@ -354,10 +361,6 @@ class Servo:
         envelope_used = self._envelope_used(q)
         if envelope_used > 1.0:
             self.halt("motion_envelope", t)
-            return
-        following = self._following(q, t)
-        if following:
-            self.halt(following, t)
             return
         dq, info = self.law.compute(J_img, e, rms_px, q, t,
                                     null_space_enabled=self.state == "servoing")
@@ -501,24 +504,51 @@ class Servo:
         "not_following" (it travelled less than follow_min_ratio of the commanded net travel)
         or "wrong_direction" (it travelled the wrong way: the command's joint order or signs
         do not match the joints it moves). Judged only when the command asked for real net
-        travel (5 mrad over the window); a motion that comes back (the start nod, a reversal)
-        asks for little net travel and is not judged."""
+        travel (FOLLOW_MIN_TRAVEL over the window). Windows: the start nod's way out (from
+        the first image to its turning point, where its net travel is largest), then none
+        until the nod is back (its return leaves ~0 net travel, whose direction is noise),
+        then every follow_window_s."""
         s, run = self.settings, self._run
-        if run.follow_q0 is None or self._nodding(t):
-            # the first window opens after the start nod: the nod's net travel is ~0 by design,
-            # so its direction is noise (and stale joints mid-nod would look like a wrong one)
-            run.follow_q0, run.follow_t0, run.follow_cmd = q.copy(), t, 0.0
+        nodding = self._nodding(t)
+        if run.follow_q0 is None:
+            self._open_follow_window(q, t, "nod_out" if nodding else "run")
+            return ""
+        if run.follow_phase == "nod_out":
+            if nodding and t - run.probe_t0 < 0.5 * s.direction_probe_s:
+                return ""
+            # direction only: a laggy arm may not have come far yet (judged later, over whole
+            # windows), and a direction from too little travel is not judged at all
+            verdict = self._judge_following(q, judge_travel=False)
+            self._open_follow_window(q, t, "nod_back" if nodding else "run")
+            return verdict
+        if run.follow_phase == "nod_back":
+            if nodding:
+                return ""
+            self._open_follow_window(q, t, "run")
             return ""
         if t - run.follow_t0 < s.follow_window_s:
             return ""
+        verdict = self._judge_following(q)
+        self._open_follow_window(q, t, "run")
+        return verdict
+
+    # net commanded joint travel (rad) below which a follow window is not judged (our
+    # threshold, common practice, no source: well above the reported joints' noise)
+    FOLLOW_MIN_TRAVEL = 5e-3
+
+    def _open_follow_window(self, q: np.ndarray, t: float, phase: str) -> None:
+        run = self._run
+        run.follow_q0, run.follow_t0, run.follow_cmd, run.follow_phase = q.copy(), t, 0.0, phase
+
+    def _judge_following(self, q: np.ndarray, judge_travel: bool = True) -> str:
+        s, run = self.settings, self._run
         moved = q - run.follow_q0
         asked = np.asarray(run.follow_cmd, dtype=float)
-        run.follow_q0, run.follow_t0, run.follow_cmd = q.copy(), t, 0.0
         measured, commanded = float(np.linalg.norm(moved)), float(np.linalg.norm(asked))
-        if commanded <= 5e-3:
+        if commanded <= self.FOLLOW_MIN_TRAVEL:
             return ""
         if measured < s.follow_min_ratio * commanded:
-            return "not_following"
+            return "not_following" if judge_travel else ""
         if float(moved @ asked) < self.FOLLOW_COSINE * measured * commanded:
             return "wrong_direction"
         return ""

@@ -135,6 +135,30 @@ def test_hand_eye_believed_turned_half_a_turn_halts_wrong_direction(cell, figure
     assert moved_mm < 5.0 and turned_deg < 1.0
 
 
+def test_command_in_the_wrong_joint_order_halts_wrong_direction(cell, figures):
+    """io.command_joint_order names two wrist joints the wrong way round: the node writes each
+    joint's velocity into the other's slot of the command array, so the sim's drives move
+    joints the servo did not command. The measured joints move as they were told, so the
+    features agree with the image Jacobian; the follow check compares the joints' net travel
+    with the commanded net travel (servo.py, Servo._following), first over the start nod's way
+    out, which moves these wrist joints, and finds it pointing elsewhere. Measured headless:
+    0.18 s (tests/test_direction_check.py). Bound (ours, no source): halted on wrong_direction
+    within 0.6 s (the nod, its judgement at the turning point, braking, DDS), before the camera
+    strayed 10 mm (measured 3.2 mm: the swapped wrist joints moved the camera off its centre)."""
+    names = list(load_scenario("tray_offset").joint_names)
+    names[4], names[5] = names[5], names[4]
+    cell.use(CellSpec("tray_offset", extra=(("io", "command_joint_order", names),)))
+    cell.return_to_start()
+    T_start = cell.node.truth["camera"]
+    outcome = cell.run()
+    assert outcome.reason == "wrong_direction", outcome.result
+    moved_mm = 1e3 * float(np.linalg.norm(cell.node.truth["camera"][:3, 3] - T_start[:3, 3]))
+    figures.append(f"command joint order swapped: wrong_direction after "
+                   f"{outcome.result['time_s']:.3f} s, camera moved {moved_mm:.1f} mm")
+    assert outcome.result["time_s"] < 0.6
+    assert moved_mm < 10.0
+
+
 def _limited_arm(folder):
     """vs6_tray_offset with the joint that moves most from start to goal given a URDF limit
     0.02 rad beyond its taught value, inside limits.position_margin: the servo must drive
