@@ -17,6 +17,7 @@ from pathlib import Path
 
 import rclpy
 import yaml
+from sensor_msgs.msg import Image
 from std_msgs.msg import String
 from std_srvs.srv import SetBool, Trigger
 
@@ -68,8 +69,17 @@ def measure(tmp: Path) -> int:
     control = node.create_publisher(String, "stub/control", qos.STATE)
     try:
         harness.wait_for_subscriber(node, "stub/control", 30.0, procs)
-        control.publish(String(data=json.dumps({"run": True})))
-        harness.wait_for_publisher(node, itf.TOPIC_IMAGE, 20.0, procs)
+        # the order can go out before the stub's subscription has matched this publisher
+        # (discovery is not symmetric): repeat it until images flow
+        for attempt in range(10):
+            control.publish(String(data=json.dumps({"run": True})))
+            try:
+                harness.wait_for_message(node, itf.TOPIC_IMAGE, Image, qos.SENSOR_DATA, 2.0,
+                                         processes=procs)
+                break
+            except TimeoutError:
+                if attempt == 9:
+                    raise
         harness.spin_until(node, lambda: bool(status), 20.0, "a status", procs)
         print(call(node, procs, Trigger, "/" + itf.SRV_CAPTURE_REFERENCE).message)
         c0, t0 = cpu_seconds(controller), time.monotonic()
