@@ -105,8 +105,9 @@ SCHEMA: tuple[Param, ...] = (
     _p("control.max_initial_error_px", float, 400.0, "refuse to start above this RMS error",
        unit="px", low=0.0, high=1e5, tighten="down"),
     _p("control.direction_probe_px", float, 6.0, "start nod: at the start of a run the camera "
-       "tilts about its own centre by up to this feature shift and back, so a wrong hand-eye, "
-       "optical frame or joint order halts (wrong_direction) within the nod; 0 = no nod",
+       "tilts about its own centre by up to this feature shift and back, so a wrong hand-eye or "
+       "optical frame, or a command order that swaps the joints the nod moves, halts "
+       "(wrong_direction) within the nod; 0 = no nod",
        unit="px", low=0.0, high=50.0),
     _p("control.direction_probe_s", float, 0.3, "duration of the start nod", unit="s",
        low=0.05, high=5.0),

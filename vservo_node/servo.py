@@ -461,9 +461,11 @@ class Servo:
         the two apart for many frames. The flow of a rotation about the camera centre does not
         depend on depth (Chaumette & Hutchinson 2006, Part I, eq. 11, the columns of w), so
         the nod makes the first judgements of :meth:`_wrong_direction` decisive: seen against
-        predicted, a turned or mirrored optical frame, hand-eye or joint order shows up as a
-        reversed or turned flow within the nod. About the diagonal, a half turn about the
-        optical axis, x or y all reverse or turn the seen flow. The law waits because its own
+        predicted, a turned or mirrored optical frame or hand-eye shows up as a reversed or
+        turned flow within the nod. About the diagonal, a half turn about the optical axis, x
+        or y all reverse or turn the seen flow. (A command sent in the wrong joint order is
+        not seen here, since the prediction uses the measured joints; :meth:`_following`
+        judges the nod's way out for it.) The law waits because its own
         early motion can swamp the nod's flow (a turn about the optical axis, which a half
         turn of the hand-eye about that axis leaves correct). 0 px disables the nod.
         """
