@@ -207,7 +207,7 @@ class _Frame:
     e: np.ndarray
     J_move: np.ndarray   # (2, 2N, n): feature motion from camera translation, from rotation
     rms_px: float
-    depths: tuple | None = None   # (z_now, xy_ref, z_ref) for the law between frames
+    law_inputs: tuple | None = None   # (z_now, xy_ref, z_ref) for the law between frames
 
 
 class Servo:
@@ -320,7 +320,7 @@ class Servo:
         e = (xy_now - xy_ref).ravel()
         error_px = uv_now - uv_ref
         rms_px = float(np.sqrt(np.mean(np.sum(error_px ** 2, axis=1))))
-        camera_jac = self.arm.camera_from_tool() @ self.arm.jacobian_tool(q)
+        camera_jac = self._camera_jacobian(q)
         J_img = interaction_matrix(s.interaction_estimate, xy_now, z_now, xy_ref, z_ref) @ camera_jac
         # the local image Jacobian (current features) predicts how features move; the law's
         # estimate may be taught or blended, which only approximates it far from the goal
@@ -470,13 +470,11 @@ class Servo:
         turn of the hand-eye about that axis leaves correct). 0 px disables the nod.
         """
         s, run = self.settings, self._run
-        if s.direction_probe_px <= 0 or s.direction_probe_s <= 0:
-            return None
         if run.probe_t0 is None:
             run.probe_t0 = t
-        tau = t - run.probe_t0
-        if not 0.0 <= tau < s.direction_probe_s:
+        if not self._nodding(t):
             return None
+        tau = t - run.probe_t0
         # peak angle = peak speed * period / pi; shift (px) = focal (px per unit) * angle
         peak = math.pi * s.direction_probe_px / (s.direction_probe_s * self.reference.px_per_unit)
         w = peak * math.sin(2.0 * math.pi * tau / s.direction_probe_s) / math.sqrt(2.0)
@@ -491,9 +489,6 @@ class Servo:
         return max(moved_m / s.max_translation_m if s.max_translation_m > 0 else math.inf,
                    math.degrees(turned_rad) / s.max_rotation_deg if s.max_rotation_deg > 0
                    else math.inf)
-
-    def _outside_envelope(self, q: np.ndarray) -> bool:
-        return self._envelope_used(q) > 1.0
 
     # The joints count as moving against their command when their net travel over a follow
     # window points more than 60 deg away from the commanded net travel (our threshold, common
@@ -621,7 +616,7 @@ class Servo:
         and the joints now (depths kept from the frame). The supervisor still judges only
         real frames; the nod, when running, is left alone."""
         frame, run = self._frame, self._run
-        if frame is None or frame.depths is None or run is None or self._nodding(t):
+        if frame is None or frame.law_inputs is None or run is None or self._nodding(t):
             return
         dq_since = q - frame.q
         if not np.all(np.isfinite(dq_since)):
@@ -629,9 +624,9 @@ class Servo:
         e = frame.e + (frame.J_move[0] + frame.J_move[1]) @ dq_since
         norm_e = float(np.linalg.norm(frame.e))
         rms_px = frame.rms_px * float(np.linalg.norm(e)) / norm_e if norm_e > 0 else 0.0
-        z_now, xy_ref, z_ref = frame.depths
+        z_now, xy_ref, z_ref = frame.law_inputs
         xy_now = xy_ref + e.reshape(-1, 2)
-        camera_jac = self.arm.camera_from_tool() @ self.arm.jacobian_tool(q)
+        camera_jac = self._camera_jacobian(q)
         J_img = interaction_matrix(self.settings.interaction_estimate, xy_now, z_now, xy_ref,
                                    z_ref) @ camera_jac
         dq, info = self.law.compute(J_img, e, rms_px, q, t,
@@ -642,10 +637,15 @@ class Servo:
         self._desired = dq
 
     def _nodding(self, t: float) -> bool:
+        """Is the start nod running at time t (or still to start: no image yet)?"""
         s, run = self.settings, self._run
         if s.direction_probe_px <= 0 or s.direction_probe_s <= 0:
             return False
-        return run.probe_t0 is None or t - run.probe_t0 < s.direction_probe_s
+        return run.probe_t0 is None or 0.0 <= t - run.probe_t0 < s.direction_probe_s
+
+    def _camera_jacobian(self, q: np.ndarray) -> np.ndarray:
+        """(6, n) camera twist [v; w] in the camera optical frame per joint velocity."""
+        return self.arm.camera_from_tool() @ self.arm.jacobian_tool(q)
 
     def _cartesian_jacobians(self, q):
         """Tool point, camera origin (linear) and tool angular Jacobians, 3 x n each."""
@@ -685,4 +685,4 @@ class Servo:
     # --- read-only views for the shells -----------------------------------------------------
     def camera_twist(self, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
         """Camera twist [v; w] in the camera optical frame for joint velocity dq."""
-        return self.arm.camera_from_tool() @ self.arm.jacobian_tool(q) @ dq
+        return self._camera_jacobian(q) @ dq
