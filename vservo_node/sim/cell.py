@@ -16,7 +16,7 @@ from vservo_node.control.frames import invert
 from vservo_node.sim.arm import SimArm
 from vservo_node.sim.camera_sim import SimCamera
 from vservo_node.sim.render import PlanarTexture
-from vservo_node.sim.truth import Truth, frame_truth
+from vservo_node.sim.truth import Truth, frame_truth, unoccluded
 from vservo_node.vision.targets import render_target_texture
 
 # Finest texture resolution (texels per metre): 0.125 mm texels stay finer than a pixel until
@@ -131,10 +131,5 @@ class SimCell:
 
     def _detectable(self, truth: Truth) -> np.ndarray:
         """In view, not painted over and not under an occluder active at ``truth.t``."""
-        visible = truth.in_view & ~self._hidden_mask
-        for occluder in self.scenario.photometric.occluders:
-            if occluder.active(truth.t):
-                x0, y0, x1, y1 = occluder.rect_px
-                u, v = truth.uv[:, 0], truth.uv[:, 1]
-                visible &= ~((u >= x0 - 0.5) & (u < x1 - 0.5) & (v >= y0 - 0.5) & (v < y1 - 0.5))
-        return visible
+        return (truth.in_view & ~self._hidden_mask
+                & unoccluded(truth.uv, self.scenario.photometric.occluders, truth.t))

@@ -29,7 +29,7 @@ import numpy as np
 from vservo_node.control.frames import invert
 from vservo_node.servo import Observation, TaughtView
 from vservo_node.sim import seeding
-from vservo_node.sim.truth import _unambiguous, project_points
+from vservo_node.sim.truth import unambiguous, inside_image, project_points, unoccluded
 from vservo_node.vision import depth as depth_mod
 from vservo_node.vision.matching import MIN_MATCHED
 from vservo_node.vision.reference import BadReferenceError
@@ -97,26 +97,16 @@ class ProjectedSensor:
         T_camera_target = invert(self.arm.camera_pose(q)) @ self.scenario.T_base_target
         points = self.points_target @ T_camera_target[:3, :3].T + T_camera_target[:3, 3]
         uv = project_points(self.true_camera, points)
-        w, h = self.true_camera.width, self.true_camera.height
-        with np.errstate(invalid="ignore"):
-            visible = ((uv[:, 0] >= -0.5) & (uv[:, 0] <= w - 0.5)
-                       & (uv[:, 1] >= -0.5) & (uv[:, 1] <= h - 0.5))
+        visible = inside_image(self.true_camera, uv)
         # a pixel the lens polynomial reached by folding back is not an image of the point
-        # (sim.truth._unambiguous); rays inside the radius where the radial map still grows
+        # (sim.truth.unambiguous); rays inside the radius where the radial map still grows
         # cannot fold, so only the others need the (iterative) check
         with np.errstate(invalid="ignore", divide="ignore"):
             r2 = (points[:, 0] ** 2 + points[:, 1] ** 2) / points[:, 2] ** 2
         check = visible & ~(r2 < self._r_safe ** 2)
         if check.any():
-            visible[check] = _unambiguous(self.true_camera, points[check], uv[check])
-        visible &= self.shown
-        for occ in self.occluders:
-            if occ.active(t):
-                x0, y0, x1, y1 = occ.rect_px
-                u, v = uv[:, 0], uv[:, 1]
-                with np.errstate(invalid="ignore"):
-                    visible &= ~((u >= x0 - 0.5) & (u < x1 - 0.5) & (v >= y0 - 0.5)
-                                 & (v < y1 - 0.5))
+            visible[check] = unambiguous(self.true_camera, points[check], uv[check])
+        visible &= self.shown & unoccluded(uv, self.occluders, t)
         return uv, points[:, 2], visible
 
     def _noisy(self, uv, t: float):

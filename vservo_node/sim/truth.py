@@ -82,7 +82,7 @@ def disc_image_centroid(camera, T_camera_target, centre_xy, radius) -> np.ndarra
     return polygon_centroid(camera.project(rim_camera))
 
 
-def _unambiguous(camera, points_camera, uv) -> np.ndarray:
+def unambiguous(camera, points_camera, uv) -> np.ndarray:
     """False for points whose pixel the lens model reached by folding back (far outside the
     field of view a polynomial distortion can map rays into the image): undistorting the pixel
     must give the point's own ray back."""
@@ -93,6 +93,27 @@ def _unambiguous(camera, points_camera, uv) -> np.ndarray:
     return np.linalg.norm(back - xy, axis=1) < 1e-6 * (1.0 + np.linalg.norm(xy, axis=1))
 
 
+def inside_image(camera, uv) -> np.ndarray:
+    """(N,) bool: pixels ``uv`` (N, 2) on the image (pixel centres at integers, the image
+    spanning -0.5 .. size - 0.5); False for NaN rows."""
+    with np.errstate(invalid="ignore"):
+        return ((uv[:, 0] >= -0.5) & (uv[:, 0] <= camera.width - 0.5)
+                & (uv[:, 1] >= -0.5) & (uv[:, 1] <= camera.height - 0.5))
+
+
+def unoccluded(uv, occluders, t: float) -> np.ndarray:
+    """(N,) bool: pixels ``uv`` (N, 2) not under an image-space occluder active at time t
+    (``camera_sim.Occluder``: ``rect_px`` end exclusive, pixel centres at integers)."""
+    free = np.ones(len(uv), dtype=bool)
+    u, v = uv[:, 0], uv[:, 1]
+    for occluder in occluders:
+        if occluder.active(t):
+            x0, y0, x1, y1 = occluder.rect_px
+            with np.errstate(invalid="ignore"):
+                free &= ~((u >= x0 - 0.5) & (u < x1 - 0.5) & (v >= y0 - 0.5) & (v < y1 - 0.5))
+    return free
+
+
 def frame_truth(t, q, dq, camera, target, T_base_camera, T_base_target) -> Truth:
     """Ground truth for a camera at ``T_base_camera`` seeing ``target``
     (``vision.targets.Target``) placed at ``T_base_target``."""
@@ -101,9 +122,8 @@ def frame_truth(t, q, dq, camera, target, T_base_camera, T_base_target) -> Truth
     points_target = target.model_points()
     points_camera = points_target @ T_camera_target[:3, :3].T + T_camera_target[:3, 3]
     uv = project_points(camera, points_camera)
-    inside = ((uv[:, 0] >= -0.5) & (uv[:, 0] <= camera.width - 0.5)
-              & (uv[:, 1] >= -0.5) & (uv[:, 1] <= camera.height - 0.5))
-    inside[inside] = _unambiguous(camera, points_camera[inside], uv[inside])
+    inside = inside_image(camera, uv)
+    inside[inside] = unambiguous(camera, points_camera[inside], uv[inside])
     centroids = None
     if target.kind == "dots":
         centroids = np.array([disc_image_centroid(camera, T_camera_target, d.centre, d.radius)
