@@ -17,6 +17,7 @@ import numpy as np
 
 from vservo_node.control import frames
 from vservo_node.control.safety import LimitSet
+from vservo_node.interface import SENSING_MODES
 from vservo_node.servo import Observation, Servo, ServoSettings, TaughtView
 
 
@@ -333,7 +334,7 @@ def _depth_scaled(view_or_obs, scale: float):
     return dataclasses.replace(view_or_obs, depth=np.asarray(view_or_obs.depth) * scale)
 
 
-SENSING = ("image", "projected")
+SENSING = SENSING_MODES
 
 
 def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,

@@ -81,3 +81,7 @@ SUPERVISOR_STATES = (
     "braking",    # a halt reason arrived: ramping the command to zero
     "halted",     # run ended on a halt reason: explicit zero sent
 )
+
+# How a headless episode senses the target: render and perceive each image, or project the
+# target's points with pixel noise (vservo_node/sim/projected.py).
+SENSING_MODES = ("image", "projected")

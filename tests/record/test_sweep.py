@@ -40,7 +40,8 @@ def _sweep(**entries):
     ({"mode": "sobol"}, "expected one of ('grid', 'random')"),
     ({"success": {"pose_mm": 1.0, "pose_cm": 2.0}}, "unknown key(s) ['pose_cm']"),
     ({"sensing": "rendered"}, "expected one of ('image', 'projected')"),
-    ({"axes": {"sensing.noise_px": {"values": [-0.1]}}}, "must be >= 0 px"),
+    ({"sensing": "projected", "axes": {"sensing.noise_px": {"values": [-0.1]}}},
+     "must be >= 0 px"),
 ])
 def test_a_bad_sweep_file_is_refused_naming_the_entry(entries, complaint):
     with pytest.raises(SweepError) as info:
@@ -123,6 +124,12 @@ def test_the_quick_sweep_gives_the_same_table_in_one_process_and_in_two(tmp_path
     # (Chaumette & Hutchinson 2006, Part I: local asymptotic stability; Hutchinson, Hager &
     # Corke 1996: robust to calibration error): every episode succeeds
     assert one.summary["success_rate"] == 1.0, one.summary["failure_reasons"]
+
+
+def test_projected_noise_without_projected_sensing_is_refused():
+    with pytest.raises(SweepError, match="projected sensing only"):
+        plan(_sweep(fixed={"sensing.noise_px": 0.1}))
+    assert len(plan(_sweep(sensing="projected", fixed={"sensing.noise_px": 0.1}))) == 1
 
 
 def test_a_projected_sweep_repeats_itself_and_agrees_with_the_image_sweep(tmp_path):

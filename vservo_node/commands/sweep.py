@@ -7,6 +7,8 @@ import dataclasses
 import os
 import sys
 
+from vservo_node.interface import SENSING_MODES
+
 
 def register(subparsers) -> None:
     parser = subparsers.add_parser(
@@ -21,7 +23,7 @@ def register(subparsers) -> None:
     parser.add_argument("--scheduler", metavar="ADDRESS",
                         help="run on the Dask cluster whose scheduler listens here (e.g. "
                              "tcp://127.0.0.1:8786) instead of local processes")
-    parser.add_argument("--sensing", choices=("image", "projected"),
+    parser.add_argument("--sensing", choices=SENSING_MODES,
                         help="override the file's sensing: image (render and perceive every "
                              "frame) or projected (the target's points with pixel noise, no "
                              "images: ~3x faster, for studies of the servo, not the detectors)")

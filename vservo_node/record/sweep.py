@@ -72,11 +72,12 @@ from scipy.spatial.transform import Rotation
 
 from vservo_node import params, paths
 from vservo_node.control.frames import transform
+from vservo_node.interface import SENSING_MODES
 from vservo_node.yaml_entries import EntryReader
 
 FORMAT = "vservo_sweep/1"
 MODES = ("grid", "random")
-SENSING = ("image", "projected")   # vservo_node.episode.SENSING
+SENSING = SENSING_MODES
 DASK_PINS = "dask==2026.8.0 distributed==2026.8.0"
 
 # Quantities a sweep sets besides the controller parameters: name -> (description, default).
@@ -315,6 +316,10 @@ def plan(spec: SweepSpec) -> list[Point]:
     ``(spec.seed, index)``. SweepError when a planned episode's controller parameters do not
     pass ``vservo_node.params.validate``."""
     names = [a.name for a in spec.axes]
+    if spec.sensing != "projected" and "sensing.noise_px" in {*names, *spec.fixed}:
+        where = f"sweep {spec.source}" if spec.source else "sweep"
+        raise SweepError(f"{where}: sensing.noise_px applies to projected sensing only; this "
+                         f"sweep uses {spec.sensing!r} sensing")
     if spec.mode == "grid":
         combos = list(itertools.product(*(a.grid() for a in spec.axes)))
         chosen = [combo for combo in combos for _ in range(spec.repeats)]
