@@ -253,3 +253,55 @@ def test_every_limit_and_tightening_switch_has_an_upper_bound():
     reason = params.check_change("control.direction_probe_px", 6.0, 0.0, True)
     assert reason and "may only be raised" in reason
     assert params.check_value(params.BY_NAME["limits.joint_acceleration"], [1e308])[1]
+
+
+# --------------------------------------------------------------------- supervisor fuzz
+@settings(max_examples=60, deadline=None, derandomize=True,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(actions=st.lists(st.sampled_from(["enable", "disable", "start", "stop", "halt",
+                                         "frame", "no_frame", "nan_joints", "bad_frame"]),
+                        min_size=5, max_size=60))
+def test_random_supervisor_sequences_never_command_outside_a_run(rig, actions):
+    """Random sequences of the services' calls (enable, disable, start, stop), halts, good,
+    missing, hostile frames and NaN joints, with output ticks in between: no command unless a
+    run moves (servoing, settling, braking); braking never speeds up; a run that ends ends
+    with a zero command; nothing raises."""
+    robot, camera, scene = rig
+    arm = robot.arm
+    servo = Servo(arm, ServoSettings(direction_probe_px=0.0, soft_start_s=0.0),
+                  limits_for(arm, acceleration=ACCEL))
+    servo.set_reference(scene.taught_view(robot.home))
+    q, t = robot.home + 0.02, 0.0
+    previous_state, previous_speed = servo.state, 0.0
+    for action in actions:
+        if action == "enable":
+            servo.enable(True, t)
+        elif action == "disable":
+            servo.enable(False, t)
+        elif action == "start":
+            servo.start(q, t)
+        elif action == "stop":
+            servo.stop(t)
+        elif action == "halt":
+            servo.halt("stop_requested", t, "fuzz")
+        elif action in ("frame", "bad_frame"):
+            xy, uv, _ = scene.view(q)
+            if action == "bad_frame":
+                xy = xy.copy()
+                xy[0] = math.nan
+            servo.observe(Observation(scene.keys, uv, xy), q, t)
+        q_tick = np.full(arm.n, math.nan) if action == "nan_joints" else q
+        for _ in range(5):
+            cmd, status = servo.command(q_tick, t, DT)
+            speed = float(np.max(np.abs(cmd)))
+            assert np.all(np.isfinite(cmd))
+            if status["state"] not in ("servoing", "settling", "braking"):
+                assert speed == 0.0, status
+            if previous_state == "braking" and status["state"] in ("braking", "halted"):
+                assert speed <= previous_speed + 1e-12
+            if previous_state in ("servoing", "settling", "braking") and \
+                    status["state"] in ("halted", "converged"):
+                assert speed == 0.0
+            previous_state, previous_speed = status["state"], speed
+            q = q + cmd * DT
+            t += DT

@@ -35,6 +35,18 @@ Inputs (relative names, remap them; ``vservo_node.interface``)
     pose error of the run result.
     Image time = header stamp + ``io.camera_time_offset_s``. The last second of joint states is
     kept and each image is evaluated at the joints interpolated at its time.
+    At the edge: joint states and images stamped more than ``io.stamp_tolerance_s`` from the
+    node's clock (either way), joint states with non-finite positions (these also halt a
+    moving run ``numerical_fault``), undecodable or empty frames are refused, counted
+    (``inputs_refused`` in the diagnostics) and logged (throttled); they never reach the
+    servo and never replace good joint history. An image newer than the newest joint state
+    by more than ``io.joint_state_timeout_s`` or older than the kept second cannot be paired.
+
+Clocks
+    The servo runs on one clock, the node's steady clock: run start, every output tick, frame
+    receipt, and so every timeout and the run time. Stamps (ROS time, simulated with
+    use_sim_time) only pair images with joint states and are checked against the node's ROS
+    clock.
 
 Cycle
     One executor thread runs every callback, timer and service; the image callback only hands
@@ -64,13 +76,27 @@ Commands (reliable QoS, ``io.command_interface``)
     joint command it derives the twist from, but cannot see what the arm does with it.
 
 Watchdogs (steady clock, judged by receipt time, so they work while /clock stalls; they act
-only while a run moves, through ``servo.halt``): image older than ``io.image_timeout_s`` ->
-``image_stale``; joint states older than ``io.joint_state_timeout_s`` -> ``joints_stale``;
+only while a run moves, through ``servo.halt``, and name what they saw in the halt detail):
+no usable image (decoded, stamp sane, size matching camera_info) for ``io.image_timeout_s`` ->
+``image_stale``; no usable joint state for ``io.joint_state_timeout_s`` -> ``joints_stale``;
+usable images none of which could be paired with a joint state for ``io.image_timeout_s`` ->
+``frames_unpaired`` (with the measured skew);
 with ``io.require_permit`` no True on ``cell/motion_permit`` within ``io.permit_timeout_s`` (or
 a False) -> ``permit_withdrawn``; camera_info missing, refused, changed during a run, or of
 another size than the images -> ``camera_info_invalid``. An unexpected exception in a callback
-is logged and halts a moving run with ``internal_error``. Each halt reason is logged once per
-run and appears in the status.
+is logged and halts a moving run with ``internal_error``; the output tick never raises (an
+error inside it brakes blind from the last command, ``Servo.brake_blind``, and publishes the
+zero). The servo itself judges the run timeout, the motion envelope, the follow checks and
+"no observation for io.image_timeout_s" on every output tick, so none of them depends on a
+frame being paired. Each halt reason is logged once per run, with its detail, and appears in
+the status.
+
+Shutdown
+    SIGINT or SIGTERM (once or repeated, to the process or its group, as a terminal Ctrl-C
+    under ``ros2 launch`` sends them) asks for a stop (``node_main.run_node``): the node keeps
+    spinning while a moving run brakes (reason ``shutdown``) and its explicit zero goes out
+    (at most 3 s), refuses enable and start meanwhile, waits up to 0.5 s for the arm's
+    controller to acknowledge the last command, and exits 0 without a traceback.
 
 Outputs
     ``servo/status`` (std_msgs/String, JSON object with ``interface.STATUS_FIELDS``) once per
@@ -459,6 +485,7 @@ class ControllerNode(Node):
         self._runs = 0
         self._shutting_down = False
         self._command_sent = False      # anything published on the command topic yet
+        self._last_tick, self._ticks, self._late_ticks = None, 0, 0
 
         self._frames = FrameSlot()
         self._worker = threading.Thread(target=self._perception_loop, name="perception",
@@ -940,6 +967,11 @@ class ControllerNode(Node):
     def _on_output_timer(self) -> None:
         """The output tick. Never raises: an unexpected error brakes blind (servo.command's
         own guard) or, failing that, publishes an explicit zero."""
+        now = time.monotonic()
+        if self._last_tick is not None:   # timer health: late by more than one period
+            self._ticks += 1
+            self._late_ticks += now - self._last_tick > 2.0 * self._period
+        self._last_tick = now
         try:
             self._output_tick()
         except Exception as exc:  # noqa: BLE001 - the last-resort guard of the output path
@@ -1110,6 +1142,7 @@ class ControllerNode(Node):
                 "not_ready": "; ".join(missing) or "none",
                 "frames_dropped": self._frames.dropped,
                 "inputs_refused": json.dumps(self._refused),
+                "output_ticks": self._ticks, "output_ticks_late": self._late_ticks,
                 "last_image_problem": self._frame_problem or "none",
             }
         if problems or self.arm is None:
