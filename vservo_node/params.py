@@ -153,10 +153,10 @@ SCHEMA: tuple[Param, ...] = (
        tighten="up"),
     _p("io.permit_timeout_s", float, 0.5, "a permit older than this counts as withdrawn",
        unit="s", low=0.01, high=10.0, tighten="down"),
-    _p("io.stamp_tolerance_s", float, 0.5, "images and joint states stamped further than this "
-       "from the node's clock (future or past) are refused and counted: clocks out of step "
-       "must not pair frames with the wrong joints", unit="s", low=0.01, high=60.0,
-       tighten="down"),
+    _p("io.stamp_tolerance_s", float, 2.0, "images and joint states stamped further than this "
+       "from the node's clock (future or past) are refused and counted: a stamp far off (a "
+       "clock out of step, a corrupt message) must not evict good joint history or pair a "
+       "frame with the wrong joints", unit="s", low=0.01, high=60.0, tighten="down"),
     _p("io.camera_time_offset_s", float, 0.0, "added to image stamps (cameras whose stamps lag "
        "the shutter use a negative value)", unit="s", low=-1.0, high=1.0),
     _p("io.image_rectified", bool, False, "the image topic carries rectified images "

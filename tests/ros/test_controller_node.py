@@ -243,6 +243,17 @@ class Rig:
                                  processes=self.procs)
         self.spin(0.3)
 
+    def capture(self, prefix: str = "/", timeout: float = 15.0):
+        """capture_reference, called again while it is refused only for want of a fresh image
+        (on a loaded machine the node may not have processed one yet)."""
+        end = time.monotonic() + timeout
+        while True:
+            response = self.call(Trigger, prefix + itf.SRV_CAPTURE_REFERENCE)
+            if response.success or "no fresh image" not in response.message \
+                    or time.monotonic() > end:
+                return response
+            self.spin(0.2)
+
     def listen_commands(self):
         if self._commands_sub is None:
             self._commands_sub = self.node.create_subscription(
@@ -438,7 +449,7 @@ def test_starts_disabled_and_names_missing_inputs(rig):
 def test_capture_reference_then_enable_arms_without_commanding(rig, processes):
     rig.start_stub()
     expect(rig.enable(True), False, "reference: none loaded")
-    response = rig.trigger(itf.SRV_CAPTURE_REFERENCE)
+    response = rig.capture()
     expect(response, True, "5 features", "loaded")
     path = processes[1] / "references" / "station_t.yaml"
     assert path.is_file() and rig.get_params("reference.file") == [str(path)]
@@ -468,7 +479,7 @@ def test_state_service_table(rig):
     rig.wait_state("armed")
     expect(rig.enable(True), True, "already enabled (state armed)")
     expect(rig.trigger(itf.SRV_STOP), True, "nothing to stop in state 'armed'")
-    expect(rig.trigger(itf.SRV_CAPTURE_REFERENCE), True, "loaded")
+    expect(rig.capture(), True, "loaded")
     expect(rig.enable(False), True, "motion disabled")
     rig.wait_state("disabled")
     expect(rig.enable(True), True, "motion enabled")
@@ -511,7 +522,7 @@ def test_state_service_table(rig):
     rig.spin(0.2)
     assert np.all(rig.commands[-1][1] == 0.0)
     expect(rig.enable(True), True, "already enabled (state converged)")
-    expect(rig.trigger(itf.SRV_CAPTURE_REFERENCE), True, "loaded")
+    expect(rig.capture(), True, "loaded")
     # disabling during a run brakes, ends halted, then disabled
     _begin_run(rig, SMALL_OFFSET)
     expect(rig.enable(False), True, "motion disabled")

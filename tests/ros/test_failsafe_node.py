@@ -59,14 +59,16 @@ def setup(ros_node, tmp_path_factory):
                                            name="controller"),
         "stub": harness.NodeProcess([sys.executable, STUB, "--stub"], "stub_cell"),
     }
-    rig = Rig(ros_node, procs)
-    rig.start_stub()
-    expect(rig.trigger(itf.SRV_CAPTURE_REFERENCE), True, "loaded")
-    expect(rig.enable(True), True, "motion enabled")
-    rig.listen_commands()
-    yield rig, tmp, params_file
-    for proc in procs.values():
-        proc.stop()
+    try:
+        rig = Rig(ros_node, procs)
+        rig.start_stub()
+        expect(rig.capture(), True, "loaded")
+        expect(rig.enable(True), True, "motion enabled")
+        rig.listen_commands()
+        yield rig, tmp, params_file
+    finally:
+        for proc in procs.values():
+            proc.stop()
 
 
 @pytest.fixture
@@ -84,14 +86,18 @@ def rig(setup):
 def _braked_halt(rig, attack, reason: str, *detail_phrases: str) -> dict:
     """Start a run, attack once it moves, and check the halt (module docstring)."""
     _begin_run(rig, LARGE_OFFSET)
+    rig.spin(0.8)             # past the start nod and the soft start: the law commands
     harness.spin_until(rig.node, lambda: rig.commands and np.max(np.abs(rig.commands[-1][1]))
                        > 0.03, 10.0, "the run to move", rig.procs)
     t_attack = time.monotonic()
+    n_status = len(rig.status)
     attack()
-    braking = rig.wait_state("braking", reason=reason, timeout=10.0)
     halted = rig.wait_state("halted", reason=reason, timeout=10.0)
     rig.spin(0.4)
     commands = _commands_since(rig, t_attack)
+    braking = next((s for s in rig.status[n_status:]
+                    if s["state"] == "braking" and s["reason"] == reason), None)
+    assert braking is not None, "the halt braked over several periods"
     first = next(i for i, c in enumerate(commands) if c.tolist() == braking["dq"])
     ramp = np.array(commands[first:])
     speeds = np.max(np.abs(ramp), axis=1)
@@ -215,7 +221,7 @@ def test_group_sigint_twice_mid_run_brakes_sends_the_zero_and_exits_zero(setup):
     rig.controller = node
     rig.clients.clear()
     rig.spin(1.0)
-    expect(rig.trigger(itf.SRV_CAPTURE_REFERENCE), True, "loaded")
+    expect(rig.capture(), True, "loaded")
     expect(rig.enable(True), True, "motion enabled")
     _begin_run(rig, LARGE_OFFSET)
     harness.spin_until(rig.node, lambda: rig.commands and np.max(np.abs(rig.commands[-1][1]))
