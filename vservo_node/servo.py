@@ -255,7 +255,6 @@ class Servo:
         self._last_cmd = np.zeros(arm.n)
         self._law_info = None
         self._margin_scale = 1.0
-        self._envelope_used = 0.0
         self._runs = 0
         self.result: dict[str, Any] | None = None
 
@@ -317,7 +316,6 @@ class Servo:
         self._desired = np.zeros(self.arm.n)
         self.limiter = Limiter(self.limits)  # counts are per run
         self._last_cmd = np.zeros(self.arm.n)
-        self._envelope_used = 0.0
         self.state, self.reason, self.detail, self.result = "servoing", "", "", None
         return True, f"run {self._run.run_id} started"
 
@@ -726,8 +724,7 @@ class Servo:
             self.halt("image_stale", t, f"no image used by the servo for {t - since:.2f} s "
                       f"(io.image_timeout_s = {s.observation_timeout_s} s)")
             return
-        self._envelope_used = self._envelope_fraction(q)
-        if self._envelope_used > 1.0:
+        if self._envelope_fraction(q) > 1.0:
             moved_m, turned = frames.pose_error(run.T_base_tool_start, self.arm.fk(q))
             self.halt("motion_envelope", t, f"tool moved {1e3 * moved_m:.1f} mm / turned "
                       f"{math.degrees(turned):.1f} deg from its start pose (limits."
