@@ -204,6 +204,33 @@ def test_start_is_refused_while_a_joint_is_beyond_its_limit(rig):
     rig.spin(0.5)
 
 
+def test_random_service_sequences_never_command_outside_a_run(rig):
+    """Random enable / disable / start / stop / capture calls (seeded): every call answers
+    with a reason, the node stays alive, and whenever it rests outside a run (disabled,
+    armed, halted, converged) for a while, nothing arrives on the command topic."""
+    rng = np.random.default_rng(7)
+    calls = ["enable", "disable", "start", "stop", "capture"]
+    quiet_checked = 0
+    for call in rng.choice(calls, size=40):
+        if call in ("enable", "disable"):
+            response = rig.enable(call == "enable")
+        elif call == "capture":
+            response = rig.trigger(itf.SRV_CAPTURE_REFERENCE)
+        else:
+            response = rig.trigger(itf.SRV_START if call == "start" else itf.SRV_STOP)
+        assert response.message, call
+        rig.spin(0.15)
+        state = rig.state()
+        if state in ("disabled", "armed", "halted", "converged"):
+            t0, n0 = time.monotonic(), len(rig.status)
+            rig.spin(0.25)
+            if all(s["state"] == state for s in rig.status[n0:]):
+                assert not _commands_since(rig, t0 + 0.05), (call, state)
+                quiet_checked += 1
+    assert rig.controller.alive() and quiet_checked >= 10
+    rig.enable(True)
+
+
 def test_group_sigint_twice_mid_run_brakes_sends_the_zero_and_exits_zero(setup):
     """As a terminal Ctrl-C under ros2 launch: SIGINT to the whole process group, then again
     (launch forwards it). Before: KeyboardInterrupt tracebacks, exit -2, the final zero
