@@ -247,9 +247,10 @@ def save_reference(reference: Reference, path) -> Path:
 
 _KEY_FORMS = {"dots": ("dot", 1), "markers": ("tag", 2), "textured": ("pt", 1)}
 _CAMERA_KEYS = ("width", "height", "distortion_model", "d", "k", "p", "r", "rectified")
-# Largest image side accepted from a file (pixels): beyond any camera, and it bounds the
-# arrays built from it (common practice, no source).
-MAX_IMAGE_SIDE = 1 << 15
+# Largest image side accepted from a file (pixels): an 8K sensor's. It bounds what a reference
+# can make us decode: its taught PNG must have image_size, so at most 8192 x 8192 x 3 bytes
+# (200 MB); a PNG compresses such an image ~1000:1 (common practice, no source).
+MAX_IMAGE_SIDE = 8192
 
 
 class _Reader(EntryReader):
