@@ -259,7 +259,7 @@ def read_bounded(path, max_bytes: int = MAX_BYTES, error: type[ValueError] = Yam
         info = os.stat(path)
         if not stat.S_ISREG(info.st_mode):
             kind = "a folder" if stat.S_ISDIR(info.st_mode) else "not a regular file"
-            raise _fail(error, name, f"is {kind}; expected a YAML file")
+            raise _fail(error, name, f"is {kind}; expected a regular file")
         with open(path, "rb") as f:
             data = f.read(max_bytes + 1)
     except OSError as exc:
@@ -267,7 +267,7 @@ def read_bounded(path, max_bytes: int = MAX_BYTES, error: type[ValueError] = Yam
     if len(data) > max_bytes:
         size = max(info.st_size, len(data))
         raise _fail(error, name, f"file larger than {max_bytes} bytes ({size} bytes): refused "
-                                 "unread; expected a small YAML file")
+                                 f"unread; expected at most {max_bytes} bytes")
     return data
 
 

@@ -592,8 +592,11 @@ def _read_json(path: Path) -> dict:
 def _read_params(path: Path) -> dict:
     """params.yaml as a dict; {} when absent or empty. YamlFileError when it is not plain YAML
     (``yaml_files.load_yaml``), not a mapping, or a controller parameter in it (flat, or in
-    ``{node: {ros__parameters: ...}}`` sections) fails the schema (``params.check_value``), since
-    the metrics take limits and frames from it."""
+    ``{node: {ros__parameters: ...}}`` sections) has the wrong type or list length
+    (``params.check_value`` without ranges and choices, so bags recorded before a range changed
+    still read), since the metrics take limits and frames from it."""
+    import dataclasses
+
     from vservo_node import params as schema
 
     if not path.exists():
@@ -610,7 +613,8 @@ def _read_params(path: Path) -> dict:
         for name, value in schema.flatten(section).items():
             param = schema.BY_NAME.get(name)
             if param is not None:
-                _, reason = schema.check_value(param, value)
+                loose = dataclasses.replace(param, low=None, high=None, choices=())
+                _, reason = schema.check_value(loose, value)
                 if reason:
                     raise YamlFileError(f"bag params {path}: {prefix}{reason}")
     return data
