@@ -15,9 +15,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import yaml
-
 from vservo_node.control.interaction import INTERACTION_ESTIMATES
+from vservo_node.yaml_files import YamlFileError, brief, load_yaml
 
 COMMAND_INTERFACES = ("joint_velocity", "joint_trajectory", "tool_twist", "camera_twist")
 DEPTH_SOURCES = ("constant", "taught", "target_model", "depth_image")
@@ -319,19 +318,48 @@ def flatten(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
     return flat
 
 
+def _flatten_checked(tree: dict, path, where: str, prefix: str = "") -> dict[str, Any]:
+    """``flatten`` for a parameter file: each leaf must be a value or a list of values (what a
+    ROS 2 parameter can hold); YamlFileError naming the key otherwise."""
+    flat: dict[str, Any] = {}
+    for key, value in tree.items():
+        name = f"{prefix}{key}"
+        if isinstance(value, dict):
+            flat.update(_flatten_checked(value, path, where, name + "."))
+        elif isinstance(value, list) and any(isinstance(v, (dict, list)) for v in value):
+            raise YamlFileError(f"{path}: {where}.{name}: a list of mappings or lists; expected "
+                                f"a value or a list of values, got {brief(value)}")
+        else:
+            flat[name] = value
+    return flat
+
+
 def load_params_file(path: str | Path, node_name: str = "vservo") -> dict[str, Any]:
-    """Read the ros__parameters of node_name (or of '/**') from a ROS 2 parameter file."""
-    data = yaml.safe_load(Path(path).read_text()) or {}
+    """Read the ros__parameters of node_name (or of '/**') from a ROS 2 parameter file.
+
+    YamlFileError (a ValueError) naming the file and the key for anything but
+    ``{node: {ros__parameters: {name: value, ...}}}`` (see ``yaml_files.load_yaml``: size cap,
+    no anchors/aliases or tags).
+    """
+    data = load_yaml(path)
+    if data is None:
+        return {}
     if not isinstance(data, dict):
-        raise ValueError(f"{path}: expected a mapping of node names to ros__parameters")
+        raise YamlFileError(f"{path}: top level: expected a mapping of node names to "
+                            f"ros__parameters, got {brief(data)}")
     values: dict[str, Any] = {}
     for key in ("/**", node_name, "/" + node_name):
-        section = data.get(key)
-        if isinstance(section, dict) and isinstance(section.get("ros__parameters"), dict):
-            values.update(flatten(section["ros__parameters"]))
+        if key not in data:
+            continue
+        section = data[key]
+        if not isinstance(section, dict) or not isinstance(section.get("ros__parameters"), dict):
+            raise YamlFileError(f"{path}: {key}: expected a mapping with 'ros__parameters' (a "
+                                f"mapping of parameter names to values), got {brief(section)}")
+        values.update(_flatten_checked(section["ros__parameters"], path,
+                                       f"{key}.ros__parameters"))
     if not values and data:
-        raise ValueError(f"{path}: no ros__parameters for node '{node_name}' or '/**' "
-                         f"(found sections: {', '.join(map(str, data))})")
+        raise YamlFileError(f"{path}: no ros__parameters for node '{node_name}' or '/**' "
+                            f"(found sections: {brief(', '.join(map(str, data)))})")
     return values
 
 

@@ -14,11 +14,16 @@ def register(subparsers) -> None:
 
 
 def _run(args) -> int:
+    import sys
     from pathlib import Path
 
     from vservo_node.record.compare import compare_runs
 
-    table, _ = compare_runs(args.bags, args.out, args.tol)
+    try:
+        table, _ = compare_runs(args.bags, args.out, args.tol)
+    except (OSError, ValueError) as exc:    # YamlFileError of a bag's params or metadata
+        print(f"vservo compare: {exc}", file=sys.stderr)
+        return 1
     print(table)
     print(f"written: {Path(args.out) / 'compare.csv'}, {Path(args.out) / 'compare.html'}")
     return 0

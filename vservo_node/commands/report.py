@@ -15,9 +15,15 @@ def register(subparsers) -> None:
 
 
 def _run(args) -> int:
+    import sys
+
     from vservo_node.record.report import write_report
 
-    page, metrics = write_report(args.bag, args.out, args.tol)
+    try:
+        page, metrics = write_report(args.bag, args.out, args.tol)
+    except (OSError, ValueError) as exc:    # YamlFileError of a bag's params or metadata
+        print(f"vservo report: {exc}", file=sys.stderr)
+        return 1
     converged = {True: "converged", False: "did not converge"}[metrics["converged"]]
     ttt, final = metrics["time_to_tolerance_s"], metrics["final_rms_px"]
     print(f"{metrics['run']}: {converged}; final RMS "

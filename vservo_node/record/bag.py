@@ -35,12 +35,13 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import yaml
 from rosbags.highlevel import AnyReader
 from rosbags.rosbag2 import StoragePlugin, Writer
 from rosbags.typesys import Stores, get_typestore
 
 from vservo_node import interface as itf
+from vservo_node.yaml_files import (METADATA_MAX_BYTES, YamlFileError, brief, dump_yaml,
+                                    load_yaml, screen_yaml)
 
 ROSBAG2_VERSION = 9           # the newest format rosbags 0.11.9 writes (rosbag2 Jazzy and later)
 ROS_DISTRO = "jazzy"
@@ -51,6 +52,9 @@ OPEN_DIR = ".open"
 PARAMS_FILE = "params.yaml"
 RESULT_FILE = "result.json"
 METADATA_FILE = "metadata.yaml"
+# params.yaml holds robot_description (the URDF text, up to ~1 MB for large robots) besides the
+# controller parameters: the cap of a URDF (control/kinematics.py), not of our small files.
+PARAMS_MAX_BYTES = 16 << 20
 
 IMAGE = "sensor_msgs/msg/Image"
 COMPRESSED_IMAGE = "sensor_msgs/msg/CompressedImage"
@@ -151,7 +155,7 @@ class RunRecorder:
         self._failure: Exception | None = None   # what stopped the ageing thread, if anything
         (self.bag_dir / OPEN_DIR).mkdir()
         if params is not None:
-            _write_atomic(self.bag_dir / PARAMS_FILE, yaml.safe_dump(params, sort_keys=False))
+            _write_atomic(self.bag_dir / PARAMS_FILE, dump_yaml(params, sort_keys=False))
         self._write_metadata()
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._age_loop, name="RunRecorder", daemon=True)
@@ -314,7 +318,7 @@ class RunRecorder:
             "ros_distro": ROS_DISTRO,
         }
         _write_atomic(self.bag_dir / METADATA_FILE,
-                      yaml.safe_dump({"rosbag2_bagfile_information": info}, sort_keys=False))
+                      dump_yaml({"rosbag2_bagfile_information": info}, sort_keys=False))
 
     def _compress(self, raw: bytes) -> bytes | None:
         """sensor_msgs/Image CDR -> sensor_msgs/CompressedImage CDR; None if not encodable."""
@@ -493,9 +497,15 @@ def load_run(bag: str | Path) -> RunData:
 
     Uses rosbags' AnyReader (Jazzy typestore for bags without embedded definitions) and picks
     topics by interface name and type; params.yaml and result.json are read when present.
+    A bag folder's metadata.yaml is screened first (``yaml_files.screen_yaml``: size, syntax,
+    no anchors/aliases or tags) and params.yaml read through ``yaml_files.load_yaml``; either
+    refused is a YamlFileError (a ValueError) naming the file and the place.
     """
     path = Path(bag)
     folder = path if path.is_dir() else path.parent
+    if path.is_dir() and (path / METADATA_FILE).exists():
+        screen_yaml(path / METADATA_FILE, max_bytes=METADATA_MAX_BYTES, prefix="bag metadata ")
+    params = _read_params(folder / PARAMS_FILE)
     rows: dict[str, tuple[list, list]] = {}
     joints: list = []
     status: list[tuple[int, dict]] = []
@@ -572,7 +582,7 @@ def load_run(bag: str | Path) -> RunData:
             "distortion_model": info.distortion_model},
         robot_description=(latest["robot_description"].data
                            if "robot_description" in latest else None),
-        params=_read_params(folder / PARAMS_FILE), result=result, skipped=skipped)
+        params=params, result=result, skipped=skipped)
 
 
 def _read_json(path: Path) -> dict:
@@ -580,7 +590,31 @@ def _read_json(path: Path) -> dict:
 
 
 def _read_params(path: Path) -> dict:
-    """params.yaml as a dict; {} when absent or empty."""
+    """params.yaml as a dict; {} when absent or empty. YamlFileError when it is not plain YAML
+    (``yaml_files.load_yaml``), not a mapping, or a controller parameter in it (flat, or in
+    ``{node: {ros__parameters: ...}}`` sections) has the wrong type or list length
+    (``params.check_value`` without ranges and choices, so bags recorded before a range changed
+    still read), since the metrics take limits and frames from it."""
+    import dataclasses
+
+    from vservo_node import params as schema
+
     if not path.exists():
         return {}
-    return yaml.safe_load(path.read_text(encoding="utf8")) or {}
+    data = load_yaml(path, max_bytes=PARAMS_MAX_BYTES, prefix="bag params ")
+    if data is None:
+        return {}
+    if not isinstance(data, dict):
+        raise YamlFileError(f"bag params {path}: top level: expected a mapping of parameter "
+                            f"names to values, got {brief(data)}")
+    sections = [(f"{k}.ros__parameters.", v["ros__parameters"]) for k, v in data.items()
+                if isinstance(v, dict) and isinstance(v.get("ros__parameters"), dict)]
+    for prefix, section in sections or [("", data)]:
+        for name, value in schema.flatten(section).items():
+            param = schema.BY_NAME.get(name)
+            if param is not None:
+                loose = dataclasses.replace(param, low=None, high=None, choices=())
+                _, reason = schema.check_value(loose, value)
+                if reason:
+                    raise YamlFileError(f"bag params {path}: {prefix}{reason}")
+    return data

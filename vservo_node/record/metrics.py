@@ -18,9 +18,10 @@ from pathlib import Path
 import numpy as np
 
 from vservo_node.control.frames import transform_from_xyz_quat
-from vservo_node.control.kinematics import ArmModel
+from vservo_node.control.kinematics import URDF_MAX_BYTES, ArmModel
 from vservo_node.params import flatten
 from vservo_node.record.bag import RunData
+from vservo_node.yaml_files import read_bounded
 
 HALT_STATES = ("braking", "halted")
 
@@ -45,7 +46,9 @@ def arm_of_run(run: RunData) -> ArmModel | None:
     if not urdf and p.get("robot.urdf_path"):
         path = Path(p["robot.urdf_path"])
         path = path if path.is_absolute() else Path(run.path) / path
-        urdf = path.read_text() if path.exists() else None
+        # bounded and regular files only: the path comes from the bag (a hostile /dev/zero)
+        urdf = (read_bounded(path, URDF_MAX_BYTES, prefix="robot.urdf_path of the bag: ")
+                .decode("utf-8", "replace") if path.exists() else None)
     if not urdf:
         return None
     frames = (p.get("robot.base_frame", "base_link"), p.get("robot.tool_frame", "tool0"))

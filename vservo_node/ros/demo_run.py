@@ -25,7 +25,6 @@ from pathlib import Path
 
 import numpy as np
 import rclpy
-import yaml
 from rclpy.node import Node
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool, String
@@ -39,6 +38,7 @@ from vservo_node.ros import harness, qos
 from vservo_node.sim import SimCell, load_scenario
 from vservo_node.vision.image_io import to_bgr_or_mono
 from vservo_node.vision.reference import save_reference
+from vservo_node.yaml_files import dump_yaml
 
 SUMMARY_KEYS = ("converged", "time_s", "final_rms_px", "final_pose_error_mm",
                 "final_pose_error_deg", "peak_joint_speed_ratio", "peak_tcp_speed_mps",
@@ -82,7 +82,7 @@ def controller_overrides(scenario, reference_file: Path, folder: Path,
     for section, entries in (extra or {}).items():
         values.setdefault(section, {}).update(entries)
     path = folder / "controller_overrides.yaml"
-    path.write_text(yaml.safe_dump({"vservo": {"ros__parameters": values}}))
+    path.write_text(dump_yaml({"vservo": {"ros__parameters": values}}))
     return path
 
 
