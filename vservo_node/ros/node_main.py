@@ -1,8 +1,8 @@
 """The start / spin / shut-down sequence shared by the console entry points of our nodes.
 
 ``vservo_node``, ``vservo_recorder`` and ``vservo_sim`` all set up the middleware, build one
-node, spin it on a single-threaded executor until SIGINT/SIGTERM or an external shutdown, then
-stop the node's own work before destroying it and the context.
+node, spin it on an executor (single-threaded unless the node needs more) until SIGINT/SIGTERM
+or an external shutdown, then stop the node's own work before destroying it and the context.
 """
 from __future__ import annotations
 
@@ -12,7 +12,7 @@ from collections.abc import Callable
 from typing import TypeVar
 
 import rclpy
-from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
+from rclpy.executors import Executor, ExternalShutdownException, SingleThreadedExecutor
 from rclpy.node import Node
 from rclpy.signals import SignalHandlerOptions
 
@@ -28,7 +28,8 @@ def _interrupt(signum, frame):
 def run_node(program: str, make_node: Callable[[], N], stop: Callable[[N], None], args=None, *,
              start_errors: tuple[type[Exception], ...] = (),
              start: Callable[[N], None] | None = None,
-             own_signals: bool = False) -> N | None:
+             own_signals: bool = False,
+             make_executor: Callable[[], Executor] = SingleThreadedExecutor) -> N | None:
     """Build a node with ``make_node``, spin it until shutdown, then clean up.
 
     ``args`` are the command-line arguments for ``rclpy.init`` (``--ros-args``). An exception in
@@ -38,6 +39,8 @@ def run_node(program: str, make_node: Callable[[], N], stop: Callable[[N], None]
     With ``own_signals`` rclpy installs no signal handlers: SIGINT/SIGTERM raise
     KeyboardInterrupt in the spinning thread instead, so the context outlives them long enough
     for ``stop`` to publish (the controller's final zero twist, the recorder's bag closing).
+    ``make_executor`` builds the executor (default single-threaded; the simulated cell takes a
+    multi-threaded one so its move services can wait while commands keep arriving).
     Returns the stopped, destroyed node (its attributes stay readable).
     """
     dds.use_shm_profile()
@@ -53,7 +56,7 @@ def run_node(program: str, make_node: Callable[[], N], stop: Callable[[N], None]
         print(f"{program}: cannot start: {exc}", file=sys.stderr)
         rclpy.try_shutdown()
         return None
-    executor = SingleThreadedExecutor()
+    executor = make_executor()
     executor.add_node(node)
     if start is not None:
         start(node)
