@@ -87,9 +87,12 @@ def cell(ros_node, tmp_path_factory):
     ready once the controller publishes status (robot model loaded, images flowing)."""
     folder = tmp_path_factory.mktemp("operator")
     overrides = folder / "overrides.yaml"
-    # max_run_s: room for the slow run of the last test (commands run while it moves)
+    # max_run_s and the input timeouts: room for the held run of the last test on a busy
+    # machine (these tests are about the commands, not the watchdogs: tests/e2e).
     overrides.write_text(f"vservo:\n  ros__parameters:\n    reference:\n"
-                         f"      directory: {folder}\n    control:\n      max_run_s: 300.0\n")
+                         f"      directory: {folder}\n    control:\n      max_run_s: 300.0\n"
+                         f"    io:\n      image_timeout_s: 2.0\n"
+                         f"      joint_state_timeout_s: 1.0\n")
     processes = [demo_run.start_sim(SCENARIO), demo_run.start_controller(overrides)]
     try:
         harness.wait_for_message(ros_node, itf.TOPIC_STATUS, String, qos.STATE, 90.0,
@@ -180,20 +183,24 @@ def test_teach_in_the_sim_then_enable_and_start_converges(cell, ros_node):
 
 def test_refusals_during_a_run_and_ctrl_c_stops_it(cell, ros_node):
     processes = cell[0]
-    # A slow run: speed scale 0.1 (cell/speed_scale), from the start pose.
+    # A run held in servoing: speed scale 0 (cell/speed_scale) makes every command zero, so
+    # the run neither moves nor ends however long the commands below take, while the
+    # controller still commands the arm.
     scale = ros_node.create_publisher(Float64, itf.TOPIC_SPEED_SCALE, qos.STATE)
     harness.wait_for_subscriber(ros_node, itf.TOPIC_SPEED_SCALE, 10.0, processes)
     go_start = harness.ready_client(ros_node, Trigger, itf.SRV_SIM_GO_TO_START, 20.0, processes)
     watch = Cli("watch", "--period", "0.2")
     try:
         for _ in range(5):
-            scale.publish(Float64(data=0.1))
+            scale.publish(Float64(data=0.0))
             time.sleep(0.05)
         assert harness.call_service(ros_node, go_start, Trigger.Request(), 60.0,
                                     processes).success
         run = Cli("start", "--wait")
         harness.wait_until(lambda: bool(run.lines) or run.popen.poll() is not None, 60.0,
                            "the start reply", processes)
+        if run.popen.poll() is not None:
+            run.wait()
         assert run.lines and run.lines[0].endswith("started"), run.describe()
         teach_sim = vservo("teach", "--sim")
         assert teach_sim.popen.returncode == 1, teach_sim.describe()
@@ -202,7 +209,7 @@ def test_refusals_during_a_run_and_ctrl_c_stops_it(cell, ros_node):
         teach = vservo("teach")
         assert teach.popen.returncode == 1, teach.describe()
         assert "capture_reference refused: state: cannot teach while a run moves" in teach.err
-        assert run.popen.poll() is None, "the slow run ended early: " + run.describe()
+        assert run.popen.poll() is None, "the held run ended early: " + run.describe()
         code = run.interrupt()
         assert code == 130, run.describe()
         _no_traceback(run)
