@@ -488,7 +488,7 @@ def main(args=None) -> int:
     # Two threads: a move service waits for the arm while commands keep arriving.
     node = run_node("vservo_sim", SimCellNode, SimCellNode.stop, args,
                     start_errors=(ValueError, FileNotFoundError, ParameterException),
-                    start=SimCellNode.start,
+                    start=SimCellNode.start, own_signals=True,
                     make_executor=lambda: MultiThreadedExecutor(num_threads=2))
     if node is None:
         return 2
