@@ -55,6 +55,9 @@ def test_status_line_has_every_field_and_dashes_for_missing():
     assert operator.status_line({"state": "armed", "rms_px": None, "reason": ""}, wall) == \
         "03:04:05.250 state=armed reason=- run=- rms_px=- matched=-"
     assert "rms_px=-" in operator.status_line({"rms_px": math.nan}, wall)
+    assert operator.status_line({"state": "halted", "reason": "image_stale",
+                                 "detail": "no image for 0.41 s"}, wall).endswith(
+        "matched=- detail=no image for 0.41 s")
 
 
 def test_result_line_in_words():
@@ -68,6 +71,9 @@ def test_result_line_in_words():
               "final_rms_px": None, "final_pose_error_mm": None, "final_pose_error_deg": None}
     assert operator.result_line(halted) == ("halted: image_stale (no fresh image) after 1.00 s, "
                                             "final RMS error - px (run r2)")
+    halted["detail"] = "no image used by the servo for 0.40 s"
+    assert operator.result_line(halted).endswith(
+        "(run r2)\n  detail: no image used by the servo for 0.40 s")
 
 
 def test_watch_line_marks_stale_status():
@@ -89,3 +95,16 @@ def test_started_run_id():
 def test_sim_service_names_are_relative():
     for name in (interface.SRV_SIM_GO_TO_TAUGHT, interface.SRV_SIM_GO_TO_START):
         assert not name.startswith(("/", "~"))
+
+
+def test_bring_up_chapter_names_every_topic_and_service():
+    """The README's tables of the real-arm chapter keep up with vservo_node/interface.py
+    (the recorder's own topics and the sim's target truth are not the controller's)."""
+    from pathlib import Path
+    text = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    chapter = text.split("## Bringing up a real arm", 1)[1].split("\n## ", 1)[0]
+    skip = {"TOPIC_LAST_BAG", "TOPIC_RECORDER_READY", "TOPIC_SIM_TARGET_POSE_TRUTH"}
+    names = {k: v for k, v in vars(interface).items()
+             if k.startswith(("TOPIC_", "SRV_")) and k not in skip}
+    missing = [f"{k} = {v!r}" for k, v in names.items() if f"`{v}`" not in chapter]
+    assert not missing, "not in README 'Bringing up a real arm': " + ", ".join(missing)

@@ -63,12 +63,14 @@ def _number(value, spec: str) -> str:
 
 
 def status_line(status: dict, wall_s: float) -> str:
-    """One line of `vservo status`: time, state, reason, run id, RMS error, matched features.
-    Fields the record lacks show as ``-``."""
-    return (f"{clock_stamp(wall_s)} state={status.get('state') or '-'} "
+    """One line of `vservo status`: time, state, reason, run id, RMS error, matched features,
+    and last, when the record has one, the halt's detail (what the check saw). Fields the
+    record lacks show as ``-``."""
+    line = (f"{clock_stamp(wall_s)} state={status.get('state') or '-'} "
             f"reason={status.get('reason') or '-'} run={status.get('run_id') or '-'} "
             f"rms_px={_number(status.get('rms_px'), '.2f')} "
             f"matched={_number(status.get('n_matched'), 'd')}")
+    return line + (f" detail={status['detail']}" if status.get("detail") else "")
 
 
 def watch_line(status: dict, age_s: float) -> str:
@@ -88,7 +90,7 @@ def watch_line(status: dict, age_s: float) -> str:
 
 
 def result_line(result: dict) -> str:
-    """A run result (interface.RESULT_FIELDS) in words."""
+    """A run result (interface.RESULT_FIELDS) in words; a halt's detail on a second line."""
     if result.get("converged"):
         head = "converged"
     else:
@@ -101,7 +103,10 @@ def result_line(result: dict) -> str:
     if result.get("final_pose_error_mm") is not None:
         line += (f", pose error {_number(result.get('final_pose_error_mm'), '.3f')} mm "
                  f"{_number(result.get('final_pose_error_deg'), '.3f')} deg (simulator truth)")
-    return line + f" (run {result.get('run_id') or '?'})"
+    line += f" (run {result.get('run_id') or '?'})"
+    if not result.get("converged") and result.get("detail"):
+        line += f"\n  detail: {result['detail']}"
+    return line
 
 
 _RUN_STARTED = re.compile(r"^run (\S+) started")
