@@ -2,9 +2,12 @@
 
 Free-running cell (real time, wall-clock stamps): rates, stamp consistency, velocity and
 trajectory commands, command timeout, refusals, the go_to_*_pose moves and their refusals,
-the publish_clock default (lock-step mode: test_sim_node_lock_step.py).
+the publish_clock default, the skip ahead after a stall (lock-step mode:
+test_sim_node_lock_step.py).
 Tolerances on rates are common practice for a loaded 2-core machine (no source).
 """
+import os
+import signal
 import time
 
 import numpy as np
@@ -12,6 +15,7 @@ import pytest
 from geometry_msgs.msg import PoseStamped
 from rosgraph_msgs.msg import Clock
 from scipy.spatial.transform import Rotation
+from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray, String
 from std_srvs.srv import Trigger
 from trajectory_msgs.msg import JointTrajectory
@@ -82,10 +86,17 @@ def test_rates_stamps_and_frames(free_sim, scenario, ros_node):
         assert meta["mean"] > 0  # something was rendered
     # Frames are exposed on the tick nearest each camera period: each interval is within one
     # tick of the period, and the mean interval is the period.
+    # A frame lost on the way (best effort) or skipped by a cell too busy for real time leaves
+    # a gap of whole periods, still on the grid; such gaps stay rare (common practice, no
+    # source).
     frame_s = np.array([meta["stamp_ns"] for _, meta in col.images]) * 1e-9
-    assert np.all(np.abs(np.diff(frame_s) - 1 / camera_rate) <= 1 / JOINT_STATE_RATE + 1e-9)
-    mean_period = (frame_s[-1] - frame_s[0]) / (len(frame_s) - 1)
-    assert abs(mean_period - 1 / camera_rate) <= 1 / JOINT_STATE_RATE / (len(frame_s) - 1)
+    periods = np.round(np.diff(frame_s) * camera_rate)
+    assert np.all(periods >= 1)
+    assert np.all(np.abs(np.diff(frame_s) - periods / camera_rate) <= 1 / JOINT_STATE_RATE
+                  + 1e-9)
+    assert np.mean(periods == 1) >= 0.8, f"{np.sum(periods > 1)} gaps in {len(periods)}"
+    mean_period = (frame_s[-1] - frame_s[0]) / periods.sum()
+    assert abs(mean_period - 1 / camera_rate) <= 1 / JOINT_STATE_RATE / periods.sum()
 
 
 def test_latched_description_and_taught_pose(free_sim, ros_node):
@@ -306,3 +317,43 @@ def test_publish_clock_follows_use_sim_time(ros_node, free_sim):
         assert clock.clock.sec < 3600
     finally:
         stop_sim(proc)
+
+
+def test_wall_clock_stamps_skip_ahead_when_the_cell_cannot_keep_up(free_sim, ros_node):
+    """A sim that gets 10 % of the wall time (SIGSTOP/SIGCONT, as on a machine too busy for
+    real time) does not fall ever further behind with its wall-clock stamps: it skips ahead
+    to the wall clock and says so in its log."""
+    import threading
+    proc, col = free_sim
+    lags = []
+    sub = ros_node.create_subscription(
+        JointState, interface.TOPIC_JOINT_STATES,
+        lambda m: lags.append(time.time() - stamp_ns(m) * 1e-9), qos.STATE)
+    pid, done = proc.popen.pid, threading.Event()
+
+    def throttle():
+        end = time.monotonic() + 4.0
+        try:
+            while time.monotonic() < end:
+                os.kill(pid, signal.SIGCONT)
+                time.sleep(0.01)
+                os.kill(pid, signal.SIGSTOP)
+                time.sleep(0.09)
+        finally:
+            os.kill(pid, signal.SIGCONT)
+            done.set()
+
+    try:
+        thread = threading.Thread(target=throttle, daemon=True)
+        thread.start()
+        col.spin_for(3.0, [proc])
+        lags.clear()
+        harness.spin_until(ros_node, done.is_set, 10.0, "the end of the throttling", [proc])
+        # Messages of the last second of throttling: the least delayed one shows where the
+        # stamps are. Without the skip they lag by ~3 s by then (10 % of real time).
+        assert lags and min(lags) < 0.5, f"stamps {min(lags):.3f} s behind the wall clock"
+        harness.wait_until(lambda: "behind the wall clock" in proc.output(), 5.0,
+                           "the skip in the node's log", [proc])
+    finally:
+        done.wait(10.0)
+        ros_node.destroy_subscription(sub)

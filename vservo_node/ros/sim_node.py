@@ -7,7 +7,9 @@ stamp (the exposure time) equals the stamp of a joint state published on the sam
 ``publish_clock`` the stamps are simulated time from 0 and ``/clock`` carries it (subscribers
 set ``use_sim_time``); without it they are the wall clock at start plus simulated time, which
 only stays honest at ``real_time_factor`` 1 in free-running mode, so other settings require
-``publish_clock``. ``publish_clock`` defaults to this node's own ``use_sim_time``, so a launch
+``publish_clock``. Without it the loop keeps its stamps honest on a machine too busy for real
+time: more than 0.1 s behind the wall clock, it skips ahead without publishing the skipped
+ticks (logged). ``publish_clock`` defaults to this node's own ``use_sim_time``, so a launch
 that sets ``use_sim_time`` on every node gets a simulator that publishes the clock they follow
 (and stamps in it), and a plain start gets wall-clock stamps; set it explicitly only to differ
 (a warning says so when ``use_sim_time`` is true and ``publish_clock`` false).
@@ -102,6 +104,10 @@ ARRIVED_RAD = 1e-6
 AT_REST_RAD_S = 1e-5
 # Wall seconds a move may take beyond its planned duration before the service gives up.
 MOVE_GRACE_S = 10.0
+# Free-running on wall-clock stamps: further behind the wall clock than this, the loop skips
+# ahead (a few camera frames; the controller's stamp checks allow far more; common practice,
+# no source).
+MAX_LAG_S = 0.1
 
 
 def _descriptor(name: str, spec: _Spec) -> ParameterDescriptor:
@@ -193,6 +199,7 @@ class SimCellNode(Node):
         self._last_command_rx = -np.inf        # monotonic time of the last controller command
         self._speed = 0.0                      # fastest true joint speed at the last tick
         self._last_q = self.cell.arm.true_state()[0]   # true joints at the last tick
+        self.skipped_s = 0.0                   # simulated time skipped to keep up (no clock)
 
         self._pub_joints = self.create_publisher(JointState, interface.TOPIC_JOINT_STATES,
                                                  qos.STATE)
@@ -384,6 +391,9 @@ class SimCellNode(Node):
     # ----------------------------------------------------------------- loop
     def _run(self) -> None:
         try:
+            # The simulated camera is built on its first render (seconds on a busy machine):
+            # build it before simulated time starts, so the first frame is not late.
+            self.cell.render(0.0)
             if self.lock_step:
                 self._run_lock_step()
             else:
@@ -398,9 +408,25 @@ class SimCellNode(Node):
     def _run_free(self) -> None:
         tick, frame = 0, 0
         pace = _Pacer(self.rtf)
+        if not self.publish_clock:   # wall-clock stamps: simulated time 0 is now
+            self._stamp_origin_ns = time.time_ns()
         self._publish_tick(tick, with_frame=True)
         while not self._stop.is_set():
             self._apply(self._take_command(None), self.schedule.time(tick))
+            behind = pace.behind(self.schedule.time(tick))
+            if not self.publish_clock and behind > MAX_LAG_S:
+                # Stamps are the wall clock: rather than stamp late, skip to it (publishing
+                # nothing in between), as an overloaded camera or drive drops samples.
+                skip = int(behind * self.schedule.tick_rate)
+                self.cell.step(skip * self.schedule.dt)
+                tick += skip
+                while self.schedule.frame_tick(frame + 1) <= tick:
+                    frame += 1
+                self.skipped_s += skip * self.schedule.dt
+                self.get_logger().warning(
+                    f"the simulation fell {behind:.2f} s behind the wall clock (machine too "
+                    f"busy for real time); skipped ahead ({self.skipped_s:.2f} s so far)",
+                    throttle_duration_sec=5.0)
             self.cell.step(self.schedule.dt)
             tick += 1
             exposed = tick == self.schedule.frame_tick(frame + 1)
@@ -475,6 +501,12 @@ class _Pacer:
     def __init__(self, rtf: float):
         self.rtf = rtf
         self.wall_start = time.monotonic()
+
+    def behind(self, sim_time: float) -> float:
+        """Wall seconds by which ``sim_time`` is late (0 when on time, or for rtf 0)."""
+        if self.rtf <= 0:
+            return 0.0
+        return max(0.0, time.monotonic() - (self.wall_start + sim_time / self.rtf))
 
     def wait_until(self, sim_time: float) -> None:
         if self.rtf > 0:
