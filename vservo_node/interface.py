@@ -40,6 +40,10 @@ SIM_NODE = "vservo_sim"
 TOPIC_SIM_CAMERA_POSE_TRUTH = "sim/camera_pose_truth"   # geometry_msgs/PoseStamped, base frame
 TOPIC_SIM_TARGET_POSE_TRUTH = "sim/target_pose_truth"   # geometry_msgs/PoseStamped, base frame
 TOPIC_SIM_TAUGHT_POSE = "sim/taught_camera_pose"        # geometry_msgs/PoseStamped, latched
+# services (std_srvs/Trigger): move the simulated arm itself, at bounded speed, to the
+# scenario's taught pose or back to its start pose; answered once the arm rests there
+SRV_SIM_GO_TO_TAUGHT = "sim/go_to_taught_pose"
+SRV_SIM_GO_TO_START = "sim/go_to_start_pose"
 
 # --- run recorder node (executable `vservo_recorder`) --------------------------------------
 RECORDER_NODE = "vservo_recorder"

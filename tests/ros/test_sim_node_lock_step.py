@@ -86,3 +86,22 @@ def test_lock_step_advances_one_frame_per_command(lock_sim, scenario, ros_node):
     np.testing.assert_allclose(q_end[0] - q_start[0], travel, rtol=0.02)
     np.testing.assert_allclose(q_end[1:], q_start[1:], atol=10 * dyn.joint_noise_std + 1e-9)
     ros_node.destroy_publisher(pub)
+
+
+def test_lock_step_cell_moves_to_the_taught_pose_by_itself(lock_sim, scenario, ros_node):
+    """A go_to_taught_pose move advances the lock-stepped cell without controller commands;
+    afterwards the cell waits for commands again (no new frame but the resent one)."""
+    from std_srvs.srv import Trigger
+    proc, col, names, _ = lock_sim
+    client = harness.ready_client(ros_node, Trigger, interface.SRV_SIM_GO_TO_TAUGHT, 20.0,
+                                  [proc])
+    col.clear()
+    reply = harness.call_service(ros_node, client, Trigger.Request(), 60.0, [proc])
+    assert reply.success, reply.message
+    harness.spin_until(ros_node, lambda: bool(col.joints) and np.allclose(
+        col.last_q(names)[0], scenario.q_taught, atol=1e-4), 10.0, "the taught joints", [proc])
+    assert len({meta["stamp_ns"] for _, meta in col.images}) > 10, "the cell did not advance"
+    col.spin_for(0.5, [proc])   # drain
+    col.clear()
+    col.spin_for(0.6, [proc])   # lock_step_resend is 1 s: at most one resent frame
+    assert len({meta["stamp_ns"] for _, meta in col.images}) <= 1

@@ -1,8 +1,8 @@
 """The start / spin / shut-down sequence shared by the console entry points of our nodes.
 
 ``vservo_node``, ``vservo_recorder`` and ``vservo_sim`` all set up the middleware, build one
-node, spin it on a single-threaded executor until SIGINT/SIGTERM or an external shutdown, then
-stop the node's own work before destroying it and the context.
+node, spin it on an executor (single-threaded unless the node needs more) until SIGINT/SIGTERM
+or an external shutdown, then stop the node's own work before destroying it and the context.
 
 Signals (``own_signals``): a terminal Ctrl-C reaches every process of the group, and
 ``ros2 launch`` then signals its children again (SIGINT, then SIGTERM after its grace period).
@@ -20,7 +20,7 @@ from collections.abc import Callable
 from typing import TypeVar
 
 import rclpy
-from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
+from rclpy.executors import Executor, ExternalShutdownException, SingleThreadedExecutor
 from rclpy.node import Node
 from rclpy.signals import SignalHandlerOptions
 
@@ -48,7 +48,8 @@ def run_node(program: str, make_node: Callable[[], N], stop: Callable[[N], None]
              start: Callable[[N], None] | None = None,
              own_signals: bool = False,
              finish: Callable[[N], bool] | None = None,
-             finish_timeout_s: float = 3.0) -> N | None:
+             finish_timeout_s: float = 3.0,
+             make_executor: Callable[[], Executor] = SingleThreadedExecutor) -> N | None:
     """Build a node with ``make_node``, spin it until shutdown, then clean up.
 
     ``args`` are the command-line arguments for ``rclpy.init`` (``--ros-args``). An exception in
@@ -58,8 +59,9 @@ def run_node(program: str, make_node: Callable[[], N], stop: Callable[[N], None]
     until ``finish(node)`` returns True or ``finish_timeout_s`` passes (the controller brakes
     there); then ``stop`` runs, before the executor and the node are destroyed.
     With ``own_signals`` rclpy installs no signal handlers and SIGINT/SIGTERM are handled as
-    the module docstring says. Returns the stopped, destroyed node (its attributes stay
-    readable).
+    the module docstring says. ``make_executor`` builds the executor (default single-threaded;
+    the simulated cell takes a multi-threaded one so its move services can wait while commands
+    keep arriving). Returns the stopped, destroyed node (its attributes stay readable).
     """
     if own_signals:
         install_signal_handlers()
@@ -74,7 +76,7 @@ def run_node(program: str, make_node: Callable[[], N], stop: Callable[[N], None]
         print(f"{program}: cannot start: {exc}", file=sys.stderr)
         rclpy.try_shutdown()
         return None
-    executor = SingleThreadedExecutor()
+    executor = make_executor()
     executor.add_node(node)
     if start is not None:
         start(node)
