@@ -26,7 +26,8 @@ Inputs (relative names, remap them; ``vservo_node.interface``)
     ``camera/image`` (sensor_msgs/Image, read as a view of the serialized bytes, no copy, for
     bgr8/mono8/mono16) or ``camera/image/compressed`` when ``io.compressed_image``; sensor-data
     QoS. ``camera/camera_info`` (sensor-data QoS). ``joint_states`` (joints matched by name;
-    reliable). ``camera/depth`` (aligned, 16UC1 mm or 32FC1 m) when ``depth.source`` is
+    best-effort subscription, so reliable and best-effort publishers both match).
+    ``camera/depth`` (aligned, 16UC1 mm or 32FC1 m) when ``depth.source`` is
     ``depth_image``. Robot model: the file ``robot.urdf_path``, else the ``robot_description``
     parameter, else the ``robot_description`` topic (std_msgs/String, transient local).
     ``cell/speed_scale`` (std_msgs/Float64, clipped to [0, 1]) scales every speed limit.
@@ -1094,7 +1095,9 @@ class ControllerNode(Node):
             return
         self._last_state = state
         if frame is not None:
-            status["t"], status["cycle_ms"] = frame
+            status["t"], status["cycle_ms"] = frame    # the image's stamp
+        else:
+            status["t"] = self._now()   # ROS time too (the servo's own clock is steady)
         self._pub_status.publish(String(data=json.dumps(json_safe(
             {k: status.get(k) for k in itf.STATUS_FIELDS}))))
 
@@ -1372,9 +1375,10 @@ class ControllerNode(Node):
         self.create_subscription(CameraInfo, itf.TOPIC_CAMERA_INFO, self._on_camera_info,
                                  qos.SENSOR_DATA)
         self.create_subscription(JointState, itf.TOPIC_JOINT_STATES, self._on_joint_state,
-                                 qos.STATE)
-        self.create_subscription(Float64, itf.TOPIC_SPEED_SCALE, self._on_speed_scale, qos.STATE)
-        self.create_subscription(Bool, itf.TOPIC_MOTION_PERMIT, self._on_permit, qos.STATE)
+                                 qos.STATE_IN)
+        self.create_subscription(Float64, itf.TOPIC_SPEED_SCALE, self._on_speed_scale,
+                                 qos.STATE_IN)
+        self.create_subscription(Bool, itf.TOPIC_MOTION_PERMIT, self._on_permit, qos.STATE_IN)
         self.create_subscription(PoseStamped, itf.TOPIC_SIM_CAMERA_POSE_TRUTH,
                                  functools.partial(self._on_truth, "camera"), qos.STATE)
         self.create_subscription(PoseStamped, itf.TOPIC_SIM_TAUGHT_POSE,

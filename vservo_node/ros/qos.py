@@ -22,6 +22,13 @@ STATE = QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=10,
                    reliability=ReliabilityPolicy.RELIABLE,
                    durability=DurabilityPolicy.VOLATILE)
 
+# Inputs from the cell the controller subscribes to (joint states, speed scale, permit):
+# best-effort subscriptions, so a best-effort publisher (some drivers publish joint states so)
+# matches as well as a reliable one; depth 10 as STATE.
+STATE_IN = QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=10,
+                      reliability=ReliabilityPolicy.BEST_EFFORT,
+                      durability=DurabilityPolicy.VOLATILE)
+
 # Motion commands: reliable; only the newest command matters, an older one still queued would
 # move the arm on stale data.
 COMMANDS = QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=1,
@@ -39,7 +46,8 @@ CLOCK = QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=1,
                    reliability=ReliabilityPolicy.RELIABLE,
                    durability=DurabilityPolicy.VOLATILE)
 
-PROFILES = {"sensor_data": SENSOR_DATA, "state": STATE, "commands": COMMANDS,
+PROFILES = {"sensor_data": SENSOR_DATA, "state": STATE, "state_in": STATE_IN,
+            "commands": COMMANDS,
             "latched": LATCHED, "clock": CLOCK}
 
 
