@@ -290,6 +290,49 @@ def test_alternatives_considered():
         assert (np.max(np.abs(images[..., 1])) > HALF_HEIGHT) == leaves
 
 
+def test_near_the_goal_the_scheme_and_point_ibvs_command_the_same_twist():
+    """Why the servo does not hand over to point IBVS for the last fraction of a millimetre
+    (module docstring): both laws invert a full-rank linearization of the same pose error
+    (e ~ L delta for their features; Chaumette & Hutchinson 2006, eq. 1-5), so
+    -lambda L^+ e ~ -lambda delta for both, and their twists differ only at second order:
+    relative difference < 1 % at ~0.3 mm / 0.06 deg, and shrinking in proportion."""
+    board = _board()
+    xy_taught, z_taught = _seen(board, np.eye(4))
+    rng = np.random.default_rng(6)
+
+    def worst(scale):
+        out = 0.0
+        for _ in range(30):
+            d = rng.normal(size=6) * np.r_[0.3 * scale * np.ones(3), scale * np.ones(3)]
+            xy, Z = _seen(board, _exp(d, 1.0))
+            point = -np.linalg.pinv(point_interaction_matrix(xy, Z)) @ (xy - xy_taught).ravel()
+            ours = decoupled.camera_twist(decoupled.task(xy, xy_taught, z_taught), 1.0)
+            out = max(out, np.linalg.norm(point - ours) / np.linalg.norm(ours))
+        return out
+
+    near, nearer = worst(1e-3), worst(1e-4)
+    assert near < 0.01
+    assert nearer < 0.2 * near
+
+
+def test_predicted_task_is_the_task_at_the_moved_pose():
+    """decoupled.predicted against the task recomputed from the images after the camera moved
+    by a small displacement (first order: the difference is second order in the step)."""
+    board = _board()
+    xy_taught, z_taught = _seen(board, np.eye(4))
+    T0 = _turn(140.0, (4.0, -6.0), (0.03, -0.02, 0.05))
+    start = decoupled.task(_seen(board, T0)[0], xy_taught, z_taught)
+    rng = np.random.default_rng(7)
+    for h in (1e-2, 1e-3):
+        d = rng.normal(size=6) * h
+        again = decoupled.task(_seen(board, T0 @ _exp(d, 1.0))[0], xy_taught, z_taught,
+                               start.theta_u)
+        guess = decoupled.predicted(start, d)
+        change = np.linalg.norm(again.error - start.error)
+        assert np.linalg.norm(guess.error - again.error) < 0.05 * change
+        assert np.linalg.norm(guess.L - again.L) < 0.05 * np.linalg.norm(again.L - start.L)
+
+
 # -------------------------------------------------------------------- pieces, against outside
 def test_relative_pose_recovers_the_true_pose_including_a_half_turn():
     """Against the simulated truth: PnP of the taught model in views from known poses returns

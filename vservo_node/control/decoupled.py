@@ -77,8 +77,10 @@ the taught image; a wrong depth scale only scales the translation rate. This PnP
 here for now; when ``control/pose_error.py`` (pose error between taught and current views)
 lands, the two should share one implementation (TODO de-duplicate).
 
-Near the goal the servo may hand over to point IBVS (vservo_node.servo): both laws have the
-taught image as their equilibrium, and the point law's error is the one the stop is judged on.
+No hand-over to point IBVS near the goal: there the two laws command the same camera twist to
+first order (each inverts a full-rank linearization of the same pose error; checked in
+tests/control/test_decoupled.py: 0.4 % apart at 0.3 mm / 0.06 deg, ten times less at a tenth of
+that), and both stop on the same image error; a hand-over would only add a switch.
 
 Conventions: twists ``[v; w]`` in the camera optical frame (DEVELOPERS.md); normalized image
 coordinates; metres; radians. No rclpy and no state: the caller keeps the previous ``theta u``
@@ -96,6 +98,8 @@ from scipy.spatial.transform import Rotation
 from vservo_node.control.frames import invert, skew
 from vservo_node.control.interaction import point_interaction_matrix
 
+#: The servo's control schemes (parameter control.scheme): point IBVS, or this module's.
+SCHEMES = ("point", "decoupled")
 #: A model counts as planar when its smallest principal spread is below this fraction of its
 #: largest (common practice, no source; taught depths from PnP of a board are planar to the
 #: noise of the taught pixels, far below this).
@@ -130,13 +134,15 @@ class Task:
     ``error`` (6,): ``[c*t_c (m); x_r - x_r*; y_r - y_r*; (theta u)_z (rad)]`` and ``L``
     (6, 6) with ``e_dot = L v_c`` for the camera twist ``v_c = [v; w]`` in the current camera
     optical frame (module docstring). ``theta_u`` (3,) rad: the whole rotation ``c*R_c``;
-    ``reference_now`` (3,) m: the reference point in the current camera frame; ``pose``: PnP.
+    ``reference_now`` / ``reference_taught`` (3,) m: the reference point in the current / the
+    taught camera frame; ``pose``: the relative pose it was computed from.
     """
 
     error: np.ndarray
     L: np.ndarray
     theta_u: np.ndarray
     reference_now: np.ndarray
+    reference_taught: np.ndarray
     pose: RelativePose
 
 
@@ -248,13 +254,20 @@ def task(xy_now, xy_taught, z_taught, previous_theta_u=None) -> Task:
     (or one value: a fronto-parallel model), in matching order. ``previous_theta_u``: the last
     ``Task.theta_u`` of this run (see :func:`theta_u`). ValueError as :func:`relative_pose`."""
     model = taught_model(xy_taught, z_taught)
-    pose = relative_pose(xy_now, model)
+    return task_at(relative_pose(xy_now, model), model.mean(axis=0), previous_theta_u)
+
+
+def task_at(pose: RelativePose, reference_taught, previous_theta_u=None) -> Task:
+    """The task at a given relative pose, for the reference point ``reference_taught`` (3,)
+    (taught camera frame, m)."""
     T_now_taught = pose.T_now_taught
     T_taught_now = invert(T_now_taught)
     R = T_taught_now[:3, :3]
     tu = theta_u(R, previous_theta_u)
-    reference = model.mean(axis=0)
+    reference = np.asarray(reference_taught, dtype=float)
     now = T_now_taught[:3, :3] @ reference + T_now_taught[:3, 3]
+    if not now[2] > 0:
+        raise ValueError(f"the reference point is behind the camera (depth {now[2]:.3f} m)")
     x, y, Z = now[0] / now[2], now[1] / now[2], now[2]
     error = np.concatenate([T_taught_now[:3, 3],
                             [x - reference[0] / reference[2], y - reference[1] / reference[2],
@@ -263,7 +276,20 @@ def task(xy_now, xy_taught, z_taught, previous_theta_u=None) -> Task:
     L[:3, :3] = R
     L[3:5] = point_interaction_matrix([[x, y]], Z)
     L[5, 3:] = rotation_interaction(tu)[2]
-    return Task(error, L, tu, now, pose)
+    return Task(error, L, tu, now, reference, pose)
+
+
+def predicted(t: Task, displacement) -> Task:
+    """The task after the camera moved by ``displacement`` ``[v; w] dt`` (m, rad; current
+    camera frame) from where ``t`` was computed: the relative pose moved to first order,
+    ``T_now'_taught = [R(w dt) | v dt]^-1 T_now_taught``, and the task rebuilt there (for
+    the servo's features predicted between frames). ValueError as :func:`task_at`."""
+    d = np.asarray(displacement, dtype=float)
+    step = np.eye(4)
+    step[:3, :3] = Rotation.from_rotvec(d[3:]).as_matrix()
+    step[:3, 3] = d[:3]
+    moved = RelativePose(invert(step) @ t.pose.T_now_taught, math.nan, "predicted")
+    return task_at(moved, t.reference_taught, t.theta_u)
 
 
 def camera_twist(t: Task, gain: float) -> np.ndarray:
