@@ -81,8 +81,11 @@ def controller_overrides(scenario, reference_file: Path, folder: Path,
         values["robot"]["hand_eye"] = [*map(float, T_belief[:3, 3]),
                                        *map(float, frames.matrix_to_quat(T_belief[:3, :3]))]
     for name, value in scenario.controller.items():   # the scenario's own settings
-        section, leaf = name.split(".", 1)
-        values.setdefault(section, {})[leaf] = value
+        if "." in name:
+            section, leaf = name.split(".", 1)
+            values.setdefault(section, {})[leaf] = value
+        else:
+            values[name] = value
     for section, entries in (extra or {}).items():
         values.setdefault(section, {}).update(entries)
     path = folder / "controller_overrides.yaml"

@@ -349,12 +349,13 @@ def _controller(r: _Reader, value) -> dict:
 
     out = {}
     for name, given in r.mapping(value, "controller").items():
-        param = params.BY_NAME.get(name)
+        param = params.BY_NAME.get(name) if isinstance(name, str) else None
         if param is None:
-            r.fail("controller", params.unknown_name_message(str(name)))
+            r.fail("controller", params.unknown_name_message(name) if isinstance(name, str)
+                   and len(name) <= 100 else f"{brief(name)}: unknown parameter")
         out[name], reason = params.check_value(param, given)
         if reason:
-            r.fail("controller", reason)
+            r.fail("controller", reason if len(reason) <= 300 else reason[:300] + " ...")
     return out
 
 
