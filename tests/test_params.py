@@ -26,10 +26,22 @@ def test_defaults_are_valid_once_the_required_acceleration_is_given():
     ("robot.hand_eye", [0.0, 0.0, 0.1], "expected 0 or 7"),
     ("limits.joint_acceleration", [2.0, -1.0], "outside [0.001, 100.0]"),
     ("control.min_features", 2.5, "not an integer"),
+    ("control.scheme", "moments", "not one of"),
 ])
 def test_invalid_values_are_refused_with_the_reason(name, value, fragment):
     result = params.validate({"limits.joint_acceleration": [2.0], name: value})
     assert not result.ok and any(fragment in e for e in result.errors), result.errors
+
+
+def test_decoupled_scheme_needs_four_points():
+    """Three points leave PnP of a calibrated camera up to four solutions (Fischler & Bolles
+    1981, "Random sample consensus", CACM 24(6), from memory), and OpenCV's IPPE and SQPnP
+    want 4 or more here, so control.scheme decoupled refuses control.min_features 3."""
+    result = params.validate({"limits.joint_acceleration": [2.0], "control.scheme": "decoupled",
+                              "control.min_features": 3})
+    assert any("needs 4 points" in e and "min_features = 3" in e for e in result.errors)
+    assert params.validate({"limits.joint_acceleration": [2.0],
+                            "control.scheme": "decoupled"}).ok
 
 
 def test_unknown_name_suggests_the_known_one():

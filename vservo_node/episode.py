@@ -344,7 +344,8 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     """One run of a scenario through the node's code path, without ROS or clocks.
 
     ``scenario``: a shipped name, a path or a loaded ``sim.Scenario``. ``overrides``: controller
-    parameters by their schema names (vservo_node.params) over :func:`episode_params`; the
+    parameters by their schema names (vservo_node.params) over :func:`episode_params` and the
+    scenario's own ``controller`` entries; the
     arm, camera and target are the scenario's (``robot.*`` other than ``robot.tool_point``,
     ``target.file`` and ``reference.*`` do not apply).
     ``seed``: mixed with the scenario's seed for the image and joint-state noise.
@@ -383,7 +384,7 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
         raise ValueError(f"sensing must be one of {SENSING}, got {sensing!r}")
     sc = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
     sc = _reseeded(sc, seed)
-    values = episode_params(overrides, camera_rate_hz=sc.fps)
+    values = episode_params({**sc.controller, **(overrides or {})}, camera_rate_hz=sc.fps)
     cell = SimCell(sc)
     camera = focal_scaled(sc.camera, focal_scale) if focal_scale != 1.0 else sc.camera
     servo = servo_from_params(sc.arm_model("belief"), values)

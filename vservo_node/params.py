@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from vservo_node.control.decoupled import SCHEMES
 from vservo_node.control.interaction import INTERACTION_ESTIMATES
 from vservo_node.yaml_files import YamlFileError, brief, load_yaml
 
@@ -78,6 +79,10 @@ SCHEMA: tuple[Param, ...] = (
     _p("control.interaction_estimate", str, "blended", "which features the interaction matrix "
        "is evaluated at: current_view, taught_view, or blended (their mean)",
        choices=INTERACTION_ESTIMATES),
+    _p("control.scheme", str, "point", "control law: point (IBVS on the image points) or "
+       "decoupled (straight camera path to the taught pose with the target's centre kept in "
+       "view; any turn about the optical axis up to 180 deg; needs taught depths and 4 points: "
+       "vservo_node/control/decoupled.py)", choices=SCHEMES),
     _p("control.gain_near", float, 1.0, "gain at zero image error", unit="1/s", low=0.01,
        high=10.0, tighten="down"),
     _p("control.gain_far", float, 0.5, "gain for large image errors", unit="1/s", low=0.01,
@@ -300,6 +305,10 @@ def validate(values: dict[str, Any]) -> CheckResult:
         result.errors.append(
             f"gain x (loop delay + cycle) = {product:.3f} >= {DELAY_GAIN_BOUND} (common practice, "
             "no source): lower control.gain_near/gain_far or the delay")
+    if merged["control.scheme"] == "decoupled" and merged["control.min_features"] < 4:
+        result.errors.append(
+            f"control.scheme decoupled estimates a pose by PnP, which needs 4 points or more: "
+            f"control.min_features = {merged['control.min_features']}; expected >= 4")
     if merged["control.gain_near"] < merged["control.gain_far"]:
         result.warnings.append("control.gain_near < control.gain_far: the gain falls near the goal,"
                                " which slows the final approach")

@@ -6,7 +6,9 @@ closed-loop tests and the sweeps. No ROS and no clocks here: every call passes i
 Two rates, one object:
 - ``observe(obs, q, t)`` runs once per camera frame: it builds the image Jacobian
   ``J_img = L(s, Z) @ V_camera_tool @ J_tool(q)`` (2N x n), evaluates the control law and the
-  supervisor's checks, and stores the desired joint velocity.
+  supervisor's checks, and stores the desired joint velocity. With ``scheme`` decoupled the
+  law runs on that scheme's task instead (``L @ J_camera`` and its error, from
+  vservo_node.control.decoupled); the supervisor still judges the image points.
 - ``command(q, t, dt)`` runs at the output rate: it steps the previous command toward the
   desired one through the safety limiter (so commands between frames stay rate-limited), ramps
   to zero while braking, and returns the command with the cycle's status record.
@@ -26,7 +28,7 @@ from typing import Any, Hashable, Sequence
 
 import numpy as np
 
-from vservo_node.control import frames
+from vservo_node.control import decoupled, frames
 from vservo_node.control.interaction import interaction_matrix, point_interaction_matrix
 from vservo_node.control.law import (ControlLaw, DampingSchedule, GainSchedule, LawConfig)
 from vservo_node.control.safety import LimitSet, Limiter
@@ -56,6 +58,8 @@ HALT_REASONS = {
     "image_jacobian_singular": "the image Jacobian stayed nearly singular: the features no "
                                "longer determine the camera motion",
     "shutdown": "the node was asked to shut down (signal or lifecycle) during a run",
+    "pose_estimate_failed": "the decoupled scheme found no pose of the taught points in the "
+                            "current view",
 }
 MOVING_STATES = ("servoing", "settling", "braking")
 
@@ -136,6 +140,7 @@ class ServoSettings:
     direction_probe_px: float = 6.0       # start nod: peak feature shift (0 = no nod)
     direction_probe_s: float = 0.3        # start nod: duration (one sine period)
     predict_between_frames: bool = False  # re-run the law at each output tick on predicted features
+    scheme: str = "point"                 # control.scheme: decoupled.SCHEMES
     diverge_factor: float = 1.5           # halt when rms > factor * best + diverge_margin_px
     diverge_margin_px: float = 20.0
     follow_window_s: float = 0.5          # judge following over this window
@@ -178,6 +183,7 @@ class ServoSettings:
             direction_probe_s=get("control.direction_probe_s", cls.direction_probe_s),
             predict_between_frames=get("control.predict_between_frames",
                                        cls.predict_between_frames),
+            scheme=get("control.scheme", cls.scheme),
             depth_source="observed" if depth in ("target_model", "depth_image") else depth,
             constant_depth_m=get("depth.constant_m", cls.constant_depth_m),
             max_translation_m=get("limits.max_translation_m", cls.max_translation_m),
@@ -210,6 +216,7 @@ class _RunState:
     final_rms: float = math.nan
     end_t: float | None = None
     last_obs_t: float | None = None        # time of the last observation the law used
+    theta_u: np.ndarray | None = None      # decoupled scheme: the last turn, kept continuous
     singular_since: float | None = None
 
 
@@ -223,6 +230,13 @@ class _Frame:
     J_move: np.ndarray   # (2, 2N, n): feature motion from camera translation, from rotation
     rms_px: float
     law_inputs: tuple | None = None   # (z_now, xy_ref, z_ref) for the law between frames
+    task: decoupled.Task | None = None   # decoupled scheme: its task at this frame
+
+
+def _check_scheme(settings: ServoSettings) -> None:
+    if settings.scheme not in decoupled.SCHEMES:
+        raise ValueError(f"control scheme {settings.scheme!r}; expected one of "
+                         f"{', '.join(decoupled.SCHEMES)}")
 
 
 class Servo:
@@ -235,6 +249,7 @@ class Servo:
 
     def __init__(self, arm, settings: ServoSettings, limits: LimitSet,
                  tool_point: Sequence[float] = (0.0, 0.0, 0.0)):
+        _check_scheme(settings)
         self.arm = arm
         self.settings = settings
         self.limits = limits
@@ -266,6 +281,7 @@ class Servo:
         this check applies without raising."""
         ControlLaw(settings.law_config(), arm.lower, arm.upper)
         Limiter(limits)
+        _check_scheme(settings)
         if limits.n != arm.n:
             raise ValueError(f"limits for {limits.n} joints; the arm has {arm.n}")
 
@@ -391,9 +407,19 @@ class Servo:
             self.halt("initial_error_too_large", t, f"first RMS error {rms_px:.1f} px > "
                       f"control.max_initial_error_px = {s.max_initial_error_px}")
             return
-        if prev is None or prev.keys != keys:
-            self.law.restart(e, t)
-        frame = _Frame(t, q, keys, e, J_move, rms_px, (z_now, xy_ref, z_ref))
+        J_law, e_law, task = J_img, e, None
+        if s.scheme == "decoupled":
+            try:
+                task = decoupled.task(xy_now, xy_ref, z_ref, run.theta_u)
+            except ValueError as exc:
+                self.halt("pose_estimate_failed", t, f"{exc} (control.scheme decoupled needs the "
+                          "taught depths and >= 4 matched points on a spread-out target)")
+                return
+            run.theta_u = task.theta_u
+            J_law, e_law = task.L @ camera_jac, task.error
+        if prev is None or prev.keys != keys or (prev.task is None) != (task is None):
+            self.law.restart(e_law, t)
+        frame = _Frame(t, q, keys, e, J_move, rms_px, (z_now, xy_ref, z_ref), task)
         anchor = run.direction_anchor
         if anchor is None or anchor.keys != keys:
             run.direction_anchor = frame
@@ -413,7 +439,7 @@ class Servo:
                       f"{run.best_rms:.1f} px + {s.diverge_margin_px} px")
             return
         envelope_used = self._envelope_fraction(q)   # for the margins; the tick halts on it
-        dq, info = self.law.compute(J_img, e, rms_px, q, t,
+        dq, info = self.law.compute(J_law, e_law, rms_px, q, t,
                                     null_space_enabled=self.state == "servoing")
         self._law_info = info
         if info.fault:
@@ -425,7 +451,7 @@ class Servo:
         if nod is None:
             self._desired = dq
         else:                  # the law waits for the nod; its soft start begins after it
-            self.law.restart(e, t)
+            self.law.restart(e_law, t)
             self._desired = nod
         self._margin_scale = self._margins(info, uv_now, q, envelope_used)
         # arrival: below tolerance for the dwell time with the joints (nearly) stopped
@@ -634,11 +660,14 @@ class Servo:
             run.singular_since = t
         if t - run.singular_since < s.singular_halt_s:
             return False
+        why = ("the features (nearly) cannot tell some camera motions apart, e.g. a turn near "
+               "180 deg about the optical axis; teach closer to the start view or set "
+               "control.scheme: decoupled" if s.scheme == "point" else
+               "the arm (nearly) cannot make some camera motions here (a kinematic "
+               "singularity of the camera Jacobian)")
         self.halt("image_jacobian_singular", t,
                   f"judged singular value {sigma:.2e} < {floor:.2e} for {t - run.singular_since:.2f}"
-                  " s: the features (nearly) cannot tell some camera motions apart, e.g. a turn "
-                  "near 180 deg about the optical axis; teach closer to the start view or use "
-                  "a decoupled scheme")
+                  f" s: {why}")
         return True
 
     def _margins(self, info, uv: np.ndarray, q: np.ndarray, envelope_used: float) -> float:
@@ -779,7 +808,9 @@ class Servo:
         frame (first order: s(q) ~ s(q_f) + J (q - q_f), Chaumette & Hutchinson 2006, Part I,
         eq. 3-4 with v_c = J_cam dq), and the image Jacobian rebuilt at the predicted features
         and the joints now (depths kept from the frame). The supervisor still judges only
-        real frames; the nod, when running, is left alone."""
+        real frames; the nod, when running, is left alone. With the decoupled scheme its task
+        is rebuilt at the relative pose moved by the camera displacement J_cam(q_f) (q - q_f)
+        (first order; decoupled.predicted)."""
         frame, run = self._frame, self._run
         if frame is None or frame.law_inputs is None or run is None or self._nodding(t):
             return
@@ -789,12 +820,21 @@ class Servo:
         e = frame.e + (frame.J_move[0] + frame.J_move[1]) @ dq_since
         norm_e = float(np.linalg.norm(frame.e))
         rms_px = frame.rms_px * float(np.linalg.norm(e)) / norm_e if norm_e > 0 else 0.0
-        z_now, xy_ref, z_ref = frame.law_inputs
-        xy_now = xy_ref + e.reshape(-1, 2)
         camera_jac = self._camera_jacobian(q)
-        J_img = interaction_matrix(self.settings.interaction_estimate, xy_now, z_now, xy_ref,
-                                   z_ref) @ camera_jac
-        dq, info = self.law.compute(J_img, e, rms_px, q, t,
+        if frame.task is not None:
+            try:
+                task = decoupled.predicted(frame.task,
+                                           self._camera_jacobian(frame.q) @ dq_since)
+            except ValueError:
+                return        # keep the frame's command; the next frame judges
+            e_law, J_law = task.error, task.L @ camera_jac
+        else:
+            z_now, xy_ref, z_ref = frame.law_inputs
+            xy_now = xy_ref + e.reshape(-1, 2)
+            e_law = e
+            J_law = interaction_matrix(self.settings.interaction_estimate, xy_now, z_now,
+                                       xy_ref, z_ref) @ camera_jac
+        dq, info = self.law.compute(J_law, e_law, rms_px, q, t,
                                     null_space_enabled=self.state == "servoing")
         if info.fault:
             return

@@ -124,3 +124,21 @@ def test_invalid_yaml_and_unknown_names_are_refused(tmp_path):
         load_scenario(bad)
     with pytest.raises(FileNotFoundError, match="no scenarios entry named 'nowhere'"):
         load_scenario("nowhere")
+
+
+def test_controller_entries_are_carried_and_checked():
+    """The optional ``controller`` entry: parameter names of the schema with valid values;
+    anything else is refused naming the entry."""
+    spec = base()
+    spec["controller"] = {"control.scheme": "decoupled", "limits.max_rotation_deg": 200}
+    assert scenario_from_dict(spec).controller == {"control.scheme": "decoupled",
+                                                   "limits.max_rotation_deg": 200.0}
+    assert scenario_from_dict(base()).controller == {}
+    for entries, fragment in (({"control.schem": "decoupled"}, "controller: control.schem: "
+                                                              "unknown parameter"),
+                              ({"control.scheme": "moments"}, "not one of"),
+                              ({"limits.max_rotation_deg": 400.0}, "outside"),
+                              (["control.scheme"], "expected a mapping")):
+        spec["controller"] = entries
+        with pytest.raises(ScenarioError, match=fragment):
+            scenario_from_dict(spec)

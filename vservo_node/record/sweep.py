@@ -367,8 +367,11 @@ def _episode_params(spec: SweepSpec, point: Point) -> dict:
     from vservo_node.episode import episode_params
 
     merged = {**spec.fixed, **point.values}
-    return episode_params({k: v for k, v in merged.items() if k in params.BY_NAME},
-                          camera_rate_hz=_base_scenario(spec.scenario).fps)
+    base = _base_scenario(spec.scenario)
+    # as run_scenario_episode builds them: the scenario's controller entries, then the sweep's
+    return episode_params({**base.controller,
+                           **{k: v for k, v in merged.items() if k in params.BY_NAME}},
+                          camera_rate_hz=base.fps)
 
 
 @functools.lru_cache(maxsize=8)

@@ -65,8 +65,9 @@ def teach(scenario, folder: Path) -> Path:
 def controller_overrides(scenario, reference_file: Path, folder: Path,
                          extra: dict | None = None) -> Path:
     """A parameter file layered over config/vservo_sim.yaml for this scenario: arm, target,
-    reference, camera rate, the believed hand-eye when it differs from the URDF's, then
-    ``extra`` (nested like the file: ``{"control": {"gain_near": 1.0}}``) over those."""
+    reference, camera rate, the believed hand-eye when it differs from the URDF's, the
+    scenario's ``controller`` entries, then ``extra`` (nested like the file:
+    ``{"control": {"gain_near": 1.0}}``) over those."""
     values = {
         "robot": {"urdf_path": str(scenario.urdf_path), "base_frame": scenario.base_frame,
                   "tool_frame": scenario.tool_frame, "camera_frame": scenario.camera_frame},
@@ -79,6 +80,12 @@ def controller_overrides(scenario, reference_file: Path, folder: Path,
     if not np.allclose(T_belief, scenario.arm_model("urdf").T_tool_camera, atol=1e-12):
         values["robot"]["hand_eye"] = [*map(float, T_belief[:3, 3]),
                                        *map(float, frames.matrix_to_quat(T_belief[:3, :3]))]
+    for name, value in scenario.controller.items():   # the scenario's own settings
+        if "." in name:
+            section, leaf = name.split(".", 1)
+            values.setdefault(section, {})[leaf] = value
+        else:
+            values[name] = value
     for section, entries in (extra or {}).items():
         values.setdefault(section, {}).update(entries)
     path = folder / "controller_overrides.yaml"

@@ -42,6 +42,7 @@ are relative to the package's config folder)::
     controller_belief:
       hand_eye_error: {translation: [dx, dy, dz], rotation_deg: [rx, ry, rz]}
       depth_scale: 1.0
+    controller: {control.scheme: decoupled}   # parameters this cell is meant to be run with
     duration_s: 10.0
     seed: 1
 
@@ -56,10 +57,15 @@ moves towards the target). A hand-eye perturbation ``{translation, rotation_deg}
 in the camera's own axes, ``T_tool_camera' = T_tool_camera @ [R(rotation vector) | t]``: the
 true one moves the real camera, the belief one is what the controller is told. Start and taught
 poses are those of the true camera.
+
+``controller``: controller parameters (vservo_node.params names, flat) the cell is meant to be
+run with, e.g. a control scheme or a wider motion envelope for a large start offset; headless
+episodes (``episode.run_scenario_episode``) and ``vservo demo`` layer them over
+config/vservo_sim.yaml (a caller's own overrides win). Checked against the parameter schema.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -79,7 +85,7 @@ from vservo_node.yaml_files import YamlFileError, brief, load_yaml, read_bounded
 FORMAT = "vservo_scenario/1"
 
 _TOP = {"format", "name", "description", "robot", "camera", "target", "taught", "start", "arm",
-        "image", "true_hand_eye", "controller_belief", "duration_s", "seed"}
+        "image", "true_hand_eye", "controller_belief", "controller", "duration_s", "seed"}
 _TOP_REQUIRED = {"name", "robot", "camera", "target", "taught", "start"}
 _ROBOT = {"urdf", "base_frame", "tool_frame", "camera_frame", "home"}
 _CAMERA = {"width", "height", "fps", "intrinsics", "distortion_model", "d"}
@@ -136,6 +142,7 @@ class Scenario:
     depth_scale_belief: float
     duration_s: float
     seed: int
+    controller: dict = field(default_factory=dict)   # parameter name -> value (module doc)
 
     def arm_model(self, hand_eye: str = "true") -> ArmModel:
         """A fresh ArmModel of the scenario's robot with the ``"true"``, ``"belief"`` or
@@ -336,6 +343,22 @@ def _image(r: _Reader, value) -> Photometric:
         r.fail("image", str(exc))
 
 
+def _controller(r: _Reader, value) -> dict:
+    """The ``controller`` entry: parameter name -> value, checked against the schema."""
+    from vservo_node import params   # the schema is above sim; imported only when used
+
+    out = {}
+    for name, given in r.mapping(value, "controller").items():
+        param = params.BY_NAME.get(name) if isinstance(name, str) else None
+        if param is None:
+            r.fail("controller", params.unknown_name_message(name) if isinstance(name, str)
+                   and len(name) <= 100 else f"{brief(name)}: unknown parameter")
+        out[name], reason = params.check_value(param, given)
+        if reason:
+            r.fail("controller", reason if len(reason) <= 300 else reason[:300] + " ...")
+    return out
+
+
 def _dynamics(r: _Reader, value, seed) -> ArmDynamics:
     value = r.mapping(value, "arm", _ARM)
     fields = {k: r.number(v, f"arm.{k}") for k, v in value.items() if k != "decel_limit"}
@@ -408,7 +431,7 @@ def scenario_from_dict(data, source: Path | None = None) -> Scenario:
         photometric=_image(r, data.get("image")), T_tool_camera_true=T_true,
         T_tool_camera_belief=T_belief, depth_scale_belief=depth_scale,
         duration_s=r.number(data.get("duration_s", 10.0), "duration_s", positive=True),
-        seed=seed)
+        seed=seed, controller=_controller(r, data.get("controller")))
 
 
 def load_scenario(name_or_path) -> Scenario:
