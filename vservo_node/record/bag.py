@@ -119,6 +119,8 @@ class RunRecorder:
         image_format: None records sensor_msgs/Image as is; 'png' or 'jpeg' records it as
             sensor_msgs/CompressedImage on ``<topic>/compressed`` (image_transport's naming).
         jpeg_quality: 0..100 for 'jpeg'.
+        folder_name: the bag folder's name instead of ``<UTC time>_<scenario>`` (a suffix
+            ``-1``, ``-2``... is added if it exists).
 
     Thread-safe: `write` may be called from any thread. Use as a context manager or call
     `close`. Topic names are made absolute ('servo/status' -> '/servo/status').
@@ -128,7 +130,8 @@ class RunRecorder:
                  started: datetime | None = None, typestore=None,
                  split_s: float = DEFAULT_SPLIT_S, split_bytes: int = DEFAULT_SPLIT_BYTES,
                  poll_s: float = DEFAULT_POLL_S, image_every: int = 1,
-                 image_format: str | None = None, jpeg_quality: int = 90):
+                 image_format: str | None = None, jpeg_quality: int = 90,
+                 folder_name: str | None = None):
         if split_s <= 0 or poll_s <= 0 or split_bytes <= 0:
             raise ValueError(f"split_s, poll_s, split_bytes must be > 0, got "
                              f"{split_s}, {poll_s}, {split_bytes}")
@@ -141,7 +144,7 @@ class RunRecorder:
         self.image_every, self.image_format = image_every, image_format
         self.jpeg_quality = jpeg_quality
         self.bag_dir = self._make_folder(Path(root), scenario,
-                                         started or datetime.now(timezone.utc))
+                                         started or datetime.now(timezone.utc), folder_name)
         self.scenario = scenario
         self._topics: dict[str, tuple[str, str]] = {}   # topic -> (msgtype, rihs01)
         self._counts: dict[str, int] = {}               # topic -> messages in completed splits
@@ -160,9 +163,10 @@ class RunRecorder:
         self._thread.start()
 
     @staticmethod
-    def _make_folder(root: Path, scenario: str, started: datetime) -> Path:
+    def _make_folder(root: Path, scenario: str, started: datetime,
+                     name: str | None = None) -> Path:
         root.mkdir(parents=True, exist_ok=True)
-        base = run_folder_name(scenario, started)
+        base = name or run_folder_name(scenario, started)
         for i in range(1000):
             path = root / (base if i == 0 else f"{base}-{i}")
             try:

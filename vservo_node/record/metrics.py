@@ -604,8 +604,12 @@ def headline(m: dict) -> list[tuple[str, str]]:
     if m["verdict"] == "converged":
         rows.append(("verdict", f"converged in {fmt(m['time_to_converge_s'], '.2f', 's')}"))
     elif m["verdict"] == "halted":
-        rows.append(("verdict", f"halted: {m['reason'] or '(no reason)'} after "
-                                f"{fmt(m['time_to_halt_s'], '.2f', 's')}"))
+        halts = m.get("halts") or []
+        detected = (halts[-1]["t_s"] - m["t_start_s"]
+                    if halts and m.get("t_start_s") is not None else None)
+        rows.append(("verdict", f"halted: {m['reason'] or '(no reason)'}"
+                     + (f", detected at {detected:.2f} s" if detected is not None else "")
+                     + f", stopped at {fmt(m['time_to_halt_s'], '.2f', 's')}"))
     else:
         rows.append(("verdict", "no end of the run in this record"))
     if m.get("detail"):

@@ -497,13 +497,9 @@ def verdict_html(metrics: dict, run: RunData) -> str:
                      "the report of the whole bag folder. The figures below cover this file's "
                      "time span only.")
     elif verdict == "converged":
-        big = f"CONVERGED in {fmt(metrics['time_to_converge_s'], '.2f', 's')}"
+        big = "CONVERGED" + headline(metrics)[0][1][len("converged"):]
     elif verdict == "halted":
-        detected = (metrics["halts"][-1]["t_s"] - metrics["t_start_s"]
-                    if metrics["halts"] and metrics["t_start_s"] is not None else None)
-        big = (f"HALTED: {reason or '(no reason recorded)'}"
-               + (f", detected at {detected:.2f} s" if detected is not None else "")
-               + f", stopped at {fmt(metrics['time_to_halt_s'], '.2f', 's')}")
+        big = "HALTED" + headline(metrics)[0][1][len("halted"):]
         cause = metrics["detail"] or halts.describe(reason)
         if cause:
             lines.append(f"<b>Cause:</b> {html.escape(cause)}")

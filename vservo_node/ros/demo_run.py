@@ -47,6 +47,7 @@ SUMMARY_KEYS = ("verdict", "converged", "reason", "detail", "time_to_converge_s"
                 "peak_joint_speed_ratio", "peak_joint_speed_joint", "peak_tool_speed_m_s",
                 "peak_tool_speed_ratio")
 RECORDER_READY_TIMEOUT_S = 20.0   # generous: the recorder imports and discovers on a busy machine
+REPORT_TIMEOUT_S = 60.0          # the recorder writes the report first; a loaded machine takes long
 
 
 def teach(scenario, folder: Path) -> Path:
@@ -204,7 +205,7 @@ def run_cell_demo(args) -> int:
         result = node.result
         if recorder:   # the recorder names the bag once the bag and its report are written
             try:
-                harness.spin_until(node, lambda: node.last_bag is not None, 20.0,
+                harness.spin_until(node, lambda: node.last_bag is not None, REPORT_TIMEOUT_S,
                                    "the recorder's bag and report", processes)
             except TimeoutError as exc:
                 print(f"warning: no report: {exc}".splitlines()[0])
