@@ -14,6 +14,8 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
+import numpy as np
+
 MM_PER_INCH = 25.4
 MARGIN_MM = 10.0       # white around the board
 FOOTER_MM = 24.0       # scale bar and caption below the board
@@ -24,37 +26,47 @@ def scale_bar_mm(board_width_mm: float) -> float:
     return next((b for b in (100.0, 50.0, 20.0, 10.0) if b <= board_width_mm), 10.0)
 
 
-def page_size_mm(target) -> tuple[float, float]:
-    """(width, height) of the page for ``target``, mm."""
+def page_size_mm(target, dpi: float | None = None) -> tuple[float, float]:
+    """(width, height) of the page for ``target``, mm; with ``dpi``, rounded to whole pixels
+    (so the page's pixels, and with them the board's, are exact)."""
     w, h = target.width * 1e3, target.height * 1e3
-    return max(w, 120.0) + 2 * MARGIN_MM, h + 2 * MARGIN_MM + FOOTER_MM
+    w, h = max(w, 120.0) + 2 * MARGIN_MM, h + 2 * MARGIN_MM + FOOTER_MM
+    if dpi:
+        px = MM_PER_INCH / dpi
+        w, h = round(w / px) * px, round(h / px) * px
+    return w, h
 
 
-def make_page(target, dpi: float):
+def make_page(target, dpi: float, draw_board: bool = True):
     """A matplotlib Figure of the page (inches = mm / 25.4) and its layout: board origin and
-    size (mm, from the page's bottom-left), the scale bar's length (mm)."""
+    size (mm, from the page's bottom-left; ``board_px``: its top-left pixel and the board
+    picture), the scale bar's length (mm). ``draw_board`` False leaves the board out (the PNG
+    pastes it pixel for pixel instead: a raster canvas may stretch an image by a pixel)."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
     from matplotlib.patches import Rectangle
 
     from vservo_node.vision.targets import render_target_texture
 
-    page_w, page_h = page_size_mm(target)
-    board_w, board_h = target.width * 1e3, target.height * 1e3
-    px_mm = MM_PER_INCH / dpi   # one output pixel, mm: the board starts on a whole pixel
+    page_w, page_h = page_size_mm(target, dpi)
+    px_mm = MM_PER_INCH / dpi   # one output pixel, mm: everything sits on whole pixels
+    image, _ = render_target_texture(target, dpi / MM_PER_INCH * 1e3)   # px per metre
+    board_w, board_h = image.shape[1] * px_mm, image.shape[0] * px_mm   # within half a pixel
     x0 = round((page_w - board_w) / 2 / px_mm) * px_mm
     y0 = round((FOOTER_MM + MARGIN_MM) / px_mm) * px_mm
-    image, _ = render_target_texture(target, dpi / MM_PER_INCH * 1e3)   # px per metre
-    fig = Figure(figsize=(page_w / MM_PER_INCH, page_h / MM_PER_INCH))
+    # a hair over the whole pixels: the canvas takes int(inches x dpi) pixels
+    fig = Figure(figsize=((page_w + px_mm / 100) / MM_PER_INCH,
+                          (page_h + px_mm / 100) / MM_PER_INCH))
     FigureCanvasAgg(fig)
     page = fig.add_axes((0, 0, 1, 1))
     page.set_xlim(0, page_w)
     page.set_ylim(0, page_h)
     page.set_axis_off()
-    board = fig.add_axes((x0 / page_w, y0 / page_h, board_w / page_w, board_h / page_h))
-    board.imshow(image[..., ::-1], interpolation="none", aspect="auto",
-                 extent=(0, board_w, board_h, 0))
-    board.set_axis_off()
+    if draw_board:
+        board = fig.add_axes((x0 / page_w, y0 / page_h, board_w / page_w, board_h / page_h))
+        board.imshow(image[..., ::-1], interpolation="none", aspect="auto",
+                     extent=(0, board_w, board_h, 0))
+        board.set_axis_off()
     ink = dict(color="k", lw=0.5)
     for cx, cy, sx, sy in ((x0, y0, -1, -1), (x0 + board_w, y0, 1, -1),
                            (x0, y0 + board_h, -1, 1), (x0 + board_w, y0 + board_h, 1, 1)):
@@ -70,12 +82,14 @@ def make_page(target, dpi: float):
     kind = {"dots": f"{len(target.dots)} dots", "markers": f"{len(target.markers)} "
             f"{target.dictionary} markers", "textured": "textured poster"}[target.kind]
     page.text(bx, MARGIN_MM + 1.0,
-              f"{target.name}: {kind}, board {board_w:g} x {board_h:g} mm, drawn at "
+              f"{target.name}: {kind}, board {target.width * 1e3:g} x "
+              f"{target.height * 1e3:g} mm, drawn at "
               f"{dpi:g} dpi.\nPrint at 100 % (actual size). Target frame: origin at the board "
               f"centre, x right, y down.", fontsize=6.5, va="bottom", linespacing=1.4)
+    top_left = (round(x0 / px_mm), round((page_h - y0 - board_h) / px_mm))
     return fig, {"board_origin_mm": (x0, y0), "board_mm": (board_w, board_h),
                  "page_mm": (page_w, page_h), "scale_bar_mm": bar,
-                 "scale_bar_origin_mm": (bx, by)}
+                 "scale_bar_origin_mm": (bx, by), "board_px": (top_left, image)}
 
 
 def write_target(target, out: Path, dpi: float) -> dict:
@@ -85,9 +99,20 @@ def write_target(target, out: Path, dpi: float) -> dict:
         raise ValueError(f"{out}: expected a .pdf or .png file name")
     if not 50 <= dpi <= 2400:
         raise ValueError(f"--dpi {dpi}: expected 50 to 2400")
-    fig, layout = make_page(target, dpi)
     out.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(out, dpi=dpi, format=suffix[1:])
+    if suffix == ".pdf":
+        fig, layout = make_page(target, dpi)
+        fig.savefig(out, dpi=dpi, format="pdf")
+        return layout
+    from PIL import Image
+
+    fig, layout = make_page(target, dpi, draw_board=False)
+    fig.set_dpi(dpi)
+    fig.canvas.draw()
+    page = np.asarray(fig.canvas.buffer_rgba())[..., :3].copy()
+    (u, v), board = layout["board_px"]
+    page[v:v + board.shape[0], u:u + board.shape[1]] = board[..., ::-1]
+    Image.fromarray(page).save(out, dpi=(dpi, dpi))
     return layout
 
 

@@ -164,12 +164,19 @@ def motion_of_run(run: RunData, arm: ArmModel | None) -> Motion | None:
     qdot[missing] = np.gradient(q, t, axis=0)[missing]
     p = run_params(run)
     offset = np.asarray(p.get("robot.tool_point", [0.0, 0.0, 0.0]), float)
+    has_camera = arm.T_tool_camera is not None
     tool_speed, camera_speed, angular_speed = (np.empty(len(t)) for _ in range(3))
     for k, (qi, vi) in enumerate(zip(q, qdot)):
-        J_tool, J_camera, J_angular = arm.cartesian_jacobians(qi, offset)
+        if has_camera:
+            J_tool, J_camera, J_angular = arm.cartesian_jacobians(qi, offset)
+            camera_speed[k] = np.linalg.norm(J_camera @ vi)
+        else:   # no camera frame known: the tool point and the angular speed only
+            J_tool = arm.point_jacobian_base(qi, "tool", offset)
+            J_angular = arm.jacobian_base(qi)[3:]
         tool_speed[k] = np.linalg.norm(J_tool @ vi)
-        camera_speed[k] = np.linalg.norm(J_camera @ vi)
         angular_speed[k] = np.linalg.norm(J_angular @ vi)
+    if not has_camera:
+        camera_speed = None
     tool_T = np.array([arm.fk(qi, "tool") for qi in q])
     camera_T = (np.array([arm.fk(qi, "camera") for qi in q]) if arm.T_tool_camera is not None
                 else tool_T)

@@ -71,6 +71,8 @@ def _log_y(ax) -> None:
 
 def _legend(ax, **kw) -> None:
     """Legend outside the plot, on its right (never over the curves or the limit lines)."""
+    if not ax.get_legend_handles_labels()[0]:
+        return
     ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.005, 1.0), borderaxespad=0,
               **kw)
 
@@ -388,7 +390,7 @@ def fig_timeline(run: RunData, metrics: dict) -> Figure | None:
         ax.annotate(halt["reason"] or "(no reason)", (halt["t_s"], row), xytext=(4, 8),
                     textcoords="offset points", fontsize=8, color="r")
     ax.set_yticks(range(len(SUPERVISOR_STATES)), SUPERVISOR_STATES, fontsize=8)
-    ax.set(xlabel="time (s)", ylabel="state", title="Supervisor states")
+    ax.set(xlabel="time (s)", ylabel="state (category)", title="Supervisor states")
     return fig
 
 

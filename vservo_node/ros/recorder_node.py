@@ -95,6 +95,11 @@ from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
+# Imported at start, not on first use: OpenCV's import (JPEG/PNG encoding, the report's
+# frames) holds the GIL for about a second on a loaded machine, and when that happened at the
+# first image of a run the executor thread lost ~1.5 s of joint states and images (measured on
+# two demo runs). The report module below (matplotlib) is imported at start for the same reason.
+import cv2  # noqa: F401
 import yaml
 from geometry_msgs.msg import PoseStamped, TwistStamped
 from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ParameterDescriptor,
