@@ -218,11 +218,12 @@ def _fig_errors(runs, labels, all_metrics):
     fig = new_figure(11.0, 3.8)
     ax = fig.add_subplot()
     _log_y(ax)
-    for run, label in zip(runs, labels):
+    for k, (run, label) in enumerate(zip(runs, labels)):
         k0 = start_index(run)
         rms = run.status["rms_px"]
         if k0 is not None and np.any(np.isfinite(rms[k0:]) & (rms[k0:] > 0)):
-            ax.plot(run.status_t[k0:] - run.status_t[k0], rms[k0:], lw=1, label=label)
+            ax.plot(run.status_t[k0:] - run.status_t[k0], rms[k0:], lw=1, color=f"C{k % 10}",
+                    label=label)
     for tol in sorted({m["tolerance_px"] for m in all_metrics if m["tolerance_px"]}):
         ax.axhline(tol, color="g", ls=":", lw=0.8)
     ax.set(xlabel="time since the run start (s)", ylabel="RMS image error (px)",
@@ -234,16 +235,17 @@ def _fig_errors(runs, labels, all_metrics):
 
 def _fig_final_positions(paths, labels, all_metrics):
     """x-y and x-z of each run's final camera position in the goal camera's axes (mm)."""
-    points = [(label, p[3][-1]) for label, p, m in zip(labels, paths, all_metrics)
+    points = [(k, label, p[3][-1]) for k, (label, p, m) in enumerate(zip(labels, paths,
+                                                                       all_metrics))
               if p is not None and "final pose" not in p[4]   # against itself: always 0
               and m["verdict"] == "converged"]
     if not points:
         return None
-    fig = new_figure(11.0, 4.2)
+    fig = new_figure(11.0, 4.4, right=0.3, wspace=0.3)
     axes = fig.subplots(1, 2)
     for ax, (i, j) in zip(axes, ((0, 1), (0, 2))):
-        for label, xyz in points:
-            ax.plot(xyz[i], xyz[j], "o", ms=6, label=label)
+        for k, label, xyz in points:
+            ax.plot(xyz[i], xyz[j], "o", ms=6, color=f"C{k % 10}", label=label)  # as above
             ax.annotate(label, (xyz[i], xyz[j]), xytext=(4, 4), textcoords="offset points",
                         fontsize=8)
         ax.plot(0, 0, "k+", ms=14, label="goal")

@@ -585,9 +585,9 @@ def result_metrics(result: dict | None) -> dict:
                detail=result.get("detail") or "", halts=[], n_halts=0,
                verdict="incomplete" if converged is None else
                ("converged" if converged else "halted"))
-    key = "time_to_converge_s" if converged else "time_to_halt_s"
-    if converged is not None:
-        out[key] = _num(result.get("time_s"))
+    # the node's run time is on its own clock (image stamps against the start command): kept
+    # apart, since the record clock's figures are unknown here
+    out["node_run_time_s"] = _num(result.get("time_s"))
     for name in ("final_rms_px", "final_pose_error_mm", "final_pose_error_deg"):
         out[name] = _num(result.get(name))
     for name, value in result.items():
@@ -608,7 +608,11 @@ def headline(m: dict) -> list[tuple[str, str]]:
     """(label, text) of the figures a user reads first, in order; the demo prints them, the
     report's verdict banner shows them, `vservo report` prints them."""
     rows = []
-    if m["verdict"] == "converged":
+    node_time = ("" if m.get("node_run_time_s") is None
+                 else f" (the node's own run time: {m['node_run_time_s']:.2f} s)")
+    if m["verdict"] == "converged" and m.get("time_to_converge_s") is None:
+        rows.append(("verdict", "converged" + node_time))
+    elif m["verdict"] == "converged":
         rows.append(("verdict", f"converged in {fmt(m['time_to_converge_s'], '.2f', 's')}"))
     elif m["verdict"] == "halted":
         halts = m.get("halts") or []
@@ -616,7 +620,8 @@ def headline(m: dict) -> list[tuple[str, str]]:
                     if halts and m.get("t_start_s") is not None else None)
         rows.append(("verdict", f"halted: {m['reason'] or '(no reason)'}"
                      + (f", detected at {detected:.2f} s" if detected is not None else "")
-                     + f", stopped at {fmt(m['time_to_halt_s'], '.2f', 's')}"))
+                     + (f", stopped at {fmt(m['time_to_halt_s'], '.2f', 's')}"
+                        if m.get("time_to_halt_s") is not None else node_time)))
     else:
         rows.append(("verdict", "no end of the run in this record"))
     if m.get("detail"):

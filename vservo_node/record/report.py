@@ -23,7 +23,7 @@ from pathlib import Path
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
-from matplotlib.ticker import NullFormatter
+from matplotlib.ticker import MaxNLocator, NullFormatter
 
 from vservo_node import params as schema
 from vservo_node.interface import SUPERVISOR_STATES
@@ -41,10 +41,15 @@ VERDICT_COLOURS = {"converged": ("#e8f5e9", "#2e7d32"), "halted": ("#ffebee", "#
 WIDTH_IN = 11.0   # figure width, inches at 100 dpi: 1100 px, the page's width
 
 
-def new_figure(width: float = WIDTH_IN, height: float = 3.6) -> Figure:
-    """A figure on an Agg canvas (inches)."""
-    fig = Figure(figsize=(width, height), layout="constrained")
+def new_figure(width: float = WIDTH_IN, height: float = 3.6, right: float = 1.9,
+               left: float = 0.85, hspace: float = 0.32, wspace: float = 0.2) -> Figure:
+    """A figure on an Agg canvas, ``width`` x ``height`` inches, with fixed margins in inches
+    (``right``: room for the legends outside the plots). Fixed margins, not a layout engine:
+    the engine measured every label on every draw and took half of a report's time."""
+    fig = Figure(figsize=(width, height))
     FigureCanvasAgg(fig)
+    fig.subplots_adjust(left=left / width, right=1 - right / width, bottom=0.55 / height,
+                        top=1 - 0.4 / height, hspace=hspace, wspace=wspace)
     return fig
 
 
@@ -152,7 +157,8 @@ def fig_frames(run: RunData, metrics: dict) -> Figure | None:
     if size is None:
         return None
     aspect = size[1] / size[0]
-    fig = new_figure(WIDTH_IN, (WIDTH_IN / 2 - 0.8) * aspect + 0.9)
+    fig = new_figure(WIDTH_IN, (WIDTH_IN / 2 - 0.8) * aspect + 0.95, right=0.2, left=0.7,
+                     wspace=0.15)
     axes = fig.subplots(1, len(shots), squeeze=False)[0]
     paths = None
     if run.features is not None:
@@ -219,7 +225,7 @@ def fig_error(run: RunData, metrics: dict) -> Figure | None:
             k1 = max(k0 + 1, int(np.searchsorted(run.status_t, metrics["halts"][0]["t_s"])))
         t = run.status_t[k0:k1]
         ax.plot(t, ideal_decay(t, run.status["gain"][k0:k1], metrics["initial_rms_px"]), "--",
-                    label="ideal exp(-\u222b\u03bb dt) for the recorded gain")
+                    label="ideal: exp(-\u222b\u03bb dt)")
         ax.axvline(t[0], color="0.6", lw=0.8)
     if metrics["tolerance_px"]:
         ax.axhline(metrics["tolerance_px"], color="g", ls=":", label="tolerance")
@@ -283,7 +289,7 @@ def fig_joint_limits(run: RunData, motion: Motion, command: Command | None,
     scale = run.status["speed_scale"]
     if np.any(np.isfinite(scale) & (scale < 1)):
         ax.step(run.status_t, scale, where="post", color="r", lw=0.8, alpha=0.6,
-                label="bound in force (speed scale)")
+                label="x speed scale")
     _acted_rug(ax, run, ("joint_velocity",))
     _halt_marks(ax, metrics)
     ax.set(ylabel="|speed| / limit (-)", ylim=(0, 1.15),
@@ -336,7 +342,7 @@ def fig_cartesian_limits(run: RunData, motion: Motion, metrics: dict) -> Figure:
                180 / math.pi, "deg/s", "angular_speed"))
     for ax, (label, values, limit, unit_scale, unit, name) in zip(axes, series):
         if values is not None:
-            ax.plot(motion.t, values * unit_scale, lw=1, label=f"{label} (measured)")
+            ax.plot(motion.t, values * unit_scale, lw=1, label="measured")
         if limit:
             ax.axhline(limit * unit_scale, color="r", ls="--", lw=1,
                        label=f"limit {limit * unit_scale:.3g} {unit}")
@@ -357,16 +363,17 @@ def fig_envelope(run: RunData, motion: Motion, metrics: dict) -> Figure | None:
     p = run_params(run)
     fig = new_figure(WIDTH_IN, 4.4)
     ax1, ax2 = fig.subplots(2, 1, sharex=True)
-    ax1.plot(motion.t, moved * 1e3, lw=1.2, label="tool translation from the start pose")
+    ax1.plot(motion.t, moved * 1e3, lw=1.2, label="from the start pose")
     if p.get("limits.max_translation_m"):
         ax1.axhline(p["limits.max_translation_m"] * 1e3, color="r", ls="--", lw=1,
-                    label=f"limits.max_translation_m ({p['limits.max_translation_m'] * 1e3:.0f} mm)")
-    ax1.set(ylabel="translation (mm)", title="Motion envelope")
+                    label=f"limit ({p['limits.max_translation_m'] * 1e3:.0f} mm)")
+    ax1.set(ylabel="translation (mm)", title="Motion envelope: tool translation and rotation "
+            "from the start pose (limits.max_translation_m, limits.max_rotation_deg)")
     _legend(ax1)
-    ax2.plot(motion.t, turned, lw=1.2, label="tool rotation from the start pose")
+    ax2.plot(motion.t, turned, lw=1.2, label="from the start pose")
     if p.get("limits.max_rotation_deg"):
         ax2.axhline(p["limits.max_rotation_deg"], color="r", ls="--", lw=1,
-                    label=f"limits.max_rotation_deg ({p['limits.max_rotation_deg']:.0f} deg)")
+                    label=f"limit ({p['limits.max_rotation_deg']:.0f} deg)")
     ax2.set(ylabel="rotation (deg)", xlabel="time (s)")
     for ax in (ax1, ax2):
         _halt_marks(ax, metrics)
@@ -379,7 +386,7 @@ def fig_timeline(run: RunData, metrics: dict) -> Figure | None:
     t, states = run.status_t, run.status["state"]
     if t.size == 0:
         return None
-    fig = new_figure(WIDTH_IN, 2.6)
+    fig = new_figure(WIDTH_IN, 2.6, left=1.15)
     ax = fig.add_subplot()
     edges = np.append(t, t[-1] + (np.median(np.diff(t)) if t.size > 1 else 0.0))
     for row, state in enumerate(SUPERVISOR_STATES):
@@ -398,9 +405,10 @@ def fig_cycle_times(run: RunData) -> Figure | None:
     cycle = run.status["cycle_ms"][np.isfinite(run.status["cycle_ms"])]
     if cycle.size == 0:
         return None
-    fig = new_figure(6.0, 2.8)
+    fig = new_figure(6.0, 2.8, right=0.3)
     ax = fig.add_subplot()
     ax.hist(cycle, bins=min(40, max(5, cycle.size // 5)))
+    ax.yaxis.set_major_locator(MaxNLocator(integer=True))   # counts are whole
     ax.set(xlabel="cycle compute time (ms)", ylabel="cycles (count)", title="Cycle time")
     return fig
 
@@ -587,7 +595,9 @@ def write_report(bag: str | Path, out_dir: str | Path | None = None,
         ("Camera view at the start and at the end", [
             ("Camera frames with the detected features (green, numbered), their reference "
              "marks (blue) and error vectors (yellow, toward the mark); white: the feature "
-             "paths", fig_frames(run, metrics), "jpeg")]),
+             "paths" if run.features is not None else
+             "Camera frames (the record holds no detected features to mark on them)",
+             fig_frames(run, metrics), "jpeg")]),
         ("Image error", [("RMS image error against the ideal exponential decay for the "
                           "recorded gain, and the error of each feature", fig_error(run, metrics),
                           "png")]),
