@@ -721,9 +721,30 @@ def _map_bins(spec: SweepSpec, axis: Axis):
         return [f"{c:.3g}" if isinstance(c, float) else str(c) for c in categories], \
             categories.index
     edges = np.linspace(axis.low, axis.high, spec.map_bins + 1)
-    labels = [f"{(a + b) / 2:.3g}" for a, b in zip(edges[:-1], edges[1:])]
+    tiny = 1e-9 * max(abs(axis.high - axis.low), 1e-300)   # linspace round-off, not values
+
+    def num(v):
+        return f"{0.0 if abs(v) < tiny else v:.3g}"
+    labels = [f"{num(a)} to {num(b)}" for a, b in zip(edges[:-1], edges[1:])]
     return labels, lambda v: int(np.clip(np.searchsorted(edges, v, "right") - 1, 0,
                                          spec.map_bins - 1))
+
+
+# units of the scene quantities, for axis labels (controller parameters: params.SCHEMA's unit)
+SCENE_UNITS = {"start.rotation_deg": "deg", "start.lateral_m": "m", "start.tilt_deg": "deg",
+               "start.depth_m": "m", "calib.hand_eye_deg": "deg", "calib.hand_eye_m": "m",
+               "calib.focal": "relative error", "calib.depth": "relative error",
+               "image.noise_std": "grey levels", "image.scale": "fraction",
+               "sensing.noise_px": "px", "arm.joint_noise_std": "rad",
+               "arm.velocity_lag_s": "s", "arm.command_latency_s": "s"}
+
+
+def axis_label(name: str) -> str:
+    """``name (unit)`` of a swept quantity; ``(choice)`` for text parameters."""
+    param = params.BY_NAME.get(name)
+    unit = (param.unit or ("choice" if param.type is str else "-")) if param is not None \
+        else SCENE_UNITS.get(name, "-")
+    return f"{name} ({unit})"
 
 
 def success_map(spec: SweepSpec, rows: list) -> dict:
@@ -880,8 +901,8 @@ def _plot_map(summary: dict, path: Path) -> Path:
         for x, k, r in zip(xs, n, rate):
             ax.text(x, (0 if np.isnan(r) else r) + 0.02, f"n={k}", ha="center", fontsize=8)
         ax.set_xticks(xs, m["labels"][0])
-        ax.set_xlabel(m["axes"][0])
-        ax.set_ylabel("success rate")
+        ax.set_xlabel(axis_label(m["axes"][0]))
+        ax.set_ylabel("success rate (fraction)")
         ax.set_ylim(0, 1.1)
     else:
         cmap = matplotlib.colormaps["RdYlGn"].with_extremes(bad="lightgrey")  # grey: no episode
@@ -892,9 +913,9 @@ def _plot_map(summary: dict, path: Path) -> Path:
                         fontsize=8)
         ax.set_xticks(range(n.shape[0]), m["labels"][0])
         ax.set_yticks(range(n.shape[1]), m["labels"][1])
-        ax.set_xlabel(m["axes"][0])
-        ax.set_ylabel(m["axes"][1])
-        fig.colorbar(image, ax=ax, label="success rate")
+        ax.set_xlabel(axis_label(m["axes"][0]))
+        ax.set_ylabel(axis_label(m["axes"][1]))
+        fig.colorbar(image, ax=ax, label="success rate (fraction; grey: no episode)")
     ax.set_title(f"{summary['name']}: success by {' and '.join(m['axes'])}", fontsize=10)
     fig.tight_layout()
     fig.savefig(path, dpi=100)
