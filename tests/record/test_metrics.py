@@ -277,3 +277,30 @@ def test_episode_figures_follow_the_record_definitions():
     assert halted["time_to_converge_s"] is None and halted["time_to_halt_s"] == 6.2
     assert halted["reason"] == "run_timeout"
     assert all(k in DEFINITIONS for k in ("time_to_converge_s", "peak_joint_speed_ratio"))
+
+
+def test_the_nodes_detail_and_pose_estimate_are_shown_when_present(halted):
+    """Fields a newer node adds: ``detail`` (the check that fired) and the estimated pose error
+    in the result, ``pose_error_mm``/``_deg`` in status records (the last one counts when the
+    result has none). Older records simply lack them."""
+    from vservo_node.record.bag import _status_table
+    run = load_run(halted)
+    assert compute_metrics(run)["estimated_pose_error_mm"] is None
+    run.result = {**run.result, "detail": "image check: 4 frames against the prediction",
+                  "estimated_pose_error_mm": 0.8, "estimated_pose_error_deg": 0.2,
+                  "estimated_pose_error_spread_mm": 0.1}
+    m = compute_metrics(run)
+    assert m["detail"].startswith("image check") and m["estimated_pose_error_spread_mm"] == 0.1
+    rows = dict(headline(m))
+    assert rows["what fired"] == m["detail"]
+    assert rows["pose error (node's estimate)"] == "0.800 mm, 0.200 deg"
+    records = [{"t": 0.0, "state": "servoing", "pose_error_mm": 3.0, "pose_error_deg": 1.0,
+                "detail": ""},
+               {"t": 0.1, "state": "servoing", "pose_error_mm": 2.5, "pose_error_deg": None,
+                "detail": "x"}]
+    table = _status_table(records)
+    assert table["pose_error_mm"].dtype == float and table["detail"].dtype == object
+    run.status, run.status_t = table, np.array([0.0, 0.1])
+    run.result = {"converged": False, "reason": "diverging"}
+    m = compute_metrics(run)
+    assert m["estimated_pose_error_mm"] == 2.5 and m["estimated_pose_error_deg"] == 1.0
