@@ -5,7 +5,7 @@ PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
 ISOLATED := tools/isolated
 
-.PHONY: venv demo test test-core bench clean
+.PHONY: venv demo test test-core bench soak clean
 
 venv: $(STAMP)
 
@@ -27,6 +27,10 @@ test: venv
 # The suite without ROS processes (fast inner loop).
 test-core: venv
 	$(PY) -m pytest tests --ignore=tests/ros --ignore=tests/e2e $(PYTEST_ARGS)
+
+# Ten minutes of repeated runs on the simulated cell: memory, timing, records (tools/soak.py).
+soak: venv
+	$(ISOLATED) $(PY) tools/soak.py --minutes $(or $(SOAK_MINUTES),10)
 
 bench: venv
 	@for b in benchmarks/*.py; do echo "== $$b"; $(ISOLATED) $(PY) $$b || exit 1; done

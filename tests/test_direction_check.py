@@ -49,10 +49,10 @@ def _halt_time(monkeypatch, scenario, overrides=None):
     decided = []
     original = servo_module.Servo.halt
 
-    def halt(self, reason, t):
+    def halt(self, reason, t, detail=""):
         if self.state in ("servoing", "settling"):
             decided.append((reason, t - self._run.t_start))
-        original(self, reason, t)
+        original(self, reason, t, detail)
 
     monkeypatch.setattr(servo_module.Servo, "halt", halt)
     r = run_scenario_episode(scenario, overrides)

@@ -24,7 +24,7 @@ def test_defaults_are_valid_once_the_required_acceleration_is_given():
     ("control.interaction_estimate", "mean", "not one of"),
     ("limits.tool_linear_speed", 0.3, "outside"),          # above 0.25 m/s (ISO 10218-1 ceiling)
     ("robot.hand_eye", [0.0, 0.0, 0.1], "expected 0 or 7"),
-    ("limits.joint_acceleration", [2.0, -1.0], "> 0"),
+    ("limits.joint_acceleration", [2.0, -1.0], "outside [0.001, 100.0]"),
     ("control.min_features", 2.5, "not an integer"),
 ])
 def test_invalid_values_are_refused_with_the_reason(name, value, fragment):

@@ -53,6 +53,7 @@ STATUS_FIELDS = (
     "run_id",        # str
     "state",         # str, one of SUPERVISOR_STATES
     "reason",        # str, '' or the halt/refusal reason
+    "detail",        # str, '' or what the check that fired saw, with its figures
     "rms_px",        # float, RMS feature error in pixels
     "n_matched",     # int
     "gain",          # float, 1/s, the scheduled gain used
@@ -67,7 +68,7 @@ STATUS_FIELDS = (
 
 # Result of a run on TOPIC_RUN_RESULT and in run records.
 RESULT_FIELDS = (
-    "run_id", "converged", "reason", "time_s", "final_rms_px",
+    "run_id", "converged", "reason", "detail", "time_s", "final_rms_px",
     "final_pose_error_mm", "final_pose_error_deg",
 )
 

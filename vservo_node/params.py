@@ -15,9 +15,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import yaml
-
 from vservo_node.control.interaction import INTERACTION_ESTIMATES
+from vservo_node.yaml_files import YamlFileError, brief, load_yaml
 
 COMMAND_INTERFACES = ("joint_velocity", "joint_trajectory", "tool_twist", "camera_twist")
 DEPTH_SOURCES = ("constant", "taught", "target_model", "depth_image")
@@ -79,17 +78,17 @@ SCHEMA: tuple[Param, ...] = (
     _p("control.interaction_estimate", str, "blended", "which features the interaction matrix "
        "is evaluated at: current_view, taught_view, or blended (their mean)",
        choices=INTERACTION_ESTIMATES),
-    _p("control.gain_near", float, 1.0, "gain at zero image error", unit="1/s", low=0.0, high=10.0,
-       tighten="down"),
-    _p("control.gain_far", float, 0.5, "gain for large image errors", unit="1/s", low=0.0,
+    _p("control.gain_near", float, 1.0, "gain at zero image error", unit="1/s", low=0.01,
+       high=10.0, tighten="down"),
+    _p("control.gain_far", float, 0.5, "gain for large image errors", unit="1/s", low=0.01,
        high=10.0, tighten="down"),
     _p("control.gain_half_error_px", float, 60.0, "RMS error at which the gain is halfway "
        "between near and far", unit="px", low=0.1, high=5000.0),
     _p("control.soft_start_s", float, 0.5, "time constant of the soft start (first command "
        "zero); restarted when the matched feature set changes", unit="s", low=0.0, high=10.0),
     _p("control.singular_threshold", float, 0.003, "judged singular value below which damping "
-       "rises (normalized image units per rad)", low=0.0, high=10.0),
-    _p("control.max_damping", float, 0.003, "damping at a singularity", low=0.0, high=10.0),
+       "rises (normalized image units per rad)", low=1e-6, high=10.0),
+    _p("control.max_damping", float, 0.003, "damping at a singularity", low=1e-6, high=10.0),
     _p("control.null_space_gain", float, 0.5, "gain of the joint-limit avoidance task in the "
        "null space (redundant arms; 0 = off)", unit="1/s", low=0.0, high=10.0),
     _p("control.tolerance_px", float, 0.5, "RMS image error that counts as arrived", unit="px",
@@ -99,7 +98,7 @@ SCHEMA: tuple[Param, ...] = (
     _p("control.settled_joint_speed", float, 0.01, "joint speeds below this count as stopped",
        unit="rad/s", low=1e-5, high=1.0),
     _p("control.min_features", int, 4, "fewest matched points to servo on (three give several "
-       "global minima)", low=3, high=1000),
+       "global minima)", low=3, high=1000, tighten="up"),
     _p("control.max_run_s", float, 60.0, "longest run before a halt", unit="s", low=0.1,
        high=3600.0, tighten="down"),
     _p("control.max_initial_error_px", float, 400.0, "refuse to start above this RMS error",
@@ -108,7 +107,7 @@ SCHEMA: tuple[Param, ...] = (
        "tilts about its own centre by up to this feature shift and back, so a wrong hand-eye or "
        "optical frame, or a command order that swaps the joints the nod moves, halts "
        "(wrong_direction) within the nod; 0 = no nod",
-       unit="px", low=0.0, high=50.0),
+       unit="px", low=0.0, high=50.0, tighten="up"),
     _p("control.direction_probe_s", float, 0.3, "duration of the start nod", unit="s",
        low=0.05, high=5.0),
     _p("control.predict_between_frames", bool, False, "at each output tick, re-run the law on "
@@ -118,18 +117,18 @@ SCHEMA: tuple[Param, ...] = (
        "the gain)", unit="s", low=0.0, high=2.0),
     # --- limits --------------------------------------------------------------------------------
     _p("limits.joint_velocity_scale", float, 0.5, "fraction of the URDF joint velocity limits",
-       low=0.0, high=1.0, tighten="down"),
+       low=0.01, high=1.0, tighten="down"),
     _p("limits.joint_acceleration", list, [], "per-joint acceleration limits in chain order, or "
        "one value for all (the URDF has none)", unit="rad/s^2", item=float, required=True,
-       tighten="down"),
+       tighten="down", low=1e-3, high=100.0),
     _p("limits.position_margin", float, 0.03, "keep joints this far inside their URDF limits",
        unit="rad", low=0.0, high=1.0, tighten="up"),
     _p("limits.tool_linear_speed", float, 0.10, "linear speed limit of robot.tool_point",
-       unit="m/s", low=0.0, high=0.25, tighten="down"),
+       unit="m/s", low=0.001, high=0.25, tighten="down"),
     _p("limits.camera_linear_speed", float, 0.10, "linear speed limit of the camera", unit="m/s",
-       low=0.0, high=0.25, tighten="down"),
+       low=0.001, high=0.25, tighten="down"),
     _p("limits.angular_speed", float, 0.6, "angular speed limit of the tool", unit="rad/s",
-       low=0.0, high=3.0, tighten="down"),
+       low=0.001, high=3.0, tighten="down"),
     _p("limits.max_translation_m", float, 0.30, "motion envelope: largest tool translation from "
        "the start pose", unit="m", low=0.0, high=2.0, tighten="down"),
     _p("limits.max_rotation_deg", float, 180.0, "motion envelope: largest tool rotation from the "
@@ -153,6 +152,10 @@ SCHEMA: tuple[Param, ...] = (
        tighten="up"),
     _p("io.permit_timeout_s", float, 0.5, "a permit older than this counts as withdrawn",
        unit="s", low=0.01, high=10.0, tighten="down"),
+    _p("io.stamp_tolerance_s", float, 2.0, "images and joint states stamped further than this "
+       "from the node's clock (future or past) are refused and counted: a stamp far off (a "
+       "clock out of step, a corrupt message) must not evict good joint history or pair a "
+       "frame with the wrong joints", unit="s", low=0.01, high=60.0, tighten="down"),
     _p("io.camera_time_offset_s", float, 0.0, "added to image stamps (cameras whose stamps lag "
        "the shutter use a negative value)", unit="s", low=-1.0, high=1.0),
     _p("io.image_rectified", bool, False, "the image topic carries rectified images "
@@ -203,9 +206,11 @@ def check_value(param: Param, value: Any) -> tuple[Any, str | None]:
         if param.length and len(items) not in param.length:
             return None, (f"{param.name}: has {len(items)} elements, expected "
                           f"{' or '.join(map(str, param.length))}")
-        if param.item is float and param.name == "limits.joint_acceleration":
-            if any(v <= 0 for v in items):
-                return None, f"{param.name}: every acceleration limit must be > 0, got {items}"
+        if param.item is float and param.low is not None:
+            outside = [v for v in items if not param.low <= v <= param.high]
+            if outside:
+                return None, (f"{param.name}: {outside} outside [{param.low}, {param.high}]"
+                              f"{' ' + param.unit if param.unit else ''}")
         return items, None
     if param.type is float:
         if isinstance(value, bool) or not isinstance(value, (int, float)):
@@ -257,6 +262,21 @@ def _loosens(param: Param, old: Any, new: Any) -> bool:
     return new > old if param.tighten == "down" else new < old
 
 
+def unknown_name_message(name: str) -> str:
+    """'<name>: unknown parameter', with the nearest schema name when one is close (a typo in
+    the section or in the leaf: difflib's ratio over whole names and over leaves)."""
+    import difflib
+
+    names = [p.name for p in SCHEMA]
+    close = difflib.get_close_matches(str(name), names, n=1, cutoff=0.6)
+    if not close:
+        leaf = str(name).split(".")[-1]
+        by_leaf = {p.name.split(".")[-1]: p.name for p in SCHEMA}
+        leaves = difflib.get_close_matches(leaf, list(by_leaf), n=1, cutoff=0.7)
+        close = [by_leaf[leaves[0]]] if leaves else []
+    return f"{name}: unknown parameter" + (f" (did you mean {close[0]}?)" if close else "")
+
+
 def validate(values: dict[str, Any]) -> CheckResult:
     """Merge values over the defaults and check each; unknown names are errors."""
     merged = defaults()
@@ -264,9 +284,7 @@ def validate(values: dict[str, Any]) -> CheckResult:
     for name, value in values.items():
         param = BY_NAME.get(name)
         if param is None:
-            close = [p.name for p in SCHEMA if p.name.split(".")[-1] == name.split(".")[-1]]
-            hint = f" (did you mean {close[0]}?)" if close else ""
-            result.errors.append(f"{name}: unknown parameter{hint}")
+            result.errors.append(unknown_name_message(name))
             continue
         clean, reason = check_value(param, value)
         if reason:
@@ -300,19 +318,48 @@ def flatten(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
     return flat
 
 
+def _flatten_checked(tree: dict, path, where: str, prefix: str = "") -> dict[str, Any]:
+    """``flatten`` for a parameter file: each leaf must be a value or a list of values (what a
+    ROS 2 parameter can hold); YamlFileError naming the key otherwise."""
+    flat: dict[str, Any] = {}
+    for key, value in tree.items():
+        name = f"{prefix}{key}"
+        if isinstance(value, dict):
+            flat.update(_flatten_checked(value, path, where, name + "."))
+        elif isinstance(value, list) and any(isinstance(v, (dict, list)) for v in value):
+            raise YamlFileError(f"{path}: {where}.{name}: a list of mappings or lists; expected "
+                                f"a value or a list of values, got {brief(value)}")
+        else:
+            flat[name] = value
+    return flat
+
+
 def load_params_file(path: str | Path, node_name: str = "vservo") -> dict[str, Any]:
-    """Read the ros__parameters of node_name (or of '/**') from a ROS 2 parameter file."""
-    data = yaml.safe_load(Path(path).read_text()) or {}
+    """Read the ros__parameters of node_name (or of '/**') from a ROS 2 parameter file.
+
+    YamlFileError (a ValueError) naming the file and the key for anything but
+    ``{node: {ros__parameters: {name: value, ...}}}`` (see ``yaml_files.load_yaml``: size cap,
+    no anchors/aliases or tags).
+    """
+    data = load_yaml(path)
+    if data is None:
+        return {}
     if not isinstance(data, dict):
-        raise ValueError(f"{path}: expected a mapping of node names to ros__parameters")
+        raise YamlFileError(f"{path}: top level: expected a mapping of node names to "
+                            f"ros__parameters, got {brief(data)}")
     values: dict[str, Any] = {}
     for key in ("/**", node_name, "/" + node_name):
-        section = data.get(key)
-        if isinstance(section, dict) and isinstance(section.get("ros__parameters"), dict):
-            values.update(flatten(section["ros__parameters"]))
+        if key not in data:
+            continue
+        section = data[key]
+        if not isinstance(section, dict) or not isinstance(section.get("ros__parameters"), dict):
+            raise YamlFileError(f"{path}: {key}: expected a mapping with 'ros__parameters' (a "
+                                f"mapping of parameter names to values), got {brief(section)}")
+        values.update(_flatten_checked(section["ros__parameters"], path,
+                                       f"{key}.ros__parameters"))
     if not values and data:
-        raise ValueError(f"{path}: no ros__parameters for node '{node_name}' or '/**' "
-                         f"(found sections: {', '.join(map(str, data))})")
+        raise YamlFileError(f"{path}: no ros__parameters for node '{node_name}' or '/**' "
+                            f"(found sections: {brief(', '.join(map(str, data)))})")
     return values
 
 

@@ -51,6 +51,11 @@ HALT_REASONS = {
     "numerical_fault": "a non-finite value reached the control law or the limiter",
     "motion_disabled": "motion was disabled",
     "internal_error": "an unexpected error in the node (see its log)",
+    "frames_unpaired": "images arrive but none can be paired with a joint state (their stamps "
+                       "and the joint states' do not overlap)",
+    "image_jacobian_singular": "the image Jacobian stayed nearly singular: the features no "
+                               "longer determine the camera motion",
+    "shutdown": "the node was asked to shut down (signal or lifecycle) during a run",
 }
 MOVING_STATES = ("servoing", "settling", "braking")
 
@@ -135,6 +140,13 @@ class ServoSettings:
     diverge_margin_px: float = 20.0
     follow_window_s: float = 0.5          # judge following over this window
     follow_min_ratio: float = 0.2         # measured / commanded joint travel below -> halt
+    # no observation for this long while a run moves -> image_stale (io.image_timeout_s);
+    # judged on the output tick, so a run halts even when no frame can be used at all
+    observation_timeout_s: float = 0.25
+    # the judged singular value below this fraction of singular_threshold for singular_halt_s
+    # -> image_jacobian_singular (our thresholds, common practice, no source)
+    singular_halt_fraction: float = 0.05
+    singular_halt_s: float = 1.0
     # speed-scale margins (our design, common practice, no source): each is 1 away from its
     # hazard and falls linearly to margin_floor at it; hard halts take over beyond
     margin_floor: float = 0.2
@@ -171,6 +183,7 @@ class ServoSettings:
             max_translation_m=get("limits.max_translation_m", cls.max_translation_m),
             max_rotation_deg=get("limits.max_rotation_deg", cls.max_rotation_deg),
             min_camera_distance_m=get("limits.min_camera_distance_m", cls.min_camera_distance_m),
+            observation_timeout_s=get("io.image_timeout_s", cls.observation_timeout_s),
         )
 
     def law_config(self) -> LawConfig:
@@ -196,6 +209,8 @@ class _RunState:
     follow_q0: np.ndarray | None = None
     final_rms: float = math.nan
     end_t: float | None = None
+    last_obs_t: float | None = None        # time of the last observation the law used
+    singular_since: float | None = None
 
 
 @dataclass
@@ -230,6 +245,9 @@ class Servo:
         self.state = "disabled"
         self.enabled = False
         self.reason = ""
+        self.detail = ""          # what the check that fired saw, with its figures
+        self._direction_detail = ""
+        self._follow_detail = ""
         self.external_scale = 1.0
         self._run: _RunState | None = None
         self._frame: _Frame | None = None
@@ -239,6 +257,26 @@ class Servo:
         self._margin_scale = 1.0
         self._runs = 0
         self.result: dict[str, Any] | None = None
+
+    # --- configuration ---------------------------------------------------------------------
+    @staticmethod
+    def check_config(arm, settings: ServoSettings, limits: LimitSet) -> None:
+        """ValueError saying what does not fit, for settings and limits this arm would get:
+        everything :meth:`reconfigure` builds is built here first, so a change that passes
+        this check applies without raising."""
+        ControlLaw(settings.law_config(), arm.lower, arm.upper)
+        Limiter(limits)
+        if limits.n != arm.n:
+            raise ValueError(f"limits for {limits.n} joints; the arm has {arm.n}")
+
+    def reconfigure(self, settings: ServoSettings, limits: LimitSet) -> None:
+        """New settings and limits, applied at once (also mid-run): the running limiter keeps
+        its previous command, so a lowered limit is reached through the deceleration limit."""
+        self.check_config(self.arm, settings, limits)
+        self.settings = settings
+        self.law.config = settings.law_config()
+        self.limits = limits
+        self.limiter.limits = limits
 
     # --- supervisor commands -------------------------------------------------------------
     def set_reference(self, view: TaughtView) -> None:
@@ -267,6 +305,9 @@ class Servo:
             return False, f"cannot start in state '{self.state}' (a run is in progress)"
         if self.reference is None:
             return False, "no taught reference loaded"
+        outside = self.joints_outside_limits(q)
+        if outside:
+            return False, "joint(s) outside their limits: " + "; ".join(outside)
         self._runs += 1
         self._run = _RunState(run_id or f"run{self._runs}", t,
                               self.arm.fk(np.asarray(q, float)))
@@ -275,8 +316,22 @@ class Servo:
         self._desired = np.zeros(self.arm.n)
         self.limiter = Limiter(self.limits)  # counts are per run
         self._last_cmd = np.zeros(self.arm.n)
-        self.state, self.reason, self.result = "servoing", "", None
+        self.state, self.reason, self.detail, self.result = "servoing", "", "", None
         return True, f"run {self._run.run_id} started"
+
+    def joints_outside_limits(self, q) -> list[str]:
+        """One line per joint of q outside the arm's position limits (or not finite)."""
+        q = np.asarray(q, dtype=float)
+        out = []
+        if q.shape != (self.arm.n,):
+            return [f"{q.shape[0] if q.ndim else 0} joint values for {self.arm.n} joints"]
+        for name, value, low, high in zip(self.arm.joint_names, q, self.arm.lower,
+                                          self.arm.upper):
+            if not math.isfinite(value):
+                out.append(f"{name} = {value} (not finite)")
+            elif value < low or value > high:
+                out.append(f"{name} = {value:.4f} rad outside [{low:.4f}, {high:.4f}]")
+        return out
 
     def stop(self, t: float) -> tuple[bool, str]:
         if self.state in ("servoing", "settling"):
@@ -284,11 +339,12 @@ class Servo:
             return True, "stopping: braking to zero"
         return True, f"nothing to stop in state '{self.state}'"
 
-    def halt(self, reason: str, t: float) -> None:
-        """Begin braking for reason (a key of HALT_REASONS). Only the first reason counts."""
+    def halt(self, reason: str, t: float, detail: str = "") -> None:
+        """Begin braking for reason (a key of HALT_REASONS), ``detail`` saying what the check
+        saw. Only the first reason counts."""
         if self.state not in ("servoing", "settling"):
             return
-        self.state, self.reason = "braking", reason
+        self.state, self.reason, self.detail = "braking", reason, detail
         self._desired = np.zeros(self.arm.n)
 
     # --- the vision cycle ------------------------------------------------------------------
@@ -301,7 +357,8 @@ class Servo:
         ref_index = self.reference.index()
         pairs = [(i, ref_index[k]) for i, k in enumerate(obs.keys) if k in ref_index]
         if len(pairs) < s.min_features:
-            self.halt("too_few_features", t)
+            self.halt("too_few_features", t, f"{len(pairs)} of {len(self.reference.keys)} "
+                      f"taught features matched; control.min_features = {s.min_features}")
             return
         now_i, ref_i = (np.array(ix) for ix in zip(*pairs))
         keys = tuple(obs.keys[i] for i in now_i)
@@ -312,10 +369,13 @@ class Servo:
         z_now = self._current_depth(obs, now_i, z_ref)
         if not (np.all(np.isfinite(xy_now)) and np.all(np.isfinite(z_now)) and
                 np.all(np.isfinite(q))):
-            self.halt("numerical_fault", t)
+            bad = [name for name, v in (("features", xy_now), ("depths", z_now), ("joints", q))
+                   if not np.all(np.isfinite(v))]
+            self.halt("numerical_fault", t, "non-finite " + ", ".join(bad) + " in an image cycle")
             return
         if np.min(z_now) < s.min_camera_distance_m:
-            self.halt("too_close", t)
+            self.halt("too_close", t, f"nearest feature at {np.min(z_now):.3f} m < "
+                      f"limits.min_camera_distance_m = {s.min_camera_distance_m} m")
             return
         e = (xy_now - xy_ref).ravel()
         error_px = uv_now - uv_ref
@@ -328,7 +388,8 @@ class Servo:
         J_move = np.stack([L_local[:, :3] @ camera_jac[:3], L_local[:, 3:] @ camera_jac[3:]])
         prev = self._frame
         if prev is None and rms_px > s.max_initial_error_px:
-            self.halt("initial_error_too_large", t)
+            self.halt("initial_error_too_large", t, f"first RMS error {rms_px:.1f} px > "
+                      f"control.max_initial_error_px = {s.max_initial_error_px}")
             return
         if prev is None or prev.keys != keys:
             self.law.restart(e, t)
@@ -341,32 +402,24 @@ class Servo:
             if verdict is not None:          # judged: the next judgement starts here
                 run.direction_anchor = frame
             if verdict:
-                self.halt("wrong_direction", t)
+                self.halt("wrong_direction", t, "image check: " + self._direction_detail)
                 return
         self._frame = frame
+        run.last_obs_t = t
         run.best_rms = min(run.best_rms, rms_px)
         run.final_rms = rms_px
-        # the arm against its command first: when it moves wrongly the error also grows, and
-        # the more specific reason is the more useful one
-        following = self._following(q, t)
-        if following:
-            self.halt(following, t)
-            return
         if rms_px > s.diverge_factor * run.best_rms + s.diverge_margin_px:
-            self.halt("diverging", t)
+            self.halt("diverging", t, f"RMS error {rms_px:.1f} px > {s.diverge_factor} x best "
+                      f"{run.best_rms:.1f} px + {s.diverge_margin_px} px")
             return
-        if t - run.t_start > s.max_run_s:
-            self.halt("run_timeout", t)
-            return
-        envelope_used = self._envelope_used(q)
-        if envelope_used > 1.0:
-            self.halt("motion_envelope", t)
-            return
+        envelope_used = self._envelope_fraction(q)   # for the margins; the tick halts on it
         dq, info = self.law.compute(J_img, e, rms_px, q, t,
                                     null_space_enabled=self.state == "servoing")
         self._law_info = info
         if info.fault:
-            self.halt("numerical_fault", t)
+            self.halt("numerical_fault", t, "the control law got non-finite values")
+            return
+        if self._singular_too_long(info, t):
             return
         nod = self._probe(camera_jac, t)
         if nod is None:
@@ -444,6 +497,11 @@ class Servo:
         cosine = float(seen @ predicted) / max(seen_norm * np.linalg.norm(predicted), 1e-300)
         opposed = (residual > self.WRONG_DIRECTION_RESIDUAL * seen_norm
                    and cosine < self.WRONG_DIRECTION_COSINE)
+        self._direction_detail = (
+            f"features moved {math.degrees(math.acos(max(-1.0, min(1.0, cosine)))):.0f} deg away "
+            f"from the predicted motion (fit residual {residual / max(seen_norm, 1e-300):.2f} of "
+            "the seen motion) for several frames: check the hand-eye (robot.hand_eye), the "
+            "camera's optical frame and the depth source")
         run = self._run
         run.wrong_frames = run.wrong_frames + 1 if opposed else 0
         return run.wrong_frames >= s.wrong_direction_frames
@@ -481,7 +539,7 @@ class Servo:
         twist = np.array([0.0, 0.0, 0.0, w, w, 0.0])
         return np.linalg.pinv(camera_jac, rcond=1e-3) @ twist
 
-    def _envelope_used(self, q: np.ndarray) -> float:
+    def _envelope_fraction(self, q: np.ndarray) -> float:
         """Fraction of the motion envelope used: the larger of tool translation and rotation
         from the start pose over their maxima (> 1: outside)."""
         s, run = self.settings, self._run
@@ -508,6 +566,8 @@ class Servo:
         s, run = self.settings, self._run
         nodding = self._nodding(t)
         if run.follow_q0 is None:
+            if nodding and run.probe_t0 is None:
+                return ""         # no image yet: nothing commanded, the nod starts with one
             self._open_follow_window(q, t, "nod_out" if nodding else "run")
             return ""
         if run.follow_phase == "nod_out":
@@ -545,10 +605,41 @@ class Servo:
         if commanded <= self.FOLLOW_MIN_TRAVEL:
             return ""
         if measured < s.follow_min_ratio * commanded:
+            self._follow_detail = (
+                f"follow check: joints travelled {measured:.4f} rad of the {commanded:.4f} rad "
+                f"commanded (< {s.follow_min_ratio} of it): is the arm's controller active and "
+                "listening to this node's command topic?")
             return "not_following" if judge_travel else ""
         if float(moved @ asked) < self.FOLLOW_COSINE * measured * commanded:
+            worst = int(np.argmin(moved * asked))
+            self._follow_detail = (
+                f"follow check: joints travelled {math.degrees(math.acos(max(-1.0, min(1.0, float(moved @ asked) / (measured * commanded))))):.0f}"
+                f" deg away from their command (joint {self.arm.joint_names[worst]} moved "
+                f"{moved[worst]:+.4f} rad, commanded {asked[worst]:+.4f} rad): check "
+                "io.command_joint_order and the signs of the arm's controller")
             return "wrong_direction"
         return ""
+
+    def _singular_too_long(self, info, t: float) -> bool:
+        """Halt image_jacobian_singular when the judged singular value stayed below
+        singular_halt_fraction x singular_threshold for singular_halt_s: the damped solve then
+        barely moves the arm, and the run would only end at its timeout."""
+        s, run = self.settings, self._run
+        sigma = info.dls.sigma_judge if info.dls is not None else math.inf
+        floor = s.singular_halt_fraction * s.singular_threshold
+        if not sigma < floor:
+            run.singular_since = None
+            return False
+        if run.singular_since is None:
+            run.singular_since = t
+        if t - run.singular_since < s.singular_halt_s:
+            return False
+        self.halt("image_jacobian_singular", t,
+                  f"judged singular value {sigma:.2e} < {floor:.2e} for {t - run.singular_since:.2f}"
+                  " s: the features (nearly) cannot tell some camera motions apart, e.g. a turn "
+                  "near 180 deg about the optical axis; teach closer to the start view or use "
+                  "a decoupled scheme")
+        return True
 
     def _margins(self, info, uv: np.ndarray, q: np.ndarray, envelope_used: float) -> float:
         """Speed scale in [margin_floor, 1]: the smallest of the singularity, joint-limit,
@@ -577,28 +668,102 @@ class Servo:
 
     # --- the output cycle ------------------------------------------------------------------
     def command(self, q: np.ndarray, t: float, dt: float) -> tuple[np.ndarray, dict]:
-        """Limited joint command for this output period and the status record."""
+        """Limited joint command for this output period and the status record.
+
+        Never raises: non-finite joints halt ``numerical_fault`` and an unexpected error
+        ``internal_error``; either way the command ramps from the last one to zero at the
+        deceleration limit without kinematics (:meth:`brake_blind`)."""
+        try:
+            return self._command(q, t, dt)
+        except Exception as exc:  # noqa: BLE001 - the last-resort guard of the output tick
+            self.halt("internal_error", t, f"{type(exc).__name__} in the output cycle: {exc}")
+            return self.brake_blind(t, dt)
+
+    def _command(self, q, t: float, dt: float) -> tuple[np.ndarray, dict]:
         q = np.asarray(q, dtype=float)
-        if self.state in ("servoing", "settling", "braking"):
-            if self.state != "braking" and self.settings.predict_between_frames:
-                self._predict(q, t)
-            desired = self._desired if self.state != "braking" else np.zeros(self.arm.n)
-            scale = min(self.external_scale, self._margin_scale)
-            J_tool_pt, J_cam_pt, J_ang = self._cartesian_jacobians(q)
-            cmd, report = self.limiter.step(desired, q, dt, J_tool_pt, J_cam_pt, J_ang,
-                                            speed_scale=scale)
-            if report.fault and self.state != "braking":
-                self.halt("numerical_fault", t)
-            if "position_envelope" in report.acted and self.state != "braking":
-                self.halt("joint_limit_envelope", t)
-            if self._run is not None:
-                self._run.follow_cmd = self._run.follow_cmd + cmd * dt
-            if self.state == "braking" and np.max(np.abs(cmd)) <= 1e-9:
-                cmd = np.zeros(self.arm.n)
-                self._end("halted", self.reason, t)
-            acted = list(report.acted)
-        else:
-            cmd, acted = np.zeros(self.arm.n), []
+        if self.state not in MOVING_STATES:
+            cmd = np.zeros(self.arm.n)
+            self._last_cmd = cmd
+            return cmd, self._status(t, cmd, [])
+        if q.shape != (self.arm.n,) or not np.all(np.isfinite(q)):
+            bad = [n for n, v in zip(self.arm.joint_names, np.ravel(q)) if not math.isfinite(v)]
+            self.halt("numerical_fault", t, "non-finite joint position(s): " + ", ".join(bad)
+                      if bad else f"joint positions of shape {q.shape}")
+            return self.brake_blind(t, dt)
+        if self.state != "braking":
+            self._supervise(q, t)
+        if self.state != "braking" and self.settings.predict_between_frames:
+            self._predict(q, t)
+        desired = self._desired if self.state != "braking" else np.zeros(self.arm.n)
+        scale = min(self.external_scale, self._margin_scale)
+        J_tool_pt, J_cam_pt, J_ang = self._cartesian_jacobians(q)
+        cmd, report = self.limiter.step(desired, q, dt, J_tool_pt, J_cam_pt, J_ang,
+                                        speed_scale=scale)
+        if report.fault and self.state != "braking":
+            self.halt("numerical_fault", t, f"limiter: {report.fault}")
+        if "position_envelope" in report.acted and self.state != "braking":
+            joint = (self.arm.joint_names[report.winner_joint]
+                     if report.winner == "position_envelope" and report.winner_joint is not None
+                     else "a joint")
+            self.halt("joint_limit_envelope", t, f"{joint} is within its braking distance of "
+                      f"its limit (limits.position_margin included)")
+        self._run.follow_cmd = self._run.follow_cmd + cmd * dt
+        return self._finish_tick(cmd, t, list(report.acted))
+
+    def _supervise(self, q: np.ndarray, t: float) -> None:
+        """The checks that bound motion, judged on every output tick from the latest joints,
+        whether or not a frame could be used: run timeout, no observation for
+        observation_timeout_s, the motion envelope, and the arm following its command."""
+        s, run = self.settings, self._run
+        if t - run.t_start > s.max_run_s:
+            self.halt("run_timeout", t, f"run lasted {t - run.t_start:.2f} s > "
+                      f"control.max_run_s = {s.max_run_s} s")
+            return
+        since = run.last_obs_t if run.last_obs_t is not None else run.t_start
+        if t - since > s.observation_timeout_s:
+            self.halt("image_stale", t, f"no image used by the servo for {t - since:.2f} s "
+                      f"(io.image_timeout_s = {s.observation_timeout_s} s)")
+            return
+        if self._envelope_fraction(q) > 1.0:
+            moved_m, turned = frames.pose_error(run.T_base_tool_start, self.arm.fk(q))
+            self.halt("motion_envelope", t, f"tool moved {1e3 * moved_m:.1f} mm / turned "
+                      f"{math.degrees(turned):.1f} deg from its start pose (limits."
+                      f"max_translation_m = {s.max_translation_m}, max_rotation_deg = "
+                      f"{s.max_rotation_deg})")
+            return
+        # the arm against its command (before the image error's growth, judged per frame in
+        # observe: when the arm moves wrongly the error also grows, and the more specific
+        # reason is the more useful one)
+        following = self._following(q, t)
+        if following:
+            self.halt(following, t, self._follow_detail)
+
+    def brake_blind(self, t: float, dt: float) -> tuple[np.ndarray, dict]:
+        """Ramp the last command to zero at the deceleration limit, every joint scaled alike
+        (direction kept), with no kinematics and no joint positions: the path for non-finite
+        joints and unexpected errors. Ends the run (halted) once at zero."""
+        last = np.asarray(self._last_cmd, dtype=float)
+        if not np.all(np.isfinite(last)):
+            last = np.zeros(self.arm.n)
+        speed = np.abs(last)
+        moving = speed > 0
+        c = 0.0
+        if np.any(moving):
+            accel = np.broadcast_to(self.limits.acceleration, last.shape)
+            c = max(0.0, 1.0 - float(np.min(accel[moving] * dt / speed[moving])))
+        cmd = c * last
+        try:
+            self.limiter.previous = cmd.copy()
+        except Exception:  # noqa: BLE001 - a broken limiter must not stop the braking
+            pass
+        if self.state == "servoing" or self.state == "settling":
+            self.state = "braking"
+        return self._finish_tick(cmd, t, ["blind_brake"])
+
+    def _finish_tick(self, cmd: np.ndarray, t: float, acted: list) -> tuple[np.ndarray, dict]:
+        if self.state == "braking" and np.max(np.abs(cmd)) <= 1e-9:
+            cmd = np.zeros(self.arm.n)
+            self._end("halted", self.reason, t)
         self._last_cmd = cmd
         return cmd, self._status(t, cmd, acted)
 
@@ -658,7 +823,7 @@ class Servo:
         run.end_t = t
         self.result = {
             "run_id": run.run_id, "converged": state == "converged", "reason": reason,
-            "time_s": t - run.t_start, "final_rms_px": run.final_rms,
+            "time_s": t - run.t_start, "final_rms_px": run.final_rms, "detail": self.detail,
             "final_pose_error_mm": None, "final_pose_error_deg": None,
         }
 
@@ -670,6 +835,7 @@ class Servo:
             "run_id": self._run.run_id if self._run else "",
             "state": self.state,
             "reason": self.reason,
+            "detail": self.detail,
             "rms_px": frame.rms_px if frame else math.nan,
             "n_matched": len(frame.keys) if frame else 0,
             "gain": info.gain if info else 0.0,

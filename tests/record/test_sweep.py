@@ -36,7 +36,7 @@ def _sweep(**entries):
 @pytest.mark.parametrize("entries, complaint", [
     ({"axes": {"start.spin": {"values": [1.0]}}}, "unknown quantity 'start.spin'"),
     ({"axes": {"control.gain_nearr": {"values": [1.0]}}}, "unknown quantity"),
-    ({"axes": {"control.gain_near": {"values": [20.0]}}}, "outside [0.0, 10.0]"),
+    ({"axes": {"control.gain_near": {"values": [20.0]}}}, "outside [0.01, 10.0]"),
     ({"axes": {"start.lateral_m": {"range": [0.0, 0.1]}}}, "steps (needed in grid mode)"),
     ({"axes": {"start.lateral_m": {"range": [0.1, 0.0], "steps": 3}}}, "low <= high"),
     ({"axes": {"start.lateral_m": {"values": [0.1], "range": [0, 1]}}}, "either 'values'"),

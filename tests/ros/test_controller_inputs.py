@@ -92,7 +92,7 @@ def test_robot_model_from_the_robot_description_topic(rig, processes):
     """Model from the sim's latched topic: capture (which needs perception and a fresh image)
     and enable pass, and the log says where the model came from."""
     _wait_for_sim_images(rig)
-    expect(rig.trigger(itf.SRV_CAPTURE_REFERENCE), True, "loaded")
+    expect(rig.capture(), True, "loaded")
     expect(rig.enable(True), True, "motion enabled")
     rig.wait_state("armed")
     assert "robot model from the robot_description topic: 7 joints" \
@@ -127,7 +127,7 @@ def test_compressed_images_are_decoded_and_matched(rig):
     harness.wait_for_subscriber(rig.node, "/cz/" + itf.TOPIC_IMAGE_COMPRESSED, 20.0, rig.procs)
     _wait_for_sim_images(rig)
     for prefix in ("/cz/", "/"):   # both taught now: the test does not rely on the first one
-        expect(rig.call(Trigger, prefix + itf.SRV_CAPTURE_REFERENCE), True, "loaded")
+        expect(rig.capture(prefix), True, "loaded")
     harness.spin_until(rig.node, lambda: len(features) >= 10 and len(raw_features) >= 10,
                        10.0, "10 feature messages from each controller", rig.procs)
     assert rms and max(m.data for m in rms) < 0.5   # taught from this very (static) view

@@ -72,7 +72,12 @@ def stub_main() -> None:
     T_base_target = arm.camera_pose(home) @ frames.transform(np.eye(3), [0.0, 0.0, 0.4])
     lock = threading.Lock()
     state = {"q": home.copy(), "cmd": np.zeros(arm.n), "cmd_t": -1.0, "running": False,
-             "images": True, "joints": True, "info_size": None}
+             "images": True, "joints": True, "info_size": None,
+             # adversarial orders (tests/ros/test_failsafe_node.py): stamp offsets (s) of
+             # joint states and images, a NaN position in every joint state, one joint
+             # state stamped spike_s in the future
+             "joint_stamp_offset": 0.0, "image_stamp_offset": 0.0, "nan_joint": False,
+             "spike_s": 0.0}
 
     rclpy.init()
     node = rclpy.create_node("stub_cell")
@@ -109,15 +114,25 @@ def stub_main() -> None:
                     state["q"] = state["q"] + state["cmd"] * dt
                 q, s = state["q"].copy(), dict(state)
             stamp = time.time()
+            if s["spike_s"]:
+                with lock:
+                    state["spike_s"] = 0.0
+                pub_joints.publish(convert.joint_state(arm.joint_names, q + 0.3,
+                                                       stamp=stamp + s["spike_s"]))
             if s["running"] and s["joints"]:
-                pub_joints.publish(convert.joint_state(arm.joint_names, q, stamp=stamp))
+                q_out = q.copy()
+                if s["nan_joint"]:
+                    q_out[2] = float("nan")
+                pub_joints.publish(convert.joint_state(arm.joint_names, q_out,
+                                                       stamp=stamp + s["joint_stamp_offset"]))
             if s["running"] and s["images"] and tick % 3 == 0:
                 image = np.full((camera.height, camera.width, 3), 90, np.uint8)
                 T_camera_target = frames.invert(arm.camera_pose(q)) @ T_base_target
                 renderer.draw(image, texture, T_camera_target)
                 info_camera = camera.scaled(*s["info_size"]) if s["info_size"] else camera
-                pub_info.publish(convert.model_to_camera_info(info_camera, stamp))
-                pub_image.publish(convert.numpy_to_image(image, "bgr8", stamp))
+                image_stamp = stamp + s["image_stamp_offset"]
+                pub_info.publish(convert.model_to_camera_info(info_camera, image_stamp))
+                pub_image.publish(convert.numpy_to_image(image, "bgr8", image_stamp))
             tick += 1
             next_t += dt
             time.sleep(max(0.0, next_t - time.monotonic()))
@@ -227,6 +242,17 @@ class Rig:
         harness.wait_for_message(self.node, itf.TOPIC_IMAGE, Image, qos.SENSOR_DATA, 20.0,
                                  processes=self.procs)
         self.spin(0.3)
+
+    def capture(self, prefix: str = "/", timeout: float = 15.0):
+        """capture_reference, called again while it is refused only for want of a fresh image
+        (on a loaded machine the node may not have processed one yet)."""
+        end = time.monotonic() + timeout
+        while True:
+            response = self.call(Trigger, prefix + itf.SRV_CAPTURE_REFERENCE)
+            if response.success or "no fresh image" not in response.message \
+                    or time.monotonic() > end:
+                return response
+            self.spin(0.2)
 
     def listen_commands(self):
         if self._commands_sub is None:
@@ -376,7 +402,7 @@ def test_parameters_declared_with_schema_ranges_and_read_only(rig):
 
 def test_broken_parameter_file_is_reported_and_enable_refused(rig, processes):
     response = rig.enable(True, prefix="/bad")
-    expect(response, False, "parameters: limits.tool_linear_speed: 0.9 is outside [0.0, 0.25]",
+    expect(response, False, "parameters: limits.tool_linear_speed: 0.9 is outside [0.001, 0.25]",
            "control.gian_near: unknown parameter",
            "limits.joint_acceleration: required")
     value, = rig.get_params("limits.tool_linear_speed", node_name="/bad/vservo")
@@ -410,8 +436,8 @@ def test_starts_disabled_and_names_missing_inputs(rig):
     """No images, joints or command subscriber yet: enable names each failing check, start
     says motion is not enabled, and nothing is commanded."""
     response = rig.enable(True)
-    expect(response, False, "enable refused", "inputs: nothing received on /camera/image",
-           "inputs: nothing received on joint_states", "command_topic: nobody subscribes to "
+    expect(response, False, "enable refused", "inputs: nothing usable received on /camera/image",
+           "inputs: nothing usable received on joint_states", "command_topic: nobody subscribes to "
            "/servo/joint_velocity_cmd", "reference: ")
     expect(rig.trigger(itf.SRV_START), False, "state: motion is not enabled")
     expect(rig.trigger(itf.SRV_STOP), True, "nothing to stop")
@@ -423,7 +449,7 @@ def test_starts_disabled_and_names_missing_inputs(rig):
 def test_capture_reference_then_enable_arms_without_commanding(rig, processes):
     rig.start_stub()
     expect(rig.enable(True), False, "reference: none loaded")
-    response = rig.trigger(itf.SRV_CAPTURE_REFERENCE)
+    response = rig.capture()
     expect(response, True, "5 features", "loaded")
     path = processes[1] / "references" / "station_t.yaml"
     assert path.is_file() and rig.get_params("reference.file") == [str(path)]
@@ -453,7 +479,7 @@ def test_state_service_table(rig):
     rig.wait_state("armed")
     expect(rig.enable(True), True, "already enabled (state armed)")
     expect(rig.trigger(itf.SRV_STOP), True, "nothing to stop in state 'armed'")
-    expect(rig.trigger(itf.SRV_CAPTURE_REFERENCE), True, "loaded")
+    expect(rig.capture(), True, "loaded")
     expect(rig.enable(False), True, "motion disabled")
     rig.wait_state("disabled")
     expect(rig.enable(True), True, "motion enabled")
@@ -496,7 +522,7 @@ def test_state_service_table(rig):
     rig.spin(0.2)
     assert np.all(rig.commands[-1][1] == 0.0)
     expect(rig.enable(True), True, "already enabled (state converged)")
-    expect(rig.trigger(itf.SRV_CAPTURE_REFERENCE), True, "loaded")
+    expect(rig.capture(), True, "loaded")
     # disabling during a run brakes, ends halted, then disabled
     _begin_run(rig, SMALL_OFFSET)
     expect(rig.enable(False), True, "motion disabled")

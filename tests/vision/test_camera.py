@@ -252,3 +252,10 @@ def test_points_behind_the_camera_and_bad_shapes_are_refused():
     with pytest.raises(ValueError, match="unknown camera keys"):
         CameraModel.from_dict({**cam.to_dict(), "fx": 3.0})
     assert cam.pixels_to_normalized(np.zeros((0, 2))).shape == (0, 2)
+
+
+def test_non_finite_distortion_is_refused():
+    """CameraInfo with NaN in D was accepted, and start was then refused for another reason."""
+    with pytest.raises(ValueError, match="distortion coefficients D must be finite"):
+        CameraModel(640, 480, [[500, 0, 320], [0, 500, 240], [0, 0, 1]],
+                    [0.1, float("nan"), 0.0, 0.0, 0.0], "plumb_bob")

@@ -161,3 +161,14 @@ def test_depth_views():
     m = np.array([[np.nan, 1.5]], dtype=np.float32)
     v = raw_view(m.tobytes(), "32FC1", 2, 1, 8)
     assert v.dtype == np.float32 and v[0, 1] == 1.5
+
+
+@pytest.mark.parametrize("data, encoding", [(b"", "jpeg"), (b"", "png"),
+                                            (b"\x89PNG\r\n\x1a\nnot a png at all", "png"),
+                                            (b"\xff\xd8\xff\xe0 not a jpeg", "jpeg")])
+def test_empty_or_garbage_compressed_frames_are_refused_in_words(data, encoding, capfd):
+    """An empty CompressedImage used to escape as an internal error (halt internal_error),
+    and OpenCV's decoders printed a warning of their own on every garbage frame."""
+    with pytest.raises(ValueError, match="decode|empty"):
+        to_bgr_or_mono(data, encoding)
+    assert capfd.readouterr().err == ""

@@ -20,15 +20,16 @@ def register(subparsers) -> None:
 
 
 def _run(args) -> int:
+    import sys
     from pathlib import Path
 
     from vservo_node.record.compare import compare_runs
 
     try:
         table, _ = compare_runs(args.bags, args.out, args.tol)
-    except (OSError, ValueError) as exc:
+    except (OSError, ValueError) as exc:    # YamlFileError of a bag's params or metadata
         print(f"vservo compare: {exc}", file=sys.stderr)
-        return 2
+        return 1
     print(table)
     out = Path(args.out)
     print(f"written: {out / 'compare.html'}, {out / 'repeatability.csv'}, {out / 'runs.csv'}, "

@@ -14,14 +14,16 @@ from pathlib import Path
 
 import cv2
 import numpy as np
-import yaml
 
 from vservo_node.vision import depth as depth_mod
 from vservo_node.vision.camera import CameraModel
 from vservo_node.vision.features import make_detector
 from vservo_node.vision.image_io import to_bgr_or_mono
-from vservo_node.vision.reference import identify, load_reference
+from vservo_node.vision.reference import (MAX_IMAGE_SIDE, camera_from_entry, identify,
+                                          load_reference)
 from vservo_node.vision.targets import load_target
+from vservo_node.yaml_entries import EntryReader
+from vservo_node.yaml_files import brief
 
 GREEN, RED, BLUE, YELLOW = (60, 200, 60), (40, 40, 230), (230, 120, 30), (0, 220, 255)
 
@@ -40,20 +42,42 @@ def register(subparsers):
     p.set_defaults(func=run)
 
 
+class _CameraReader(EntryReader):
+    kind = "camera file"
+
+
 def load_camera(path) -> CameraModel:
-    """CameraModel from our YAML (``CameraModel.to_dict``) or a ROS camera_calibration file."""
-    with open(path) as f:
-        data = yaml.safe_load(f)
-    if not isinstance(data, dict):
-        raise ValueError(f"camera file {path} must hold a mapping")
-    if "camera_matrix" not in data:
-        return CameraModel.from_dict(data)
-    def matrix(name):
-        return (data.get(name) or {}).get("data")
-    return CameraModel.from_camera_info(
-        data["image_width"], data["image_height"], data.get("distortion_model", "none"),
-        matrix("distortion_coefficients") or (), matrix("camera_matrix"),
-        matrix("rectification_matrix"), matrix("projection_matrix"))
+    """CameraModel from our YAML (``CameraModel.to_dict``) or a ROS camera_calibration file;
+    YamlFileError (a ValueError) naming the file and the key when it cannot be used."""
+    r = _CameraReader(path)
+    data = r.mapping(r.read_yaml(path), "top level")
+    if "camera_matrix" not in data and "image_width" not in data:
+        return camera_from_entry(r, data, "")
+
+    def matrix(name, n, required=False):
+        if data.get(name) is None and not required:
+            return None
+        block = r.mapping(data.get(name), name, None, ("data",))
+        if n is None:     # distortion: any count; the model checks it
+            d = block["data"]
+            if not isinstance(d, list) or len(d) > 16:
+                r.fail(f"{name}.data", f"expected a list of coefficients, got {brief(d)}")
+            return r.vector(d, f"{name}.data", len(d)).tolist()
+        return r.numbers(block["data"], f"{name}.data", n)
+
+    for key in ("image_width", "image_height"):
+        if key not in data:
+            r.fail(key, "missing (a camera_calibration file gives image_width and image_height)")
+    width = r.integer(data["image_width"], "image_width", 1, MAX_IMAGE_SIDE)
+    height = r.integer(data["image_height"], "image_height", 1, MAX_IMAGE_SIDE)
+    model = data.get("distortion_model", "none")
+    model = "none" if model in (None, "") else r.text(model, "distortion_model")
+    d, k = matrix("distortion_coefficients", None) or (), matrix("camera_matrix", 9, True)
+    rect, proj = matrix("rectification_matrix", 9), matrix("projection_matrix", 12)
+    try:
+        return CameraModel.from_camera_info(width, height, model, d, k, rect, proj)
+    except ValueError as exc:
+        r.fail("top level", str(exc))
 
 
 def _jsonable(value):

@@ -25,9 +25,9 @@ def _run(args) -> int:
 
     try:
         page, metrics = write_report(args.bag, args.out, args.tol)
-    except (OSError, ValueError) as exc:
-        print(f"vservo report: {args.bag}: {exc}", file=sys.stderr)
-        return 2
+    except (OSError, ValueError) as exc:    # YamlFileError of a bag's params or metadata
+        print(f"vservo report: {exc}", file=sys.stderr)
+        return 1
     print(metrics["run"])
     for label, text in headline(metrics):
         print(f"  {label:28s} {text}")

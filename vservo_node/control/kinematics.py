@@ -18,10 +18,11 @@ from pathlib import Path
 
 import numpy as np
 import pinocchio as pin
-import yaml
 
 from vservo_node.control.frames import invert, rotation_block, twist_transform
 from vservo_node.paths import shipped
+from vservo_node.yaml_entries import EntryReader
+from vservo_node.yaml_files import read_bounded
 
 # pinocchio joint model short names, by the kind of URDF joint they come from.
 _REVOLUTE = {"JointModelRX", "JointModelRY", "JointModelRZ", "JointModelRevoluteUnaligned"}
@@ -360,24 +361,50 @@ class RobotConfig:
     home: np.ndarray
 
 
+_ROBOT_KEYS = ("urdf", "base_frame", "tool_frame", "camera_frame", "min_joints", "home",
+               "home_goal", "home_seed")
+# A URDF is text of links and joints (meshes are separate files): a few kB to ~1 MB for large
+# robots; 16 MiB bounds what a robot file can make us read (common practice, no source).
+URDF_MAX_BYTES = 16 << 20
+
+
+class _RobotReader(EntryReader):
+    kind = "robot file"
+
+
+def _joint_values(r: EntryReader, value, entry: str, arm: ArmModel) -> np.ndarray:
+    value = r.mapping(value, entry)
+    extra = sorted(set(value) - set(arm.joint_names), key=str)
+    if extra:
+        r.fail(entry, f"names joint(s) off the chain: {', '.join(map(str, extra))}; expected "
+                      f"{', '.join(arm.joint_names)}")
+    positions = {k: r.number(v, f"{entry}.{k}") for k, v in value.items()}
+    try:
+        return arm.q_from_mapping(positions)
+    except ValueError as exc:
+        r.fail(entry, str(exc))
+
+
 def load_robot(name_or_path: str) -> RobotConfig:
     """Load a robot description YAML (e.g. ``"vs6_bench"`` from config/robots, or a path).
 
     Keys: ``urdf`` (path relative to the YAML), ``base_frame``, ``tool_frame``,
     ``camera_frame``, optional ``min_joints`` and ``home`` (joint name -> position, exactly the
-    chain joints). ValueError on a missing key or a home that does not name every chain joint.
+    chain joints), and ``home_goal``/``home_seed`` (read by config/robots/find_home.py).
+    YamlFileError (a ValueError) naming the file and the key on a missing key, a wrong type, a
+    URDF that cannot be used or a home that does not name every chain joint; the file is read
+    through ``yaml_files.load_yaml`` (size cap, no anchors/aliases or tags).
     """
     path = shipped("robots", name_or_path)
-    spec = yaml.safe_load(path.read_text())
-    required = ("urdf", "base_frame", "tool_frame", "camera_frame", "home")
-    missing = [key for key in required if key not in spec]
-    if missing:
-        raise ValueError(f"robot file {path}: missing key(s) {', '.join(missing)}")
-    arm = ArmModel.from_urdf_file(path.parent / spec["urdf"], spec["base_frame"],
-                                  spec["tool_frame"], spec["camera_frame"],
-                                  spec.get("min_joints", 6))
-    extra = sorted(set(spec["home"]) - set(arm.joint_names))
-    if extra:
-        raise ValueError(f"robot file {path}: home names joint(s) off the chain: "
-                         f"{', '.join(extra)}")
-    return RobotConfig(path.stem, arm, arm.q_from_mapping(spec["home"]))
+    r = _RobotReader(path)
+    spec = r.mapping(r.read_yaml(path), "top level", _ROBOT_KEYS,
+                     ("urdf", "base_frame", "tool_frame", "camera_frame", "home"))
+    urdf = path.parent / r.text(spec["urdf"], "urdf")
+    frames = [r.text(spec[k], k) for k in ("base_frame", "tool_frame", "camera_frame")]
+    min_joints = r.integer(spec.get("min_joints", 6), "min_joints", 1, 20)
+    text = read_bounded(urdf, URDF_MAX_BYTES, prefix=f"{r.where}: urdf: ")
+    try:
+        arm = ArmModel.from_urdf(text.decode("utf-8"), *frames, min_joints)
+    except ValueError as exc:      # UnicodeDecodeError is one too
+        r.fail("urdf", f"{urdf}: {exc}")
+    return RobotConfig(path.stem, arm, _joint_values(r, spec["home"], "home", arm))

@@ -33,7 +33,9 @@ intersection is the minimum of these fractions, because every constraint set is 
 contains the base, so each allows an interval [0, s_c]. The limit with the smallest fraction
 is "the one that wins"; ties go to the first in :data:`LIMITS`, which puts the hard joint
 position limit first and the acceleration bound last, so the status names the most
-safety-relevant cause. Every limit with s_c < 1 "acted". In track mode the change
+safety-relevant cause. A limit "acted" when it changed the command: the speed limit(s) whose
+fraction set the target's scale (not every limit the desired command exceeds), a limit that
+cut a recovering previous command, and the acceleration bound when it cut the step. In track mode the change
 ``s (desired - previous)`` keeps the direction of the requested change, and since the
 acceleration box around the previous command is one of the constraints, each joint changes by
 at most a_i dt: no later clipping step can undo another limit.
@@ -430,7 +432,11 @@ def _limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point
     # also keeps round-off in those tests from cutting a step that is feasible.
     fractions = {"joint_acceleration": _box_fraction(base, delta, accel_lo, accel_hi)}
     name, joint, s = _winner(fractions)
-    acted = _acted(recovered, scaling, fractions)
+    # a speed limit acted only if it set the target's scale: with several over 1 only the
+    # smallest fraction binds (a joint far inside its envelope but asked too fast is cut by the
+    # velocity limit, not by the envelope, which the scaled command meets)
+    binding = {k: v for k, v in scaling.items() if v[0] <= c_d * (1.0 + FEASIBLE_TOL)}
+    acted = _acted(recovered, binding, fractions)
     if c_d < 1.0 and (s >= 1.0 or c_d <= s):
         name, joint = name_d, joint_d
     elif s >= 1.0:

@@ -36,12 +36,13 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import yaml
 from rosbags.highlevel import AnyReader
 from rosbags.rosbag2 import StoragePlugin, Writer
 from rosbags.typesys import Stores, get_typestore
 
 from vservo_node import interface as itf
+from vservo_node.yaml_files import (METADATA_MAX_BYTES, YamlFileError, brief, dump_yaml,
+                                    load_yaml, screen_yaml)
 
 ROSBAG2_VERSION = 9           # the newest format rosbags 0.11.9 writes (rosbag2 Jazzy and later)
 ROS_DISTRO = "jazzy"
@@ -53,6 +54,9 @@ PARAMS_FILE = "params.yaml"
 RESULT_FILE = "result.json"
 METADATA_FILE = "metadata.yaml"
 REFERENCE_DIR = "reference"   # the taught reference of the run, copied in (see copy_reference)
+# params.yaml holds robot_description (the URDF text, up to ~1 MB for large robots) besides the
+# controller parameters: the cap of a URDF (control/kinematics.py), not of our small files.
+PARAMS_MAX_BYTES = 16 << 20
 
 IMAGE = "sensor_msgs/msg/Image"
 COMPRESSED_IMAGE = "sensor_msgs/msg/CompressedImage"
@@ -156,7 +160,7 @@ class RunRecorder:
         self._failure: Exception | None = None   # what stopped the ageing thread, if anything
         (self.bag_dir / OPEN_DIR).mkdir()
         if params is not None:
-            _write_atomic(self.bag_dir / PARAMS_FILE, yaml.safe_dump(params, sort_keys=False))
+            _write_atomic(self.bag_dir / PARAMS_FILE, dump_yaml(params, sort_keys=False))
         self._write_metadata()
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._age_loop, name="RunRecorder", daemon=True)
@@ -248,8 +252,8 @@ class RunRecorder:
         folder.mkdir(exist_ok=True)
         copy = Path(shutil.copy2(source, folder / source.name))
         try:
-            data = yaml.safe_load(source.read_text(encoding="utf8"))
-        except (OSError, ValueError):   # not YAML: the copy is all we can keep
+            data = load_yaml(source, prefix="reference ")
+        except YamlFileError:   # not plain YAML: the copy is all we can keep
             return copy
         for name in _named_files(data):
             beside = source.parent / name
@@ -342,7 +346,7 @@ class RunRecorder:
             "ros_distro": ROS_DISTRO,
         }
         _write_atomic(self.bag_dir / METADATA_FILE,
-                      yaml.safe_dump({"rosbag2_bagfile_information": info}, sort_keys=False))
+                      dump_yaml({"rosbag2_bagfile_information": info}, sort_keys=False))
 
     def _compress(self, raw: bytes) -> bytes | None:
         """sensor_msgs/Image CDR -> sensor_msgs/CompressedImage CDR; None if not encodable."""
@@ -537,7 +541,7 @@ _OTHER = {  # role -> (interface topic, type)
     "image": (itf.TOPIC_IMAGE, IMAGE),
     "image_compressed": (itf.TOPIC_IMAGE_COMPRESSED, COMPRESSED_IMAGE),
 }
-_STATUS_TEXT = ("run_id", "state", "reason", "limits_acted", "limit_counts")
+_STATUS_TEXT = ("run_id", "state", "reason", "limits_acted", "limit_counts", "detail")
 
 
 def match_topic(names: dict[str, str], relative: str, msgtype: str) -> str | None:
@@ -560,8 +564,10 @@ def _status_table(records: list[dict]) -> dict[str, np.ndarray]:
     extra = [k for k in dict.fromkeys(k for r in records for k in r) if k not in itf.STATUS_FIELDS]
     for name in (*itf.STATUS_FIELDS, *extra):
         values = [r.get(name) for r in records]
-        numeric = name not in _STATUS_TEXT and all(
-            v is None or (isinstance(v, (int, float)) and not isinstance(v, bool)) for v in values)
+        numbers = [v for v in values if v is not None]
+        numeric = name not in _STATUS_TEXT and bool(numbers) and all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) for v in numbers)
+        numeric = numeric or (name in itf.STATUS_FIELDS and name not in _STATUS_TEXT)
         if name == "dq":
             table[name] = _flat([v or [] for v in values])
         elif numeric:
@@ -579,7 +585,8 @@ def _piece_of(path: Path) -> tuple[Piece, int] | None:
     if not path.is_file() or not meta.is_file():
         return None
     try:
-        info = yaml.safe_load(meta.read_text(encoding="utf8"))["rosbag2_bagfile_information"]
+        info = load_yaml(meta, max_bytes=METADATA_MAX_BYTES,
+                         prefix="bag metadata ")["rosbag2_bagfile_information"]
         names = [f["path"] for f in info["files"]]
         index = names.index(path.name)
         start = int(info["starting_time"]["nanoseconds_since_epoch"])
@@ -595,8 +602,8 @@ def _reference_of(folder: Path) -> tuple[dict | None, Path | None]:
     """The reference file copied into the bag (reference/*.yaml), parsed; (None, None) if none."""
     for path in sorted((folder / REFERENCE_DIR).glob("*.yaml")):
         try:
-            data = yaml.safe_load(path.read_text(encoding="utf8"))
-        except (OSError, ValueError):
+            data = load_yaml(path, prefix="copied reference ")
+        except YamlFileError:
             continue
         if isinstance(data, dict):
             return data, path
@@ -609,6 +616,9 @@ def load_run(bag: str | Path) -> RunData:
     Uses rosbags' AnyReader (Jazzy typestore for bags without embedded definitions) and picks
     topics by interface name and type; params.yaml, result.json and the copied reference are
     read when present. The first and the last camera image are decoded (``frames``).
+    A bag folder's metadata.yaml is screened first (``yaml_files.screen_yaml``: size, syntax,
+    no anchors/aliases or tags) and params.yaml read through ``yaml_files.load_yaml``; either
+    refused is a YamlFileError (a ValueError) naming the file and the place.
 
     One split file of a bag (a path listed in its folder's metadata.yaml) is read as a
     ``piece``: times stay on the whole bag's clock, and the run result is the one the file
@@ -617,6 +627,9 @@ def load_run(bag: str | Path) -> RunData:
     """
     path = Path(bag)
     folder = path if path.is_dir() else path.parent
+    if path.is_dir() and (path / METADATA_FILE).exists():
+        screen_yaml(path / METADATA_FILE, max_bytes=METADATA_MAX_BYTES, prefix="bag metadata ")
+    params = _read_params(folder / PARAMS_FILE)
     piece_info = None if path.is_dir() else _piece_of(path)
     rows: dict[str, tuple[list, list]] = {}
     joints: list = []
@@ -715,7 +728,7 @@ def load_run(bag: str | Path) -> RunData:
             "distortion_model": info.distortion_model},
         robot_description=(latest["robot_description"].data
                            if "robot_description" in latest else None),
-        params=_read_params(folder / PARAMS_FILE), result=result, skipped=skipped,
+        params=params, result=result, skipped=skipped,
         frames=[Frame(float(secs([stamp])[0]), rgb) for stamp, rgb in frames],
         reference=reference, reference_path=reference_path,
         piece=piece_info[0] if piece_info else None)
@@ -726,7 +739,31 @@ def _read_json(path: Path) -> dict:
 
 
 def _read_params(path: Path) -> dict:
-    """params.yaml as a dict; {} when absent or empty."""
+    """params.yaml as a dict; {} when absent or empty. YamlFileError when it is not plain YAML
+    (``yaml_files.load_yaml``), not a mapping, or a controller parameter in it (flat, or in
+    ``{node: {ros__parameters: ...}}`` sections) has the wrong type or list length
+    (``params.check_value`` without ranges and choices, so bags recorded before a range changed
+    still read), since the metrics take limits and frames from it."""
+    import dataclasses
+
+    from vservo_node import params as schema
+
     if not path.exists():
         return {}
-    return yaml.safe_load(path.read_text(encoding="utf8")) or {}
+    data = load_yaml(path, max_bytes=PARAMS_MAX_BYTES, prefix="bag params ")
+    if data is None:
+        return {}
+    if not isinstance(data, dict):
+        raise YamlFileError(f"bag params {path}: top level: expected a mapping of parameter "
+                            f"names to values, got {brief(data)}")
+    sections = [(f"{k}.ros__parameters.", v["ros__parameters"]) for k, v in data.items()
+                if isinstance(v, dict) and isinstance(v.get("ros__parameters"), dict)]
+    for prefix, section in sections or [("", data)]:
+        for name, value in schema.flatten(section).items():
+            param = schema.BY_NAME.get(name)
+            if param is not None:
+                loose = dataclasses.replace(param, low=None, high=None, choices=())
+                _, reason = schema.check_value(loose, value)
+                if reason:
+                    raise YamlFileError(f"bag params {path}: {prefix}{reason}")
+    return data

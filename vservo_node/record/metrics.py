@@ -26,9 +26,10 @@ import numpy as np
 
 from vservo_node.control import frames
 from vservo_node.control.frames import transform_from_xyz_quat
-from vservo_node.control.kinematics import ArmModel
+from vservo_node.control.kinematics import URDF_MAX_BYTES, ArmModel
 from vservo_node.params import flatten
 from vservo_node.record.bag import RunData
+from vservo_node.yaml_files import read_bounded
 
 HALT_STATES = ("braking", "halted")
 MOVING_STATES = ("servoing", "settling", "braking")
@@ -95,7 +96,9 @@ def arm_of_run(run: RunData) -> ArmModel | None:
         path = Path(p["robot.urdf_path"])
         folder = Path(run.path) if Path(run.path).is_dir() else Path(run.path).parent
         path = path if path.is_absolute() else folder / path
-        urdf = path.read_text() if path.exists() else None
+        # bounded and regular files only: the path comes from the bag (a hostile /dev/zero)
+        urdf = (read_bounded(path, URDF_MAX_BYTES, prefix="robot.urdf_path of the bag: ")
+                .decode("utf-8", "replace") if path.exists() else None)
     if not urdf:
         return None
     frame_names = (p.get("robot.base_frame", "base_link"), p.get("robot.tool_frame", "tool0"))

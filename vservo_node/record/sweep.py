@@ -94,6 +94,7 @@ from vservo_node.control.frames import transform
 from vservo_node.interface import SENSING_MODES
 from vservo_node.record import metrics
 from vservo_node.yaml_entries import EntryReader
+from vservo_node.yaml_files import YamlFileError, brief
 
 FORMAT = "vservo_sweep/1"
 MODES = ("grid", "random")
@@ -140,7 +141,14 @@ METRICS = ("converged", "reason", "time_to_converge_s", "time_to_halt_s", "final
            "peak_angular_speed_rad_s", "min_joint_limit_margin", "camera_depth_change_max_m")
 
 
-class SweepError(ValueError):
+# Most episodes one sweep file may plan (grid combinations x repeats, or random episodes):
+# at a second or more per episode, 100,000 is already a day of one core; it also bounds the plan
+# built in memory (common practice, no source).
+MAX_EPISODES = 100_000
+MAX_MAP_BINS = 100
+
+
+class SweepError(YamlFileError):
     """A sweep that cannot run; the message names the file and the entry."""
 
 
@@ -286,20 +294,22 @@ def _axis(r: _Reader, name, value, mode) -> Axis:
     if "values" in value:
         values = value["values"]
         if not isinstance(values, list) or not values:
-            r.fail(f"{entry}.values", f"expected a non-empty list, got {values!r}")
+            r.fail(f"{entry}.values", f"expected a non-empty list, got {brief(values)}")
         if "steps" in value:
             r.fail(entry, "'steps' goes with 'range', not 'values'")
         return Axis(name, tuple(r.quantity(name, v, f"{entry}.values[{i}]")
                                 for i, v in enumerate(values)))
     rng = value["range"]
     if not isinstance(rng, list) or len(rng) != 2:
-        r.fail(f"{entry}.range", f"expected [low, high], got {rng!r}")
+        r.fail(f"{entry}.range", f"expected [low, high], got {brief(rng)}")
     low, high = (r.quantity(name, v, f"{entry}.range") for v in rng)
-    if isinstance(low, (str, bool)) or not low <= high:
-        r.fail(f"{entry}.range", f"expected numbers with low <= high, got {rng!r}")
+    if (isinstance(low, (str, bool)) or isinstance(high, (str, bool))
+            or not isinstance(low, (int, float)) or not isinstance(high, (int, float))
+            or not low <= high):
+        r.fail(f"{entry}.range", f"expected numbers with low <= high, got {brief(rng)}")
     steps = value.get("steps", 0)
     if mode == "grid":
-        steps = r.integer(steps, f"{entry}.steps (needed in grid mode)", 1)
+        steps = r.integer(steps, f"{entry}.steps (needed in grid mode)", 1, MAX_EPISODES)
         if steps == 1 and low != high:
             r.fail(f"{entry}.steps", "one step cannot span a range; use values: [x]")
     return Axis(name, (), low, high, steps)
@@ -314,22 +324,26 @@ def sweep_from_dict(data, source: Path | None = None) -> SweepSpec:
         r.fail("format", f"{data['format']!r} is not {FORMAT!r}")
     mode = data.get("mode", "grid")
     if mode not in MODES:
-        r.fail("mode", f"expected one of {MODES}, got {mode!r}")
+        r.fail("mode", f"expected one of {MODES}, got {brief(mode)}")
     sensing = data.get("sensing", "image")
     if sensing not in SENSING:
-        r.fail("sensing", f"expected one of {SENSING}, got {sensing!r}")
+        r.fail("sensing", f"expected one of {SENSING}, got {brief(sensing)}")
     scenario = data["scenario"]
     if not isinstance(scenario, str) or not scenario:
         r.fail("scenario", f"expected a scenario name or path, got {scenario!r}")
     if source is not None and Path(scenario).suffix and not Path(scenario).is_absolute():
         beside = Path(source).parent / scenario
-        scenario = str(beside) if beside.exists() else scenario
+        try:
+            found = beside.exists()
+        except (OSError, ValueError):   # a name too long for the file system, a NUL byte
+            found = False
+        scenario = str(beside) if found else scenario
     fixed = r.mapping(data.get("fixed"), "fixed")
     fixed = {k: r.quantity(k, v, f"fixed.{k}") for k, v in fixed.items()}
     axes_map = r.mapping(data["axes"], "axes")
     if not axes_map:
         r.fail("axes", "give at least one quantity to vary")
-    both = sorted(set(axes_map) & set(fixed))
+    both = sorted(set(axes_map) & set(fixed), key=str)
     if both:
         r.fail("axes", f"{both} are also in fixed")
     axes = tuple(_axis(r, name, value, mode) for name, value in axes_map.items())
@@ -341,28 +355,36 @@ def sweep_from_dict(data, source: Path | None = None) -> SweepSpec:
     map_axes = data.get("map", default_map[:2])
     if (not isinstance(map_axes, list) or not 1 <= len(map_axes) <= 2
             or any(n not in names for n in map_axes)):
-        r.fail("map", f"expected one or two of the swept axes {names}, got {map_axes!r}")
-    episodes = r.integer(data.get("episodes", 1 if mode == "grid" else 20), "episodes", 1)
+        r.fail("map", f"expected one or two of the swept axes {names}, got {brief(map_axes)}")
+    repeats = r.integer(data.get("repeats", 1), "repeats", 1, MAX_EPISODES)
+    episodes = r.integer(data.get("episodes", 1 if mode == "grid" else 20), "episodes", 1,
+                         MAX_EPISODES)
+    if mode == "grid":
+        total = repeats
+        for a in axes:
+            total *= len(a.values) or a.steps
+        if total > MAX_EPISODES:
+            r.fail("axes", f"the grid plans {total} episodes (combinations x repeats); expected "
+                           f"at most {MAX_EPISODES}")
     binned = [a for a in axes if a.name in map_axes and not a.values]
     if "map_bins" in data:
-        map_bins = r.integer(data["map_bins"], "map_bins", 1)
+        map_bins = r.integer(data["map_bins"], "map_bins", 1, MAX_MAP_BINS)
         if mode == "random" and binned and map_bins ** len(binned) > episodes:
             r.fail("map_bins", f"{map_bins} bins per axis make {map_bins ** len(binned)} map "
                                f"cells, more than the {episodes} episodes can fill; lower "
                                f"map_bins or raise episodes")
     else:   # as many bins as keep MIN_PER_CELL episodes in each cell
-        map_bins = max(1, int((episodes / MIN_PER_CELL) ** (1.0 / max(len(binned), 1))
-                              + 1e-9))
+        map_bins = min(MAX_MAP_BINS, max(1, int((episodes / MIN_PER_CELL)
+                                                ** (1.0 / max(len(binned), 1)) + 1e-9)))
     best = r.mapping(data.get("best"), "best", _BEST)
     best = Best(min_episodes=r.integer(best.get("min_episodes", Best.min_episodes),
-                                       "best.min_episodes", 1),
+                                       "best.min_episodes", 1, MAX_EPISODES),
                 margin=r.number(best.get("margin", Best.margin), "best.margin", minimum=0.0))
     return SweepSpec(
-        name=str(data["name"]), description=str(data.get("description", "")).strip(),
+        name=r.text(data["name"], "name"), description=str(data.get("description", "")).strip(),
         scenario=scenario, mode=mode, seed=r.integer(data.get("seed", 0), "seed", 0),
-        repeats=r.integer(data.get("repeats", 1), "repeats", 1),
-        episodes=episodes, fixed=fixed, axes=axes, success=success, map_axes=tuple(map_axes),
-        map_bins=map_bins, source=source, sensing=sensing, best=best)
+        repeats=repeats, episodes=episodes, fixed=fixed, axes=axes, success=success,
+        map_axes=tuple(map_axes), map_bins=map_bins, source=source, sensing=sensing, best=best)
 
 
 def load_sweep(name_or_path) -> SweepSpec:

@@ -35,6 +35,18 @@ Inputs (relative names, remap them; ``vservo_node.interface``)
     pose error of the run result.
     Image time = header stamp + ``io.camera_time_offset_s``. The last second of joint states is
     kept and each image is evaluated at the joints interpolated at its time.
+    At the edge: joint states and images stamped more than ``io.stamp_tolerance_s`` from the
+    node's clock (either way), joint states with non-finite positions (these also halt a
+    moving run ``numerical_fault``), undecodable or empty frames are refused, counted
+    (``inputs_refused`` in the diagnostics) and logged (throttled); they never reach the
+    servo and never replace good joint history. An image newer than the newest joint state
+    by more than ``io.joint_state_timeout_s`` or older than the kept second cannot be paired.
+
+Clocks
+    The servo runs on one clock, the node's steady clock: run start, every output tick, frame
+    receipt, and so every timeout and the run time. Stamps (ROS time, simulated with
+    use_sim_time) only pair images with joint states and are checked against the node's ROS
+    clock.
 
 Cycle
     One executor thread runs every callback, timer and service; the image callback only hands
@@ -64,13 +76,27 @@ Commands (reliable QoS, ``io.command_interface``)
     joint command it derives the twist from, but cannot see what the arm does with it.
 
 Watchdogs (steady clock, judged by receipt time, so they work while /clock stalls; they act
-only while a run moves, through ``servo.halt``): image older than ``io.image_timeout_s`` ->
-``image_stale``; joint states older than ``io.joint_state_timeout_s`` -> ``joints_stale``;
+only while a run moves, through ``servo.halt``, and name what they saw in the halt detail):
+no usable image (decoded, stamp sane, size matching camera_info) for ``io.image_timeout_s`` ->
+``image_stale``; no usable joint state for ``io.joint_state_timeout_s`` -> ``joints_stale``;
+usable images none of which could be paired with a joint state for ``io.image_timeout_s`` ->
+``frames_unpaired`` (with the measured skew);
 with ``io.require_permit`` no True on ``cell/motion_permit`` within ``io.permit_timeout_s`` (or
 a False) -> ``permit_withdrawn``; camera_info missing, refused, changed during a run, or of
 another size than the images -> ``camera_info_invalid``. An unexpected exception in a callback
-is logged and halts a moving run with ``internal_error``. Each halt reason is logged once per
-run and appears in the status.
+is logged and halts a moving run with ``internal_error``; the output tick never raises (an
+error inside it brakes blind from the last command, ``Servo.brake_blind``, and publishes the
+zero). The servo itself judges the run timeout, the motion envelope, the follow checks and
+"no observation for io.image_timeout_s" on every output tick, so none of them depends on a
+frame being paired. Each halt reason is logged once per run, with its detail, and appears in
+the status.
+
+Shutdown
+    SIGINT or SIGTERM (once or repeated, to the process or its group, as a terminal Ctrl-C
+    under ``ros2 launch`` sends them) asks for a stop (``node_main.run_node``): the node keeps
+    spinning while a moving run brakes (reason ``shutdown``) and its explicit zero goes out
+    (at most 3 s), refuses enable and start meanwhile, waits up to 0.5 s for the arm's
+    controller to acknowledge the last command, and exits 0 without a traceback.
 
 Outputs
     ``servo/status`` (std_msgs/String, JSON object with ``interface.STATUS_FIELDS``) once per
@@ -140,6 +166,7 @@ from geometry_msgs.msg import PoseStamped, TwistStamped
 from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ParameterDescriptor,
                                 SetParametersResult)
 from rclpy.clock import Clock, ClockType
+from rclpy.duration import Duration
 from rclpy.node import Node
 from rclpy.parameter import Parameter
 from sensor_msgs.msg import CameraInfo, CompressedImage, Image, JointState
@@ -154,7 +181,7 @@ from vservo_node.control.kinematics import ArmModel
 from vservo_node.episode import servo_config_from_params
 from vservo_node.perception import DepthImage, DepthSettings, Perception, taught_view
 from vservo_node.ros import convert, qos
-from vservo_node.ros.node_main import run_node
+from vservo_node.ros.node_main import install_signal_handlers, run_node
 from vservo_node.servo import HALT_REASONS, MOVING_STATES, Observation, Servo, ServoSettings
 from vservo_node.vision import image_io
 from vservo_node.vision.reference import load_reference, reference_path, save_reference
@@ -167,7 +194,8 @@ READ_ONLY = frozenset({
     "io.command_interface", "io.command_joint_order", "io.output_rate_hz",
     "io.compressed_image", "io.image_rectified"})
 # Parameters that rebuild perception and the taught view: refused while a run moves.
-STOPPED_ONLY = frozenset({"target.file", "reference.file", "depth.source"})
+STOPPED_ONLY = frozenset({"target.file", "reference.file", "depth.source",
+                          "io.camera_time_offset_s"})
 VISION_PARAMS = STOPPED_ONLY | {"depth.constant_m"}
 # Parameters of the servo (settings or limits).
 SERVO_PARAMS = frozenset(p.name for p in params.SCHEMA
@@ -178,6 +206,7 @@ JOINT_HISTORY_S = 1.0      # joint states kept for evaluation at image times
 DEPTH_FRAMES = 4           # depth frames kept for pairing with images
 DIAGNOSTICS_PERIOD_S = 1.0
 ACTIVE_RUN = ("servoing", "settling")
+SHUTDOWN_ACK_S = 0.5       # how long shutdown waits for the final zero to be acknowledged
 
 _ROS_TYPES = {bool: Parameter.Type.BOOL, int: Parameter.Type.INTEGER,
               float: Parameter.Type.DOUBLE, str: Parameter.Type.STRING}
@@ -203,9 +232,14 @@ def descriptor(param: params.Param) -> ParameterDescriptor:
         notes.append("while motion is enabled may only be " + verbs[param.tighten == "up"])
     if param.required:
         notes.append("required")
+    # dynamic typing (scalars): a value of the wrong type reaches our check, which says what
+    # was expected (rclpy's own check words it "expected '3' got '2'"); list parameters keep
+    # static typing (rclpy cannot type an empty default), integers are made doubles before
+    # either check (_coerce_numbers)
     d = ParameterDescriptor(name=param.name, description=text,
                             additional_constraints="; ".join(notes),
-                            read_only=param.name in READ_ONLY)
+                            read_only=param.name in READ_ONLY,
+                            dynamic_typing=param.type is not list)
     if param.type is float and param.low is not None:
         d.floating_point_range = [FloatingPointRange(from_value=float(param.low),
                                                      to_value=float(param.high), step=0.0)]
@@ -213,6 +247,21 @@ def descriptor(param: params.Param) -> ParameterDescriptor:
         d.integer_range = [IntegerRange(from_value=int(param.low), to_value=int(param.high),
                                         step=1)]
     return d
+
+
+def _coerce_numbers(parameters):
+    """Pre-set callback: integers given for our float parameters become doubles (``ros2 param
+    set /vservo control.gain_near 2`` means 2.0); everything else passes unchanged."""
+    out = []
+    for p in parameters:
+        param = params.BY_NAME.get(p.name)
+        wants_float = param is not None and (param.type is float or param.item is float)
+        if wants_float and p.type_ == Parameter.Type.INTEGER:
+            p = Parameter(p.name, Parameter.Type.DOUBLE, float(p.value))
+        elif wants_float and p.type_ == Parameter.Type.INTEGER_ARRAY:
+            p = Parameter(p.name, Parameter.Type.DOUBLE_ARRAY, [float(v) for v in p.value])
+        out.append(p)
+    return out
 
 
 def plain(value):
@@ -264,6 +313,10 @@ class JointHistory:
 
     def latest(self) -> np.ndarray | None:
         return self._q[-1] if self._q else None
+
+    def span(self) -> tuple[float, float] | None:
+        """(oldest, newest) stamp kept, or None."""
+        return (self._t[0], self._t[-1]) if self._t else None
 
     def at(self, t: float) -> np.ndarray | None:
         if not self._t or t < self._t[0]:
@@ -389,6 +442,9 @@ class ControllerNode(Node):
     """The controller node; see the module docstring for its behaviour."""
 
     def __init__(self, **node_kwargs):
+        # undeclared names reach our check, which refuses them naming the nearest parameter
+        # (rclpy's own refusal reads "undeclared parameter(s): []")
+        node_kwargs.setdefault("allow_undeclared_parameters", True)
         super().__init__(itf.CONTROLLER_NODE, **node_kwargs)
         self._lock = threading.RLock()
         self._declare_parameters()
@@ -404,7 +460,14 @@ class ControllerNode(Node):
         self._camera_problem = "no camera_info received"
         self._joints: JointHistory | None = None
         self._joint_problem = ""
-        self._rx = dict.fromkeys(("image", "joints", "camera_info", "permit"))
+        # receipt times (steady clock); "frame": the last image that was decoded, had a sane
+        # stamp and fit the camera model; "paired": ... and could be paired with a joint state
+        # (the watchdogs judge these two: frames that arrive but cannot be used do not count)
+        self._rx = dict.fromkeys(("image", "frame", "paired", "joints", "camera_info",
+                                  "permit"))
+        self._frame_problem = ""         # why the last image was refused
+        self._pair_problem = ""          # why the last usable image could not be paired
+        self._refused: dict[str, int] = {}   # refused inputs by kind (diagnostics)
         self._permit = False
         self._last_image = None          # (image, t, frame_id)
         self._last_obs = None            # (Observation | None, PerceptionInfo, receipt time)
@@ -420,6 +483,9 @@ class ControllerNode(Node):
         self._truth = {"camera": None, "taught": None}
         self._warned: dict[str, float] = {}
         self._runs = 0
+        self._shutting_down = False
+        self._command_sent = False      # anything published on the command topic yet
+        self._last_tick, self._ticks, self._late_ticks = None, 0, 0
 
         self._frames = FrameSlot()
         self._worker = threading.Thread(target=self._perception_loop, name="perception",
@@ -467,6 +533,7 @@ class ControllerNode(Node):
             value = self._values[param.name]
             initial = ros_type(param) if value == [] else value  # rclpy cannot type []
             self.declare_parameter(param.name, initial, descriptor(param), ignore_override=True)
+        self.add_pre_set_parameters_callback(_coerce_numbers)
         for message in self._parameter_problems():
             self.get_logger().error(f"parameter problem: {message}")
         for warning in result.warnings:
@@ -496,7 +563,9 @@ class ControllerNode(Node):
         for p in parameters:
             param = params.BY_NAME.get(p.name)
             if param is None:
-                continue  # rclpy's own (use_sim_time)
+                if p.name in ROS_OWN or p.name.startswith("qos_overrides."):
+                    continue  # rclpy's own (use_sim_time)
+                return params.unknown_name_message(p.name), None
             value = plain(p.value)
             reason = params.check_change(p.name, self._values[p.name], value, enabled)
             if reason is None and moving and p.name in STOPPED_ONLY:
@@ -510,14 +579,25 @@ class ControllerNode(Node):
         added = [e for e in checked.errors if e not in before]
         if added:
             return "; ".join(added), None
-        if self.arm is not None and checked.ok:
+        if checked.ok:
+            # build everything the change will apply, so an accepted change cannot fail later
+            changed = {p.name for p in parameters}
             try:
-                self._servo_config(new)
-            except ValueError as exc:
+                if self.arm is not None:
+                    Servo.check_config(self.arm, *self._servo_config(new))
+                if changed & VISION_PARAMS:
+                    self._load_vision_files(new)
+            except (ValueError, OSError) as exc:
                 return str(exc), None
         return "", new
 
     def _after_set_parameters(self, parameters) -> None:
+        try:
+            self._apply_parameters(parameters)
+        except Exception as exc:  # noqa: BLE001 - checked before; never let it end the node
+            self._internal_error("applying parameters", exc)
+
+    def _apply_parameters(self, parameters) -> None:
         changed = {p.name for p in parameters if p.name in params.BY_NAME}
         with self._lock:
             self._values = self._pending_values or self._values
@@ -528,9 +608,8 @@ class ControllerNode(Node):
                 self._rebuild_vision()
             if self.servo is None:
                 self._build_servo()
-            elif changed & SERVO_PARAMS:
-                settings, limits = self._servo_config(self._values)
-                self._reconfigure_servo(settings, limits)
+            elif changed & (SERVO_PARAMS | {"io.image_timeout_s"}):
+                self.servo.reconfigure(*self._servo_config(self._values))
         self.get_logger().info("parameters changed: " + ", ".join(
             f"{n} = {self._values[n]!r}" for n in sorted(changed)))
 
@@ -610,14 +689,6 @@ class ControllerNode(Node):
         self._problems["servo"] = ""
         self._rebuild_vision()
 
-    def _reconfigure_servo(self, settings: ServoSettings, limits) -> None:
-        # Servo has no reconfigure method: its settings, law configuration and limits are
-        # replaced in place so a running limiter keeps its previous command.
-        servo = self.servo
-        servo.settings = settings
-        servo.law.config = settings.law_config()
-        servo.limits = limits
-        servo.limiter.limits = limits
 
     # ------------------------------------------------------------------------ vision
     def _rebuild_vision(self) -> None:
@@ -630,14 +701,17 @@ class ControllerNode(Node):
         self._reference = None
         if self.servo is not None:
             self.servo.set_reference(None)
+        v = self._values
+        try:
+            target, reference = self._load_vision_files(v)
+        except (ValueError, OSError) as exc:
+            self._problems["vision"] = str(exc)
+            self.get_logger().error(f"target or reference refused: {exc}")
+            return
         if self._camera is None:
             self._problems["vision"] = "no camera model yet (camera_info)"
             return
-        v = self._values
         try:
-            target = load_target(v["target.file"])
-            reference = (load_reference(v["reference.file"], target) if v["reference.file"]
-                         else None)
             perception = Perception(target, self._camera, reference, DepthSettings.from_params(v))
             view = taught_view(reference, self._camera) if reference is not None else None
         except (ValueError, OSError) as exc:
@@ -649,6 +723,15 @@ class ControllerNode(Node):
         if self.servo is not None:
             self.servo.set_reference(view)
         self._last_obs = None
+
+    @staticmethod
+    def _load_vision_files(values) -> tuple:
+        """(target, reference or None) from the files the parameters name; ValueError or
+        OSError naming the file and what is wrong."""
+        target = load_target(values["target.file"])
+        reference = (load_reference(values["reference.file"], target)
+                     if values["reference.file"] else None)
+        return target, reference
 
     @_guarded
     def _on_camera_info(self, msg: CameraInfo) -> None:
@@ -712,7 +795,8 @@ class ControllerNode(Node):
                 image = image_io.to_bgr_or_mono(raw.data, raw.encoding, raw.width, raw.height,
                                                 raw.step, bool(raw.is_bigendian))
         except ValueError as exc:
-            self._warn("image", f"image refused: {exc}")
+            with self._lock:
+                self._frame_refused(f"image refused: {exc}")
             return
         self._on_image(image, header, rx)
 
@@ -721,18 +805,69 @@ class ControllerNode(Node):
         t = convert.time_to_sec(header.stamp) or self._now()
         return t + self._values["io.camera_time_offset_s"]
 
+    def _stamp_problem(self, what: str, t: float) -> str:
+        """Why a message stamped ``t`` (s) is refused, or "": further than
+        io.stamp_tolerance_s from the node's clock, either way."""
+        now, tolerance = self._now(), self._values["io.stamp_tolerance_s"]
+        skew = t - now
+        if abs(skew) <= tolerance:
+            return ""
+        hint = (" (use_sim_time is set but no /clock arrives?)" if now == 0.0 else
+                " (clocks of the camera/driver and this node out of step?)")
+        return (f"{what} stamped {skew:+.3f} s from this node's clock (io.stamp_tolerance_s = "
+                f"{tolerance} s){hint}")
+
+    def _refuse_input(self, kind: str, problem: str) -> None:
+        """Count and (throttled) log a refused input."""
+        self._refused[kind] = self._refused.get(kind, 0) + 1
+        self._warn(f"refused:{kind}", f"{problem}; refused ({self._refused[kind]} so far)")
+
+    def _pair(self, t: float):
+        """Joints at image time ``t`` and "" or None and why they cannot be had: the image
+        is older than the kept history or newer than the newest joint state by more than
+        io.joint_state_timeout_s (joints that lag the image cannot stand in for it)."""
+        if self._joints is None:
+            return None, "no robot model yet"
+        span = self._joints.span()
+        if span is None:
+            return None, "no joint state received yet"
+        oldest, newest = span
+        if t > newest + self._values["io.joint_state_timeout_s"]:
+            return None, (f"image stamped {t - newest:.3f} s after the newest joint state: "
+                          "cannot pair frames with joint states")
+        q = self._joints.at(t)
+        if q is None:
+            return None, (f"image stamped {newest - t:.3f} s before the newest joint state "
+                          f"(only {JOINT_HISTORY_S} s kept): cannot pair frames with joint "
+                          "states")
+        return q, ""
+
+    def _frame_refused(self, problem: str) -> None:
+        self._frame_problem = problem
+        self._refuse_input("image", problem)
+
     def _on_image(self, image: np.ndarray, header, rx: float) -> None:
         t0 = time.perf_counter()
         t = self._stamp(header)
         with self._lock:
             self._rx["image"] = rx
+            stamp_problem = self._stamp_problem("image", t)
+            if stamp_problem:
+                self._frame_refused(stamp_problem)
+                return
             self._last_image = (image, t, header.frame_id)
             problem = self._image_problem(image)
             if problem:
                 self._camera_problem = problem
-                self._halt("camera_info_invalid")
+                self._halt("camera_info_invalid", problem)
                 return
             self._camera_problem = ""
+            self._rx["frame"], self._frame_problem = rx, ""
+            q, self._pair_problem = self._pair(t)
+            if self._pair_problem:
+                self._refuse_input("unpaired", self._pair_problem)
+            else:
+                self._rx["paired"] = rx
             perception = self.perception
             depth = self._depth_near(t)
         if perception is None:
@@ -747,15 +882,12 @@ class ControllerNode(Node):
                 return  # rebuilt meanwhile: this frame used the old reference or camera
             self._last_obs = (obs, info, rx)
             servo = self.servo
-            if servo is not None and servo.state in ACTIVE_RUN:
-                q = self._joints.at(t)
-                if q is None:
-                    self._warn("joints_at_image", f"no joint state at image time {t:.3f} s "
-                               "(older than the kept second); frame skipped")
-                else:
-                    servo.observe(obs or _no_features(), q, t)
+            if q is not None and servo is not None and servo.state in ACTIVE_RUN:
+                servo.observe(obs or _no_features(), q, rx)
             if servo is not None:
                 self._frame_status = (t, 1e3 * (time.perf_counter() - t0))
+        if self._shutting_down:
+            return   # the node is being destroyed: publish nothing from this thread
         self._publish_features(obs, info)
         if self._values["io.publish_overlay"] and self._pub_overlay.get_subscription_count():
             self._publish_overlay(image, info, t, header.frame_id)
@@ -792,10 +924,22 @@ class ControllerNode(Node):
             try:
                 q, _ = convert.joint_state_to_arrays(msg, self.arm.joint_names)
             except ValueError as exc:
-                self._joint_problem = str(exc)
-                self._warn("joints", f"joint state refused: {exc}")
+                self._joint_problem = f"joint state refused: {exc}"
+                self._refuse_input("joints", self._joint_problem)
                 return
-            self._joints.add(convert.time_to_sec(msg.header.stamp) or self._now(), q)
+            if not np.all(np.isfinite(q)):
+                bad = [n for n, v in zip(self.arm.joint_names, q) if not math.isfinite(v)]
+                self._joint_problem = f"joint state with non-finite position(s) {bad}"
+                self._refuse_input("joints", self._joint_problem)
+                self._halt("numerical_fault", self._joint_problem)
+                return
+            t = convert.time_to_sec(msg.header.stamp) or self._now()
+            stamp_problem = self._stamp_problem("joint state", t)
+            if stamp_problem:
+                self._joint_problem = stamp_problem
+                self._refuse_input("joints", stamp_problem)
+                return
+            self._joints.add(t, q)
             self._rx["joints"] = rx
             self._joint_problem = ""
 
@@ -820,14 +964,43 @@ class ControllerNode(Node):
         self._truth[which] = convert.pose_to_matrix(msg)
 
     # ------------------------------------------------------------------------ output cycle
-    @_guarded
     def _on_output_timer(self) -> None:
+        """The output tick. Never raises: an unexpected error brakes blind (servo.command's
+        own guard) or, failing that, publishes an explicit zero."""
+        now = time.monotonic()
+        if self._last_tick is not None:   # timer health: late by more than one period
+            self._ticks += 1
+            self._late_ticks += now - self._last_tick > 2.0 * self._period
+        self._last_tick = now
+        try:
+            self._output_tick()
+        except Exception as exc:  # noqa: BLE001 - the last-resort guard of the output path
+            self._warn("output_tick", f"internal error in the output tick: "
+                       f"{type(exc).__name__}: {exc}", every_s=1.0)
+            with self._lock:
+                self._last_resort(exc)
+
+    def _last_resort(self, exc: Exception) -> None:
+        servo = self.servo
+        if servo is None or servo.state not in MOVING_STATES and not self._commanding:
+            return
+        servo.halt("internal_error", self._servo_time(), f"{type(exc).__name__}: {exc}")
+        cmd, _ = servo.brake_blind(self._servo_time(), self._period)
+        try:
+            q = self._joints.latest()
+            self._publish_command(cmd, q if q is not None else np.zeros(self.arm.n))
+        except Exception:  # noqa: BLE001 - the plainest zero we can send
+            if self._values["io.command_interface"] == "joint_velocity":
+                self._pub_command.publish(Float64MultiArray(data=[0.0] * len(self._output.order)))
+        self._commanding = servo.state in MOVING_STATES
+
+    def _output_tick(self) -> None:
         with self._lock:
             servo = self.servo
             q = self._joints.latest() if self._joints is not None else None
             if servo is None or q is None:
                 return
-            t = self._now()
+            t = self._servo_time()
             self._watchdogs(servo, t)
             cmd, status = servo.command(q, t, self._period)
             self._announce(servo)
@@ -849,14 +1022,25 @@ class ControllerNode(Node):
         if servo.state not in ACTIVE_RUN:
             return
         v = self._values
+        frame_age, paired_age = self._age("frame"), self._age("paired")
         if self._camera_problem:
-            servo.halt("camera_info_invalid", t)
-        elif self._age("image") > v["io.image_timeout_s"]:
-            servo.halt("image_stale", t)
+            servo.halt("camera_info_invalid", t, self._camera_problem)
+        elif frame_age > v["io.image_timeout_s"]:
+            servo.halt("image_stale", t, (self._frame_problem + "; " if self._frame_problem
+                                          else "") + f"no usable image for {frame_age:.2f} s "
+                       f"(io.image_timeout_s = {v['io.image_timeout_s']} s)")
         elif self._age("joints") > v["io.joint_state_timeout_s"]:
-            servo.halt("joints_stale", t)
+            servo.halt("joints_stale", t, (self._joint_problem + "; " if self._joint_problem
+                                           else "") + f"no usable joint state for "
+                       f"{self._age('joints'):.2f} s (io.joint_state_timeout_s = "
+                       f"{v['io.joint_state_timeout_s']} s)")
+        elif paired_age > v["io.image_timeout_s"]:
+            servo.halt("frames_unpaired", t, f"{self._pair_problem} (no image paired for "
+                       f"{paired_age:.2f} s; io.image_timeout_s = {v['io.image_timeout_s']} s)")
         elif v["io.require_permit"] and not self._permit_ok():
-            servo.halt("permit_withdrawn", t)
+            servo.halt("permit_withdrawn", t, f"no fresh True on {itf.TOPIC_MOTION_PERMIT} "
+                       f"within io.permit_timeout_s = {v['io.permit_timeout_s']} s"
+                       if self._permit else f"False on {itf.TOPIC_MOTION_PERMIT}")
 
     def _age(self, what: str) -> float:
         rx = self._rx[what]
@@ -865,12 +1049,13 @@ class ControllerNode(Node):
     def _permit_ok(self) -> bool:
         return self._permit and self._age("permit") <= self._values["io.permit_timeout_s"]
 
-    def _halt(self, reason: str) -> None:
+    def _halt(self, reason: str, detail: str = "") -> None:
         if self.servo is not None:
-            self.servo.halt(reason, self._now())
+            self.servo.halt(reason, self._servo_time(), detail)
 
     def _publish_command(self, cmd: np.ndarray, q: np.ndarray) -> None:
         self._pub_command.publish(self._output.message(cmd, q, self._now()))
+        self._command_sent = True
 
     def _end_run(self, servo: Servo, q: np.ndarray) -> None:
         """The explicit zero after a run, and the run result."""
@@ -899,8 +1084,7 @@ class ControllerNode(Node):
             self._announced = servo.reason
             self.get_logger().warning(
                 f"halt: {servo.reason}: {HALT_REASONS.get(servo.reason, servo.reason)}"
-                + (f" ({self._camera_problem})" if servo.reason == "camera_info_invalid"
-                   else ""))
+                + (f": {servo.detail}" if servo.detail else ""))
 
     def _publish_status(self, servo: Servo, status: dict) -> None:
         self._last_status = status
@@ -957,6 +1141,9 @@ class ControllerNode(Node):
                 "parameter_problems": "; ".join(problems) or "none",
                 "not_ready": "; ".join(missing) or "none",
                 "frames_dropped": self._frames.dropped,
+                "inputs_refused": json.dumps(self._refused),
+                "output_ticks": self._ticks, "output_ticks_late": self._late_ticks,
+                "last_image_problem": self._frame_problem or "none",
             }
         if problems or self.arm is None:
             level, message = DiagnosticStatus.ERROR, "; ".join(problems + missing)
@@ -979,19 +1166,22 @@ class ControllerNode(Node):
     def _input_problems(self) -> list[str]:
         v = self._values
         out = []
-        for what, topic, timeout_name in (("image", self._image_topic, "io.image_timeout_s"),
-                                          ("joints", itf.TOPIC_JOINT_STATES,
-                                           "io.joint_state_timeout_s")):
+        for what, topic, timeout_name, problem in (
+                ("frame", self._image_topic, "io.image_timeout_s", self._frame_problem),
+                ("joints", itf.TOPIC_JOINT_STATES, "io.joint_state_timeout_s",
+                 self._joint_problem)):
             age = self._age(what)
+            detail = f": {problem}" if problem else ""
             if age == math.inf:
-                detail = f": {self._joint_problem}" if what == "joints" and self._joint_problem \
-                    else ""
-                out.append(f"inputs: nothing received on {topic}{detail}")
+                out.append(f"inputs: nothing usable received on {topic}{detail}")
             elif age > v[timeout_name]:
-                out.append(f"inputs: last message on {topic} is {age:.2f} s old "
-                           f"({timeout_name} = {v[timeout_name]})")
+                out.append(f"inputs: last usable message on {topic} is {age:.2f} s old "
+                           f"({timeout_name} = {v[timeout_name]}){detail}")
         if self._camera_problem:
             out.append(f"inputs: {self._camera_problem}")
+        elif self._age("frame") <= v["io.image_timeout_s"] and self._pair_problem \
+                and self._joints is not None and self._joints.span() is not None:
+            out.append(f"inputs: {self._pair_problem}")
         if v["io.require_permit"] and not self._permit_ok():
             out.append(f"permit: no fresh True on {itf.TOPIC_MOTION_PERMIT} "
                        f"(io.require_permit; io.permit_timeout_s = {v['io.permit_timeout_s']})")
@@ -1037,6 +1227,9 @@ class ControllerNode(Node):
         if servo.state not in ("armed", "converged", "halted"):
             return [f"state: a run is in progress (state {servo.state}); stop it first"]
         out = self._reference_problems() + self._input_problems()
+        q = self._joints.latest() if self._joints is not None else None
+        if q is not None:
+            out += [f"joints: {line}" for line in servo.joints_outside_limits(q)]
         if out:
             return out
         s = servo.settings
@@ -1061,7 +1254,7 @@ class ControllerNode(Node):
     @_guarded_service
     def _srv_enable(self, request, response):
         with self._lock:
-            servo, t = self.servo, self._now()
+            servo, t = self.servo, self._servo_time()
             if not request.data:
                 if servo is None:
                     response.success, response.message = True, "motion disabled (no servo yet)"
@@ -1073,7 +1266,8 @@ class ControllerNode(Node):
                 response.success = True
                 response.message = f"motion already enabled (state {servo.state})"
                 return response
-            problems = self._enable_problems()
+            problems = (["node: shutting down"] if self._shutting_down
+                        else self._enable_problems())
             if problems:
                 return self._refuse(response, "enable", problems)
             servo.enable(True, t)
@@ -1085,12 +1279,13 @@ class ControllerNode(Node):
     @_guarded_service
     def _srv_start(self, request, response):
         with self._lock:
-            problems = self._start_problems()
+            problems = (["node: shutting down"] if self._shutting_down
+                        else self._start_problems())
             if problems:
                 return self._refuse(response, "start", problems)
             self._runs += 1
             run_id = f"{datetime.datetime.now():%Y%m%d-%H%M%S}-{self._runs}"
-            ok, message = self.servo.start(self._joints.latest(), self._now(), run_id)
+            ok, message = self.servo.start(self._joints.latest(), self._servo_time(), run_id)
             if ok:
                 self._announced = ""
                 self._output.reset()
@@ -1104,7 +1299,7 @@ class ControllerNode(Node):
             if self.servo is None:
                 response.success, response.message = True, "nothing to stop (no servo yet)"
             else:
-                response.success, response.message = self.servo.stop(self._now())
+                response.success, response.message = self.servo.stop(self._servo_time())
             self.get_logger().info(response.message)
             return response
 
@@ -1116,7 +1311,7 @@ class ControllerNode(Node):
             if servo is not None and servo.state in MOVING_STATES:
                 problems.append(f"state: cannot teach while a run moves (state {servo.state});"
                                 " stop first")
-            if last is None or self._age("image") > self._values["io.image_timeout_s"]:
+            if last is None or self._age("frame") > self._values["io.image_timeout_s"]:
                 problems.append(f"inputs: no fresh image on {self._image_topic}")
             elif self._camera_problem:
                 problems.append(f"inputs: {self._camera_problem}")
@@ -1186,8 +1381,16 @@ class ControllerNode(Node):
                                  functools.partial(self._on_truth, "taught"), qos.LATCHED)
 
     def _now(self) -> float:
-        """Node time (ROS time; simulated with use_sim_time), seconds."""
+        """Node time (ROS time; simulated with use_sim_time), seconds: stamps of what the node
+        publishes, and the clock input stamps are checked against."""
         return self.get_clock().now().nanoseconds * 1e-9
+
+    @staticmethod
+    def _servo_time() -> float:
+        """The servo's one clock (steady, seconds): run start, every output tick, frame
+        receipt and so every timeout and run time. Image stamps only pair frames with joint
+        states."""
+        return time.monotonic()
 
     def _warn(self, key: str, message: str, every_s: float = 5.0) -> None:
         """Log a warning at most every ``every_s`` seconds per key."""
@@ -1202,16 +1405,43 @@ class ControllerNode(Node):
         with self._lock:
             self._halt("internal_error")
 
+    def finish_for_shutdown(self) -> bool:
+        """Called while the node keeps spinning after a stop was asked for (signal): the first
+        call halts a moving run (reason ``shutdown``); True once no run moves and the explicit
+        zero is out. Enable and start are refused from the first call on."""
+        with self._lock:
+            servo = self.servo
+            if not self._shutting_down:
+                self._shutting_down = True
+                if servo is not None and servo.state in ACTIVE_RUN:
+                    servo.halt("shutdown", self._servo_time(), "the node was asked to stop "
+                               "(SIGINT/SIGTERM); braking before it exits")
+                    self.get_logger().warning("stop requested during a run: braking to zero")
+            return not self._commanding and (servo is None or servo.state not in MOVING_STATES)
+
     def shutdown(self) -> None:
-        """Stop the perception thread; an explicit zero if a run was commanding the arm."""
+        """Stop the perception thread; an explicit zero if a run was still commanding the arm
+        (finish_for_shutdown ran out of time), and wait (bounded) until the arm's controller
+        acknowledged the last command."""
+        self._shutting_down = True
         self._frames.close()
         self._worker.join(timeout=2.0)
         with self._lock:
             q = self._joints.latest() if self._joints is not None else None
-            if self._commanding and q is not None:
-                self._publish_command(np.zeros(self.arm.n), q)
+            if self._commanding:
+                self._publish_command(np.zeros(self.arm.n),
+                                      q if q is not None else np.zeros(self.arm.n))
                 self._commanding = False
                 self.get_logger().warning("shutting down during a run: explicit zero sent")
+            if self._command_sent:
+                try:
+                    acked = self._pub_command.wait_for_all_acked(
+                        Duration(seconds=SHUTDOWN_ACK_S))
+                except Exception:  # noqa: BLE001 - best effort while the context ends
+                    acked = False
+                if not acked:
+                    self.get_logger().warning(
+                        f"the last command was not acknowledged within {SHUTDOWN_ACK_S} s")
 
 
 def _no_features() -> Observation:
@@ -1230,7 +1460,9 @@ def main(args=None) -> int:
     """Console entry point of ``vservo_node``; parameters from ``--ros-args``."""
     # Our own signal handling: the context must outlive SIGINT/SIGTERM long enough to send the
     # explicit zero of a run in progress.
-    run_node("vservo_node", ControllerNode, ControllerNode.shutdown, args, own_signals=True)
+    install_signal_handlers()
+    run_node("vservo_node", ControllerNode, ControllerNode.shutdown, args, own_signals=True,
+             finish=ControllerNode.finish_for_shutdown)
     return 0
 
 

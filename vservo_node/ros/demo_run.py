@@ -24,7 +24,6 @@ from pathlib import Path
 
 import numpy as np
 import rclpy
-import yaml
 from rclpy.node import Node
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool, String
@@ -38,6 +37,7 @@ from vservo_node.ros import harness, qos
 from vservo_node.sim import SimCell, load_scenario
 from vservo_node.vision.image_io import to_bgr_or_mono
 from vservo_node.vision.reference import save_reference
+from vservo_node.yaml_files import dump_yaml
 
 # The summary's figures, by their names and definitions in vservo_node.record.metrics: read
 # from the recorded run's metrics.json, so the demo prints what the report shows.
@@ -86,7 +86,7 @@ def controller_overrides(scenario, reference_file: Path, folder: Path,
     for section, entries in (extra or {}).items():
         values.setdefault(section, {}).update(entries)
     path = folder / "controller_overrides.yaml"
-    path.write_text(yaml.safe_dump({"vservo": {"ros__parameters": values}}))
+    path.write_text(dump_yaml({"vservo": {"ros__parameters": values}}))
     return path
 
 

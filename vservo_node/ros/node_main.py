@@ -3,11 +3,19 @@
 ``vservo_node``, ``vservo_recorder`` and ``vservo_sim`` all set up the middleware, build one
 node, spin it on a single-threaded executor until SIGINT/SIGTERM or an external shutdown, then
 stop the node's own work before destroying it and the context.
+
+Signals (``own_signals``): a terminal Ctrl-C reaches every process of the group, and
+``ros2 launch`` then signals its children again (SIGINT, then SIGTERM after its grace period).
+So the first SIGINT or SIGTERM only *asks* for a stop, and every further one is counted and
+ignored while stopping: the node keeps spinning through its ``finish`` phase (the controller
+brakes a moving run and publishes its explicit zero) for at most ``finish_timeout_s``, then
+``stop`` runs, and the process exits 0 with no traceback.
 """
 from __future__ import annotations
 
 import signal
 import sys
+import time
 from collections.abc import Callable
 from typing import TypeVar
 
@@ -20,31 +28,44 @@ from vservo_node.ros import dds
 
 N = TypeVar("N", bound=Node)
 
+#: Signals received by this process (while stopping, they are only counted).
+SIGNALS: list[int] = []
 
-def _interrupt(signum, frame):
-    raise KeyboardInterrupt
+
+def _on_signal(signum, frame) -> None:
+    SIGNALS.append(signum)
+
+
+def install_signal_handlers() -> None:
+    """SIGINT and SIGTERM only ask for a stop (see the module docstring); call as early as
+    possible in ``main`` so that no signal can raise KeyboardInterrupt mid-start."""
+    signal.signal(signal.SIGINT, _on_signal)
+    signal.signal(signal.SIGTERM, _on_signal)
 
 
 def run_node(program: str, make_node: Callable[[], N], stop: Callable[[N], None], args=None, *,
              start_errors: tuple[type[Exception], ...] = (),
              start: Callable[[N], None] | None = None,
-             own_signals: bool = False) -> N | None:
+             own_signals: bool = False,
+             finish: Callable[[N], bool] | None = None,
+             finish_timeout_s: float = 3.0) -> N | None:
     """Build a node with ``make_node``, spin it until shutdown, then clean up.
 
     ``args`` are the command-line arguments for ``rclpy.init`` (``--ros-args``). An exception in
     ``start_errors`` raised while building the node is reported on stderr as
     ``<program>: cannot start: ...`` and gives None. ``start`` runs once the node is on the
-    executor; ``stop`` runs when spinning ends, before the executor and the node are destroyed.
-    With ``own_signals`` rclpy installs no signal handlers: SIGINT/SIGTERM raise
-    KeyboardInterrupt in the spinning thread instead, so the context outlives them long enough
-    for ``stop`` to publish (the controller's final zero twist, the recorder's bag closing).
-    Returns the stopped, destroyed node (its attributes stay readable).
+    executor. When a stop is asked for, ``finish(node)`` is called and the node keeps spinning
+    until ``finish(node)`` returns True or ``finish_timeout_s`` passes (the controller brakes
+    there); then ``stop`` runs, before the executor and the node are destroyed.
+    With ``own_signals`` rclpy installs no signal handlers and SIGINT/SIGTERM are handled as
+    the module docstring says. Returns the stopped, destroyed node (its attributes stay
+    readable).
     """
+    if own_signals:
+        install_signal_handlers()
     dds.use_shm_profile()
     if own_signals:
         rclpy.init(args=args, signal_handler_options=SignalHandlerOptions.NO)
-        signal.signal(signal.SIGINT, _interrupt)
-        signal.signal(signal.SIGTERM, _interrupt)
     else:
         rclpy.init(args=args)
     try:
@@ -58,7 +79,12 @@ def run_node(program: str, make_node: Callable[[], N], stop: Callable[[N], None]
     if start is not None:
         start(node)
     try:
-        executor.spin()
+        while not SIGNALS and rclpy.ok():
+            executor.spin_once(timeout_sec=0.1)
+        if finish is not None and rclpy.ok():
+            deadline = time.monotonic() + finish_timeout_s
+            while not finish(node) and time.monotonic() < deadline and rclpy.ok():
+                executor.spin_once(timeout_sec=0.01)
     except (KeyboardInterrupt, ExternalShutdownException):
         pass
     finally:

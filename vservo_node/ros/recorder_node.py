@@ -100,7 +100,6 @@ from pathlib import Path
 # first image of a run the executor thread lost ~1.5 s of joint states and images (measured on
 # two demo runs). The report module below (matplotlib) is imported at start for the same reason.
 import cv2  # noqa: F401
-import yaml
 from geometry_msgs.msg import PoseStamped, TwistStamped
 from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ParameterDescriptor,
                                 ParameterEvent, ParameterType)
@@ -122,6 +121,7 @@ from vservo_node.record.bag import PARAMS_FILE, RunRecorder
 from vservo_node.record.report import write_report
 from vservo_node.ros import qos
 from vservo_node.ros.node_main import run_node
+from vservo_node.yaml_files import dump_yaml
 
 RECORDER_NODE = itf.RECORDER_NODE
 TOPIC_LAST_BAG = itf.TOPIC_LAST_BAG
@@ -302,7 +302,7 @@ class BagWriter:
         path = self._recorder.bag_dir / PARAMS_FILE
         if not path.exists():
             tmp = path.with_name(path.name + ".tmp")
-            tmp.write_text(yaml.safe_dump(params, sort_keys=False), encoding="utf8")
+            tmp.write_text(dump_yaml(params, sort_keys=False), encoding="utf8")
             os.replace(tmp, path)
             self._log.info(f"controller parameters written to {path}")
             self._copy_reference(params)

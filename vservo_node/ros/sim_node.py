@@ -330,7 +330,7 @@ def main(args=None) -> int:
     """Console entry point of ``vservo_sim``: parameters from ``--ros-args``."""
     node = run_node("vservo_sim", SimCellNode, SimCellNode.stop, args,
                     start_errors=(ValueError, FileNotFoundError, ParameterException),
-                    start=SimCellNode.start)
+                    start=SimCellNode.start, own_signals=True)
     if node is None:
         return 2
     return 1 if node.failure else 0

@@ -63,18 +63,18 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-import yaml
 from scipy.spatial.transform import Rotation
 
 from vservo_node import paths
 from vservo_node.control.frames import transform, transform_from_xyz_rpy
-from vservo_node.control.kinematics import ArmModel
+from vservo_node.control.kinematics import URDF_MAX_BYTES, ArmModel
 from vservo_node.sim.arm import ArmDynamics
 from vservo_node.sim.camera_sim import Occluder, Photometric
 from vservo_node.sim.ik import solve_camera_pose
 from vservo_node.vision.camera import CameraModel
 from vservo_node.vision.targets import load_target
 from vservo_node.yaml_entries import EntryReader
+from vservo_node.yaml_files import YamlFileError, brief, load_yaml, read_bounded
 
 FORMAT = "vservo_scenario/1"
 
@@ -95,9 +95,16 @@ _OCCLUSION = {"rect_px", "colour", "from_s", "until_s"}
 _PERTURBATION = {"translation", "rotation_deg"}
 _BELIEF = {"hand_eye_error", "depth_scale"}
 _HIDEABLE = {"dot": "dots", "tag": "markers"}
+# Upper bounds of the image entries (grey levels, pixels, factor): beyond them a picture says
+# nothing and the blur kernel grows without bound (common practice, no source).
+_IMAGE_MAX = {"noise_std": 255.0, "blur_sigma_px": 100.0, "gain": 100.0, "table_texture": 255.0}
 
 
-class ScenarioError(ValueError):
+# Largest camera image side (pixels): the simulator renders every frame at this size.
+MAX_IMAGE_SIDE = 8192
+
+
+class ScenarioError(YamlFileError):
     """A scenario file that cannot be used; the message names the file and the entry."""
 
 
@@ -155,8 +162,12 @@ class _Reader(EntryReader):
         path = Path(self.text(value, entry))
         if not path.is_absolute():
             path = paths.config_dir() / path
-        if not path.is_file():
-            self.fail(entry, f"file not found: {path}")
+        try:
+            found = path.is_file()
+        except (OSError, ValueError):    # a name too long for the file system, a NUL byte
+            found = False
+        if not found:
+            self.fail(entry, f"file not found: {brief(str(path))}")
         return path
 
 
@@ -170,12 +181,13 @@ def _perturbation(r: _Reader, value, entry) -> np.ndarray:
 
 def _joints(r: _Reader, value, entry, arm: ArmModel) -> np.ndarray:
     if not isinstance(value, dict):
-        r.fail(entry, f"expected a mapping joint name -> position, got {value!r}")
-    extra = sorted(set(value) - set(arm.joint_names))
+        r.fail(entry, f"expected a mapping joint name -> position, got {brief(value)}")
+    extra = sorted(set(value) - set(arm.joint_names), key=str)
     if extra:
-        r.fail(entry, f"joint(s) {extra} are not on the chain {arm.joint_names}")
+        r.fail(entry, f"joint(s) {brief(extra)} are not on the chain {arm.joint_names}")
+    positions = {k: r.number(v, f"{entry}.{k}") for k, v in value.items()}
     try:
-        q = arm.q_from_mapping({k: r.number(v, f"{entry}.{k}") for k, v in value.items()})
+        q = arm.q_from_mapping(positions)
     except ValueError as exc:
         r.fail(entry, str(exc))
     outside = [f"{n}={v:g} not in [{lo:g}, {hi:g}]"
@@ -192,7 +204,8 @@ def _home(r: _Reader, robot, urdf: Path, arm: ArmModel) -> np.ndarray:
         path = urdf.with_suffix(".yaml") if home is None else r.path(home, "robot.home")
         if not path.is_file():
             r.fail("robot.home", f"not given and {path} does not exist")
-        home = (yaml.safe_load(path.read_text()) or {}).get("home")
+        data = load_yaml(path, error=ScenarioError, prefix=f"{r.where}: robot.home: ")
+        home = data.get("home") if isinstance(data, dict) else None
         if home is None:
             r.fail("robot.home", f"{path} has no 'home' mapping")
     return _joints(r, home, "robot.home", arm)
@@ -205,15 +218,17 @@ def _camera(r: _Reader, value):
                                                                             "cy"))
     K = [[fx, 0.0, cx], [0.0, fy, cy], [0.0, 0.0, 1.0]]
     for key in ("width", "height"):
-        if not isinstance(value[key], int) or value[key] <= 0:
-            r.fail(f"camera.{key}", f"expected a positive integer (pixels), got {value[key]!r}")
+        if (isinstance(value[key], bool) or not isinstance(value[key], int)
+                or not 0 < value[key] <= MAX_IMAGE_SIDE):
+            r.fail(f"camera.{key}", f"expected a positive integer (pixels) up to "
+                                    f"{MAX_IMAGE_SIDE}, got {brief(value[key])}")
     d = value.get("d", [])
     if not isinstance(d, (list, tuple)):
-        r.fail("camera.d", f"expected a list of distortion coefficients, got {d!r}")
+        r.fail("camera.d", f"expected a list of distortion coefficients, got {brief(d)}")
     d = [r.number(v, f"camera.d[{i}]") for i, v in enumerate(d)]
+    model = r.text(value.get("distortion_model", "none"), "camera.distortion_model")
     try:
-        camera = CameraModel(value["width"], value["height"], K, d,
-                             value.get("distortion_model", "none"))
+        camera = CameraModel(value["width"], value["height"], K, d, model)
     except ValueError as exc:
         r.fail("camera", str(exc))
     return camera, r.number(value["fps"], "camera.fps", positive=True)
@@ -221,8 +236,9 @@ def _camera(r: _Reader, value):
 
 def _target(r: _Reader, value):
     value = r.mapping(value, "target", _TARGET, {"file", "pose"})
+    path = r.path(value["file"], "target.file")
     try:
-        target = load_target(r.path(value["file"], "target.file"))
+        target = load_target(path)
     except ValueError as exc:
         r.fail("target.file", str(exc))
     if not target.has_geometry:
@@ -232,18 +248,21 @@ def _target(r: _Reader, value):
     T = transform_from_xyz_rpy(r.vector(pose["xyz"], "target.pose.xyz", 3),
                                r.vector(pose["rpy_rad"], "target.pose.rpy_rad", 3))
     hidden = []
-    for i, item in enumerate(value.get("hide") or []):
+    hide = value.get("hide") or []
+    if not isinstance(hide, list):
+        r.fail("target.hide", f"expected a list of [dot, id] or [tag, id], got {brief(hide)}")
+    for i, item in enumerate(hide):
         entry = f"target.hide[{i}]"
         if (not isinstance(item, (list, tuple)) or len(item) != 2
-                or item[0] not in _HIDEABLE or isinstance(item[1], bool)
-                or not isinstance(item[1], int)):
-            r.fail(entry, f"expected [dot, id] or [tag, id], got {item!r}")
+                or not isinstance(item[0], str) or item[0] not in _HIDEABLE
+                or isinstance(item[1], bool) or not isinstance(item[1], int)):
+            r.fail(entry, f"expected [dot, id] or [tag, id], got {brief(item)}")
         kind, ident = item
         if _HIDEABLE[kind] != target.kind:
             r.fail(entry, f"a {target.kind} target has no {kind} features")
         ids = [f.id for f in (target.dots if kind == "dot" else target.markers)]
         if ident not in ids:
-            r.fail(entry, f"target {target.name!r} has no {kind} {ident}; ids: {ids}")
+            r.fail(entry, f"target {target.name!r} has no {kind} {ident}; ids: {brief(ids)}")
         hidden.append((kind, ident))
     return target, T, tuple(hidden)
 
@@ -285,7 +304,10 @@ def _solve(r: _Reader, arm, T_goal, q_seed, q_rest, entry):
 def _image(r: _Reader, value) -> Photometric:
     value = r.mapping(value, "image", _IMAGE)
     occluders = []
-    for i, occ in enumerate(value.get("occlusions") or []):
+    occlusions = value.get("occlusions") or []
+    if not isinstance(occlusions, list):
+        r.fail("image.occlusions", f"expected a list of occluders, got {brief(occlusions)}")
+    for i, occ in enumerate(occlusions):
         entry = f"image.occlusions[{i}]"
         occ = r.mapping(occ, entry, _OCCLUSION, {"rect_px"})
         rect = r.vector(occ["rect_px"], f"{entry}.rect_px", 4)
@@ -302,6 +324,9 @@ def _image(r: _Reader, value) -> Photometric:
         occluders.append(Occluder(**fields))
     fields = {k: r.number(value[k], f"image.{k}") for k in
               ("noise_std", "blur_sigma_px", "gain", "table_texture") if k in value}
+    for key, top in _IMAGE_MAX.items():
+        if fields.get(key, 0.0) > top:
+            r.fail(f"image.{key}", f"expected at most {top}, got {fields[key]!r}")
     if "table_rgb" in value:
         fields["table_rgb"] = tuple(int(c) for c in r.vector(value["table_rgb"],
                                                              "image.table_rgb", 3))
@@ -332,19 +357,20 @@ def scenario_from_dict(data, source: Path | None = None) -> Scenario:
     r = _Reader(source)
     data = r.mapping(data, "top level", _TOP, _TOP_REQUIRED)
     if data.get("format", FORMAT) != FORMAT:
-        r.fail("format", f"{data['format']!r} is not {FORMAT!r}")
+        r.fail("format", f"{brief(data['format'])} is not {FORMAT!r}")
     seed = data.get("seed", 0)
     if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
-        r.fail("seed", f"expected a non-negative integer, got {seed!r}")
+        r.fail("seed", f"expected a non-negative integer, got {brief(seed)}")
 
     robot = r.mapping(data["robot"], "robot", _ROBOT,
                       {"urdf", "base_frame", "tool_frame", "camera_frame"})
     urdf = r.path(robot["urdf"], "robot.urdf")
     frames = [r.text(robot[k], f"robot.{k}") for k in ("base_frame", "tool_frame",
                                                         "camera_frame")]
+    text = read_bounded(urdf, URDF_MAX_BYTES, ScenarioError, prefix=f"{r.where}: robot.urdf: ")
     try:
-        arm = ArmModel.from_urdf_file(urdf, *frames)
-    except ValueError as exc:
+        arm = ArmModel.from_urdf(text.decode("utf-8"), *frames)
+    except ValueError as exc:      # UnicodeDecodeError is one too
         r.fail("robot", str(exc))
     q_home = _home(r, robot, urdf, arm)
 

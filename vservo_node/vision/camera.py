@@ -82,6 +82,8 @@ class CameraModel:
         self.K = _matrix(K, (3, 3), "K")
         _check_intrinsics(self.K, "K")
         self.D = np.asarray(D, dtype=float).ravel()
+        if not np.isfinite(self.D).all():
+            raise ValueError(f"distortion coefficients D must be finite, got {self.D.tolist()}")
         n = DISTORTION_MODELS[distortion_model]
         if distortion_model == "none":
             if np.any(self.D != 0):

@@ -14,6 +14,11 @@ from __future__ import annotations
 import cv2
 import numpy as np
 
+# A garbage frame makes OpenCV's decoders log a warning of their own on every frame; the
+# callers refuse such frames with a throttled message that names the stream instead (cv2.error
+# exceptions still reach them).
+cv2.utils.logging.setLogLevel(cv2.utils.logging.LOG_LEVEL_FATAL)
+
 # sensor_msgs/image_encodings names we decode; CompressedImage formats are matched separately.
 RAW_ENCODINGS = ("mono8", "mono16", "bgr8", "rgb8", "bgra8", "rgba8",
                  "bayer_rggb8", "bayer_bggr8", "bayer_gbrg8", "bayer_grbg8")
@@ -102,7 +107,14 @@ def to_bgr_or_mono(buffer, encoding: str, width: int | None = None, height: int 
     """
     kind = None if encoding in RAW_ENCODINGS else compressed_kind(encoding)
     if kind is not None:
-        image = cv2.imdecode(np.frombuffer(buffer, dtype=np.uint8), cv2.IMREAD_UNCHANGED)
+        data = np.frombuffer(buffer, dtype=np.uint8)
+        if data.size == 0:
+            raise ValueError(f"empty {kind} image ({encoding!r}): no bytes to decode")
+        try:
+            image = cv2.imdecode(data, cv2.IMREAD_UNCHANGED)
+        except cv2.error as exc:
+            raise ValueError(f"could not decode the {kind} bytes of a {encoding!r} image: "
+                             f"{str(exc).strip().splitlines()[-1]}") from None
         if image is None:
             raise ValueError(f"could not decode the {kind} bytes of a {encoding!r} image")
         if image.ndim == 3 and image.shape[2] == 4:

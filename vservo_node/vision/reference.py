@@ -30,25 +30,28 @@ from __future__ import annotations
 
 import datetime
 import re
+from collections import Counter
 from dataclasses import dataclass
 from pathlib import Path
 
 import cv2
 import numpy as np
-import yaml
 
 from vservo_node.vision import depth as depth_mod
 from vservo_node.vision.camera import CameraModel
 from vservo_node.vision.features import Detection, make_detector, model_from_image
 from vservo_node.vision.matching import MIN_MATCHED, MatchResult, match_by_key, match_dots
 from vservo_node.vision.targets import Target
+from vservo_node.yaml_entries import EntryReader
+from vservo_node.yaml_files import YamlFileError, brief, dump_yaml
 
 FORMAT = "vservo_reference/1"
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
 
 
-class BadReferenceError(ValueError):
-    """A reference that cannot be captured, read or used; the message says what and why."""
+class BadReferenceError(YamlFileError):
+    """A reference that cannot be captured, read or used; the message says what and why (for a
+    file: which file and entry). A ``yaml_files.YamlFileError``, so a ValueError."""
 
 
 @dataclass
@@ -130,7 +133,8 @@ def check_target(reference: Reference, target: Target):
         raise BadReferenceError(f"reference {reference.name!r} was taught on target "
                              f"{reference.target!r} ({reference.kind}), not on "
                              f"{target.name!r} ({target.kind})")
-    unknown = [k for k in reference.keys if k not in set(target.keys())]
+    known = set(target.keys())
+    unknown = [k for k in reference.keys if k not in known]
     if unknown:
         raise BadReferenceError(f"reference {reference.name!r} has features {unknown} that "
                              f"target {target.name!r} does not have")
@@ -237,98 +241,191 @@ def save_reference(reference: Reference, path) -> Path:
             raise BadReferenceError(f"could not write the taught image {image_file}")
         data["image"] = image_file.name
     with open(path, "w") as f:
-        yaml.safe_dump(data, f, sort_keys=False, default_flow_style=None)
+        dump_yaml(data, f, sort_keys=False, default_flow_style=None)
     return path
+
+
+_KEY_FORMS = {"dots": ("dot", 1), "markers": ("tag", 2), "textured": ("pt", 1)}
+_CAMERA_KEYS = ("width", "height", "distortion_model", "d", "k", "p", "r", "rectified")
+# Largest image side accepted from a file (pixels): an 8K sensor's. It bounds what a reference
+# can make us decode: its taught PNG must have image_size, so at most 8192 x 8192 x 3 bytes
+# (200 MB); a PNG compresses such an image ~1000:1 (common practice, no source).
+MAX_IMAGE_SIDE = 8192
+
+
+class _Reader(EntryReader):
+    kind = "reference file"
+    error = BadReferenceError
+
+
+def camera_from_entry(r: EntryReader, value, entry: str = "camera") -> CameraModel:
+    """CameraModel from a ``CameraModel.to_dict`` mapping read from a file; every malformed
+    entry is refused through ``r`` (its error class) naming ``entry`` and the key."""
+    def at(key):
+        return f"{entry}.{key}" if entry else key
+
+    value = r.mapping(value, entry or "top level", _CAMERA_KEYS, ("width", "height", "k"))
+    fields = {"width": r.integer(value["width"], at("width"), 1, MAX_IMAGE_SIDE),
+              "height": r.integer(value["height"], at("height"), 1, MAX_IMAGE_SIDE),
+              "k": r.numbers(value["k"], at("k"), 9)}
+    if "distortion_model" in value:
+        fields["distortion_model"] = r.text(value["distortion_model"], at("distortion_model"))
+    if value.get("d") is not None:
+        d = value["d"]
+        if not isinstance(d, list) or len(d) > 16:
+            r.fail(at("d"), f"expected a list of distortion coefficients, got {brief(d)}")
+        fields["d"] = r.vector(d, at("d"), len(d)).tolist()
+    for key, n in (("p", 12), ("r", 9)):
+        if value.get(key) is not None:
+            fields[key] = r.numbers(value[key], at(key), n)
+    if "rectified" in value:
+        if not isinstance(value["rectified"], bool):
+            r.fail(at("rectified"), f"expected true or false, got {brief(value['rectified'])}")
+        fields["rectified"] = value["rectified"]
+    try:
+        return CameraModel.from_dict(fields)
+    except ValueError as exc:
+        r.fail(entry or "top level", str(exc))
+
+
+def _png_size(path: Path):
+    """(width, height) from a PNG file's IHDR chunk, without decoding it; None when the file is
+    not a PNG (ISO/IEC 15948:2004, sec. 5.2 signature and 11.2.2 IHDR, from memory)."""
+    try:
+        with open(path, "rb") as f:
+            head = f.read(24)
+    except OSError:
+        return None
+    if len(head) < 24 or head[:8] != b"\x89PNG\r\n\x1a\n" or head[12:16] != b"IHDR":
+        return None
+    return int.from_bytes(head[16:20], "big"), int.from_bytes(head[20:24], "big")
 
 
 def load_reference(path, target: Target | None = None) -> Reference:
     """Read and validate a reference file; with ``target``, also check it was taught on it.
 
-    Raises BadReferenceError naming the file and what is missing or inconsistent.
+    Raises BadReferenceError (a ``yaml_files.YamlFileError``) naming the file, the entry and
+    what is missing or inconsistent; the file is read through ``yaml_files.load_yaml`` (size
+    cap, no anchors/aliases or tags).
     """
     path = Path(path)
+    r = _Reader(path)
 
-    def fail(msg):
-        raise BadReferenceError(f"reference file {path}: {msg}")
+    def fail(msg, entry=None):
+        if entry is None:
+            raise BadReferenceError(f"reference file {path}: {msg}")
+        r.fail(entry, msg)
 
-    if not path.is_file():
+    try:
+        exists = path.is_file()
+    except (OSError, ValueError):
+        exists = False
+    if not exists:
         fail("not found")
-    with open(path) as f:
-        try:
-            data = yaml.safe_load(f)
-        except yaml.YAMLError as exc:
-            fail(f"not valid YAML ({exc})")
+    data = r.read_yaml(path)
     if not isinstance(data, dict):
-        fail("must hold a mapping")
+        fail(f"must hold a mapping, got {brief(data)}")
     if data.get("format") != FORMAT:
-        fail(f"format is {data.get('format')!r}, expected {FORMAT!r}")
+        fail(f"format is {brief(data.get('format'))}, expected {FORMAT!r}", "format")
     missing = [k for k in ("name", "target", "kind", "image_size", "features") if k not in data]
     if missing:
         fail(f"missing fields {missing}")
+    name = r.text(data["name"], "name")
+    target_name = r.text(data["target"], "target")
+    kind = data["kind"]
+    if not isinstance(kind, str) or kind not in _KEY_FORMS:
+        fail(f"expected one of {sorted(_KEY_FORMS)}, got {brief(kind)}", "kind")
     size = data["image_size"]
     if not (isinstance(size, list) and len(size) == 2 and all(
-            isinstance(v, int) and v > 0 for v in size)):
-        fail(f"image_size must be [width, height] in pixels, got {size!r}")
+            isinstance(v, int) and not isinstance(v, bool) and 0 < v <= MAX_IMAGE_SIDE
+            for v in size)):
+        fail(f"image_size must be [width, height] in pixels (1..{MAX_IMAGE_SIDE}), got "
+             f"{brief(size)}", "image_size")
     features = data["features"]
     if not isinstance(features, list) or len(features) < MIN_MATCHED:
         fail(f"needs at least {MIN_MATCHED} features, got "
-             f"{len(features) if isinstance(features, list) else features!r}")
+             f"{len(features) if isinstance(features, list) else brief(features)}", "features")
+    for i, f in enumerate(features):
+        if not isinstance(f, dict):
+            fail(f"expected a mapping {{key: [...], pixel: [u, v], ...}}, got {brief(f)}",
+                 f"features[{i}]")
     camera = None
     if data.get("camera") is not None:
-        try:
-            camera = CameraModel.from_dict(data["camera"])
-        except (ValueError, TypeError) as exc:
-            fail(f"camera: {exc}")
+        camera = camera_from_entry(r, data["camera"], "camera")
         if (camera.width, camera.height) != tuple(size):
-            fail(f"camera is {camera.width}x{camera.height} but image_size is {size}")
+            fail(f"camera is {camera.width}x{camera.height} but image_size is {size}", "camera")
+    depth_source = data.get("depth_source")
+    if depth_source is not None and not isinstance(depth_source, str):
+        fail(f"expected text or null, got {brief(depth_source)}", "depth_source")
 
     def column(field, width, required):
         present = [field in f for f in features]
         if required and not all(present):
             fail(f"every feature needs '{field}'; missing in features "
-                 f"{[i for i, p in enumerate(present) if not p]}")
+                 f"{brief([i for i, p in enumerate(present) if not p])}")
         if not any(present):
             return None
         if not all(present):
             fail(f"'{field}' is given for some features but not all")
-        try:
-            values = [np.array(f[field], dtype=float).reshape(-1) for f in features]
-        except (ValueError, TypeError):
-            values = None
-        bad = [i for i, v in enumerate(values or []) if v.size != width
-               or not np.isfinite(v).all()]
-        if values is None or bad:
+        bad, values = [], []
+        for i, f in enumerate(features):
+            v = f[field] if width > 1 else [f[field]]
+            if (isinstance(v, list) and len(v) == width and all(
+                    isinstance(x, (int, float)) and not isinstance(x, bool) for x in v)
+                    and all(np.isfinite(float(x)) for x in v)):
+                values.append([float(x) for x in v])
+            else:
+                bad.append(i)
+        if bad:
             fail(f"'{field}' must be {width} finite number(s) per feature; wrong in features "
-                 f"{bad if values is not None else 'some'}")
-        values = np.array(values)
+                 f"{brief(bad)}", f"features[{bad[0]}].{field}")
+        values = np.array(values, dtype=float)
         return values if width > 1 else values.ravel()
 
-    if not all(isinstance(f, dict) and isinstance(f.get("key"), list) for f in features):
-        fail("every feature needs 'key' as a list, e.g. [dot, 0]")
-    keys = [tuple(f["key"]) for f in features]
-    if len(set(keys)) != len(keys):
-        fail(f"repeated feature keys {sorted({k for k in keys if keys.count(k) > 1})}")
+    form, ids = _KEY_FORMS[kind]
+    keys = []
+    for i, f in enumerate(features):
+        key = f.get("key")
+        if not (isinstance(key, list) and len(key) == 1 + ids and key[0] == form and all(
+                isinstance(k, int) and not isinstance(k, bool) and k >= 0 for k in key[1:])
+                and (form != "tag" or key[2] < 4)):
+            example = [form, 0] + ([0] if ids == 2 else [])
+            fail(f"every feature needs 'key' as a list, e.g. {example} for a {kind} reference"
+                 f"{' (corner 0..3)' if form == 'tag' else ''}; got {brief(key)}",
+                 f"features[{i}].key")
+        keys.append(tuple(key))
+    counts = Counter(keys)
+    if len(counts) != len(keys):
+        fail(f"repeated feature keys {brief(sorted(k for k, n in counts.items() if n > 1))}",
+             "features")
     pixels = column("pixel", 2, True)
     normalized = column("normalized", 2, camera is not None)
     if normalized is not None and camera is None:
         fail("has normalized coordinates but no camera")
-    colours = column("colour_lab", 3, data["kind"] == "dots")
+    colours = column("colour_lab", 3, kind == "dots")
     depths = column("depth", 1, False)
     if depths is not None and not np.all(depths > 0):
         fail("depths must be > 0 metres")
     image = None
-    if data["kind"] == "textured":
+    if kind == "textured":
         if "image" not in data:
             fail("a textured reference needs 'image', the taught view saved beside it")
-        image = cv2.imread(str(path.parent / data["image"]), cv2.IMREAD_COLOR)
+        image_file = r.text(data["image"], "image")
+        image_path = path.parent / image_file
+        png = _png_size(image_path)
+        if png is None:
+            fail(f"cannot read the taught image {image_path}: expected a PNG file", "image")
+        if png != tuple(size):    # checked before decoding: no huge image is ever decoded
+            fail(f"taught image is {png[0]}x{png[1]}, image_size is {size}", "image")
+        image = cv2.imread(str(image_path), cv2.IMREAD_COLOR)
         if image is None:
-            fail(f"cannot read the taught image {path.parent / data['image']}")
+            fail(f"cannot read the taught image {image_path}", "image")
         if (image.shape[1], image.shape[0]) != tuple(size):
             fail(f"taught image is {image.shape[1]}x{image.shape[0]}, image_size is {size}")
     reference = Reference(
-        name=str(data["name"]), target=str(data["target"]), kind=str(data["kind"]), keys=keys,
+        name=name, target=target_name, kind=kind, keys=keys,
         pixels=pixels, image_size=tuple(size), normalized=normalized, colours_lab=colours,
-        depths=depths, depth_source=data.get("depth_source"), camera=camera, image=image,
+        depths=depths, depth_source=depth_source, camera=camera, image=image,
         created=str(data.get("created", "")))
     if target is not None:
         try:

@@ -27,10 +27,11 @@ from pathlib import Path
 
 import cv2
 import numpy as np
-import yaml
 
 from vservo_node import paths
 from vservo_node.vision.image_io import srgb_to_lab
+from vservo_node.yaml_entries import EntryReader
+from vservo_node.yaml_files import YamlFileError, brief
 
 FORMAT = "vservo_target/1"
 KINDS = ("dots", "markers", "textured")
@@ -133,112 +134,186 @@ def aruco_dictionary(name: str):
 
 
 # ----------------------------------------------------------------------------- loading
-def _pair(value, what):
-    a = np.asarray(value, dtype=float).ravel()
-    if a.size != 2 or not np.isfinite(a).all():
-        raise ValueError(f"{what} must be two finite numbers [x, y] in metres, got {value!r}")
-    return (float(a[0]), float(a[1]))
+class TargetError(YamlFileError):
+    """A target file or mapping that cannot be used; the message names the file and the entry
+    (e.g. ``target file x.yaml: dots[2].colour: ...``) and what was expected."""
 
 
-def _positive(value, what):
-    if value is None:
-        return None
-    v = float(value)
-    if not v > 0:
-        raise ValueError(f"{what} must be > 0 metres, got {value!r}")
-    return v
+_TOP = {"format", "name", "kind", "board", "dots", "segmentation", "dictionary", "markers",
+        "texture", "points"}
+_BOARD = {"width", "height", "colour"}
+_DOT = {"id", "colour", "centre", "radius"}
+_MARKER = {"id", "centre", "size"}
+_SEGMENTATION = {"mode", "threshold"}
+_TEXTURE = {"generator", "seed", "count", "image"}
+# A board the camera servos on; the simulator draws it at 8000 px/m and the textured detector
+# at 2000 px/m, so a larger one would ask for images of gigabytes (common practice, no source).
+MAX_BOARD_M = 2.0
+MAX_SHAPES = 10000   # procedural poster shapes (the shipped poster has 160)
 
 
-def _colour(value, what):
-    c = np.asarray(value).ravel()
-    if c.size != 3 or np.any(c < 0) or np.any(c > 255):
-        raise ValueError(f"{what} must be sRGB [R, G, B] in 0..255, got {value!r}")
-    return tuple(int(round(float(x))) for x in c)
+class _Reader(EntryReader):
+    kind = "target file"
+    error = TargetError
+
+    def pair(self, value, entry):
+        return tuple(float(v) for v in self.vector(value, entry, 2))
+
+    def length(self, value, entry, limit=None):
+        """None, or a positive length in metres (at most ``limit``)."""
+        if value is None:
+            return None
+        v = self.number(value, entry, positive=True)
+        if limit is not None and v > limit:
+            self.fail(entry, f"expected at most {limit} m, got {v!r}")
+        return v
+
+    def colour(self, value, entry):
+        if not (isinstance(value, (list, tuple)) and len(value) == 3):
+            self.fail(entry, f"must be sRGB [R, G, B] in 0..255, got {brief(value)}")
+        c = self.vector(value, entry, 3)
+        if np.any(c < 0) or np.any(c > 255):
+            self.fail(entry, f"must be sRGB [R, G, B] in 0..255, got {brief(value)}")
+        return tuple(int(round(float(x))) for x in c)
+
+    def items(self, value, entry, allowed) -> list:
+        """A list (None reads as empty) of mappings with keys from ``allowed``."""
+        value = [] if value is None else value
+        if not isinstance(value, list):
+            self.fail(entry, f"expected a list, got {brief(value)}")
+        return [self.mapping(v, f"{entry}[{i}]", allowed) for i, v in enumerate(value)]
+
+    def unique_ids(self, items, entry, what):
+        ids = [i.id for i in items]
+        repeated = sorted({i for i in ids if ids.count(i) > 1})
+        if repeated:
+            self.fail(entry, f"{what} ids must be unique, repeated: {repeated}")
 
 
-def _unique_ids(items, what):
-    ids = [i.id for i in items]
-    repeated = sorted({i for i in ids if ids.count(i) > 1})
-    if repeated:
-        raise ValueError(f"{what} ids must be unique, repeated: {repeated}")
+def _dots(r: _Reader, data) -> dict:
+    dots = []
+    for i, d in enumerate(r.items(data.get("dots"), "dots", _DOT)):
+        entry = f"dots[{i}]"
+        dots.append(Dot(id=r.integer(d.get("id", i), f"{entry}.id", 0),
+                        colour=r.colour(d.get("colour"), f"{entry}.colour"),
+                        centre=(None if d.get("centre") is None
+                                else r.pair(d["centre"], f"{entry}.centre")),
+                        radius=r.length(d.get("radius"), f"{entry}.radius", MAX_BOARD_M)))
+    if len(dots) < 3:
+        r.fail("dots", f"a dot target needs at least 3 dots, got {len(dots)}")
+    r.unique_ids(dots, "dots", "dot")
+    if any((d.centre is None) != (d.radius is None) for d in dots):
+        r.fail("dots", "give each dot both 'centre' and 'radius', or neither")
+    seg = r.mapping(data.get("segmentation"), "segmentation", _SEGMENTATION)
+    mode = seg.get("mode", "chroma")
+    if not isinstance(mode, str) or mode not in SEGMENTATIONS:
+        r.fail("segmentation.mode", f"segmentation mode {brief(mode)} is not one of "
+                                    f"{SEGMENTATIONS}")
+    threshold = seg.get("threshold")
+    if threshold is not None:
+        threshold = r.number(threshold, "segmentation.threshold")
+        if not 0 < threshold < 255:
+            r.fail("segmentation.threshold", f"segmentation threshold must be in (0, 255), "
+                                             f"got {threshold!r}")
+    return dict(dots=tuple(dots), segmentation=mode, threshold=threshold)
+
+
+def _markers(r: _Reader, data) -> dict:
+    if "dictionary" not in data:
+        r.fail("dictionary", "missing (e.g. apriltag_36h11, 4x4_50)")
+    name = r.text(data["dictionary"], "dictionary")
+    try:
+        size = aruco_dictionary(name).bytesList.shape[0]   # validates the name
+    except ValueError as exc:
+        r.fail("dictionary", str(exc))
+    markers = []
+    for i, m in enumerate(r.items(data.get("markers"), "markers", _MARKER)):
+        entry = f"markers[{i}]"
+        if "id" not in m:
+            r.fail(entry, "missing key(s) ['id']")
+        ident = r.integer(m["id"], f"{entry}.id", 0)
+        if ident >= size:
+            r.fail(f"{entry}.id", f"marker id {ident} is not in {name} (ids 0..{size - 1})")
+        markers.append(Marker(id=ident,
+                              centre=(None if m.get("centre") is None
+                                      else r.pair(m["centre"], f"{entry}.centre")),
+                              size=r.length(m.get("size"), f"{entry}.size", MAX_BOARD_M)))
+    if not markers:
+        r.fail("markers", "a marker target needs at least one marker")
+    r.unique_ids(markers, "markers", "marker")
+    if any((m.centre is None) != (m.size is None) for m in markers):
+        r.fail("markers", "give each marker both 'centre' and 'size', or neither")
+    return dict(dictionary=name, markers=tuple(markers))
+
+
+def _textured(r: _Reader, data, common) -> dict:
+    texture = data.get("texture")
+    if not isinstance(texture, dict) or not ({"generator", "image"} & set(texture)):
+        r.fail("texture", "a textured target needs 'texture' with 'generator' (and 'seed') or "
+                          f"'image', got {brief(texture)}")
+    texture = dict(r.mapping(texture, "texture", _TEXTURE))
+    if "image" in texture:
+        r.text(texture["image"], "texture.image")
+    if texture.get("generator", "shapes") != "shapes":
+        r.fail("texture.generator", f"texture generator {brief(texture['generator'])} is not "
+                                    "'shapes'")
+    if "seed" in texture:
+        r.integer(texture["seed"], "texture.seed", 0)
+    if "count" in texture:
+        if r.integer(texture["count"], "texture.count", 1) > MAX_SHAPES:
+            r.fail("texture.count", f"expected at most {MAX_SHAPES} shapes, got "
+                                    f"{texture['count']}")
+    if common["width"] is None or common["height"] is None:
+        r.fail("board", "a textured target needs board width and height")
+    points = data.get("points")
+    if points is not None and not isinstance(points, list):
+        r.fail("points", f"expected a list of [x, y] points, got {brief(points)}")
+    pts = np.array([r.pair(p, f"points[{i}]") for i, p in enumerate(points or [])]).reshape(-1, 2)
+    if len(pts) < 4:
+        r.fail("points", f"a textured target needs at least 4 servo points, got {len(pts)}")
+    return dict(texture=texture, points=pts)
 
 
 def target_from_dict(data: dict, source: Path | None = None) -> Target:
-    """Build and validate a Target from the mapping of a target file."""
-    where = f"target file {source}" if source else "target"
+    """Build and validate a Target from the mapping of a target file; TargetError (a
+    ValueError) naming the file, the entry and what was expected."""
+    r = _Reader(source)
     if not isinstance(data, dict):
-        raise ValueError(f"{where} must be a mapping, got {type(data).__name__}")
+        r.fail("top level", f"must be a mapping, got {type(data).__name__}")
+    data = r.mapping(data, "top level", _TOP)
     if data.get("format", FORMAT) != FORMAT:
-        raise ValueError(f"{where}: format {data.get('format')!r} is not {FORMAT!r}")
+        r.fail("format", f"format {brief(data.get('format'))} is not {FORMAT!r}")
     for required in ("name", "kind"):
         if required not in data:
-            raise ValueError(f"{where} lacks '{required}'")
+            r.fail(required, f"the target lacks '{required}'")
     kind = data["kind"]
-    if kind not in KINDS:
-        raise ValueError(f"{where}: kind {kind!r} is not one of {KINDS}")
-    board = data.get("board", {}) or {}
-    common = dict(name=str(data["name"]), kind=kind,
-                  width=_positive(board.get("width"), "board width"),
-                  height=_positive(board.get("height"), "board height"),
-                  background=_colour(board.get("colour", (235, 235, 235)), "board colour"),
+    if not isinstance(kind, str) or kind not in KINDS:
+        r.fail("kind", f"kind {brief(kind)} is not one of {KINDS}")
+    board = r.mapping(data.get("board"), "board", _BOARD)
+    common = dict(name=r.text(data["name"], "name"), kind=kind,
+                  width=r.length(board.get("width"), "board.width", MAX_BOARD_M),
+                  height=r.length(board.get("height"), "board.height", MAX_BOARD_M),
+                  background=r.colour(board.get("colour", (235, 235, 235)), "board.colour"),
                   source=source)
+    extra = {"dots": ("dots", "segmentation"), "markers": ("dictionary", "markers"),
+             "textured": ("texture", "points")}
+    foreign = sorted(k for other, keys in extra.items() if other != kind for k in keys
+                     if k in data)
+    if foreign:
+        r.fail("top level", f"{foreign} do not belong to a {kind} target")
     if kind == "dots":
-        dots = tuple(Dot(id=int(d.get("id", i)), colour=_colour(d.get("colour"), f"dot {i} colour"),
-                         centre=None if d.get("centre") is None
-                         else _pair(d["centre"], f"dot {i} centre"),
-                         radius=_positive(d.get("radius"), f"dot {i} radius"))
-                     for i, d in enumerate(data.get("dots") or []))
-        if len(dots) < 3:
-            raise ValueError(f"{where}: a dot target needs at least 3 dots, got {len(dots)}")
-        _unique_ids(dots, "dot")
-        if any((d.centre is None) != (d.radius is None) for d in dots):
-            raise ValueError(f"{where}: give each dot both 'centre' and 'radius', or neither")
-        seg = data.get("segmentation", {}) or {}
-        mode = seg.get("mode", "chroma")
-        if mode not in SEGMENTATIONS:
-            raise ValueError(f"{where}: segmentation mode {mode!r} is not one of {SEGMENTATIONS}")
-        threshold = seg.get("threshold")
-        if threshold is not None and not 0 < float(threshold) < 255:
-            raise ValueError(f"{where}: segmentation threshold must be in (0, 255), got "
-                             f"{threshold!r}")
-        return Target(**common, dots=dots, segmentation=mode,
-                      threshold=None if threshold is None else float(threshold))
+        return Target(**common, **_dots(r, data))
     if kind == "markers":
-        if "dictionary" not in data:
-            raise ValueError(f"{where} lacks 'dictionary' (e.g. apriltag_36h11, 4x4_50)")
-        aruco_dictionary(data["dictionary"])  # validates the name
-        markers = tuple(Marker(id=int(m["id"]),
-                               centre=None if m.get("centre") is None
-                               else _pair(m["centre"], f"marker {m['id']} centre"),
-                               size=_positive(m.get("size"), f"marker {m['id']} size"))
-                        for m in data.get("markers") or [])
-        if not markers:
-            raise ValueError(f"{where}: a marker target needs at least one marker")
-        _unique_ids(markers, "marker")
-        if any((m.centre is None) != (m.size is None) for m in markers):
-            raise ValueError(f"{where}: give each marker both 'centre' and 'size', or neither")
-        return Target(**common, dictionary=str(data["dictionary"]), markers=markers)
-    # textured
-    texture = data.get("texture")
-    if not isinstance(texture, dict) or not ({"generator", "image"} & set(texture)):
-        raise ValueError(f"{where}: a textured target needs 'texture' with 'generator' "
-                         "(and 'seed') or 'image'")
-    if texture.get("generator", "shapes") != "shapes":
-        raise ValueError(f"{where}: texture generator {texture['generator']!r} is not 'shapes'")
-    if common["width"] is None or common["height"] is None:
-        raise ValueError(f"{where}: a textured target needs board width and height")
-    pts = np.array([_pair(p, f"point {i}") for i, p in enumerate(data.get("points") or [])])
-    if len(pts) < 4:
-        raise ValueError(f"{where}: a textured target needs at least 4 servo points, "
-                         f"got {len(pts)}")
-    return Target(**common, texture=dict(texture), points=pts)
+        return Target(**common, **_markers(r, data))
+    return Target(**common, **_textured(r, data, common))
 
 
 def load_target(name_or_path) -> Target:
-    """Load a target file by path, or a shipped one by short name (e.g. ``tray_dots``)."""
+    """Load a target file by path, or a shipped one by short name (e.g. ``tray_dots``);
+    TargetError naming the file and the entry when it cannot be used (``yaml_files``: size
+    cap, no anchors/aliases or tags), FileNotFoundError for an unknown short name."""
     path = paths.shipped("targets", str(name_or_path))
-    with open(path) as f:
-        return target_from_dict(yaml.safe_load(f), source=Path(path))
+    return target_from_dict(_Reader.read_yaml(path), source=Path(path))
 
 
 # ----------------------------------------------------------------------------- pictures
