@@ -515,7 +515,8 @@ def verdict_html(metrics: dict, run: RunData) -> str:
             lines.append(f"<b>Cause:</b> {html.escape(cause)}")
         g = halts.guidance(reason)
         if g is not None:
-            lines.append(f"<b>Likely:</b> {_md_code(g.cause)}")
+            if not metrics["detail"]:   # the node's own detail says more than the table
+                lines.append(f"<b>Likely:</b> {_md_code(g.cause)}")
             lines.append(f"<b>What to check:</b> {_md_code(g.check)}")
     else:
         big = "NO VERDICT: the record holds no end of the run"
@@ -525,7 +526,8 @@ def verdict_html(metrics: dict, run: RunData) -> str:
         lines.append(f"{metrics['n_halts']} halt(s) recorded before: see the supervisor states.")
     tiles = "".join(f"<div class='tile'><div class='label'>{html.escape(label)}</div>"
                     f"<div class='value'>{html.escape(text)}</div></div>"
-                    for label, text in headline(metrics)[1:])
+                    for label, text in headline(metrics)[1:]
+                    if label != "what fired")   # said as the cause above
     limits = metrics["limit_activations"]
     if limits:
         acted = ", ".join(f"{k} ({n})" for k, n in sorted(limits.items(), key=lambda x: -x[1]))
