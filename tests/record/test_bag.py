@@ -247,3 +247,64 @@ def test_a_failed_split_close_is_reported_by_the_next_write(tmp_path):
     time.sleep(0.3)
     with pytest.raises(RuntimeError, match="failed"):
         rec.write("x", "std_msgs/msg/String", msg, 2)
+
+
+def test_the_taught_reference_and_the_image_it_names_are_copied_into_the_bag(tmp_path):
+    station = tmp_path / "station"
+    station.mkdir()
+    view = np.full((6, 8, 3), 77, np.uint8)
+    cv2.imwrite(str(station / "s1.png"), view)
+    (station / "s1.yaml").write_text(yaml.safe_dump({
+        "format": "vservo_reference/1", "name": "s1", "image": "s1.png",
+        "joint_positions": {"j1": 0.25}, "features": []}))
+    with RunRecorder(tmp_path / "runs", "ref") as rec:
+        copy = rec.copy_reference(station / "s1.yaml")
+        assert rec.copy_reference(station / "missing.yaml") is None
+    assert copy == rec.bag_dir / "reference" / "s1.yaml"
+    assert copy.read_bytes() == (station / "s1.yaml").read_bytes()
+    np.testing.assert_array_equal(cv2.imread(str(rec.bag_dir / "reference" / "s1.png")), view)
+    run = load_run(rec.bag_dir)
+    assert run.reference["joint_positions"] == {"j1": 0.25}
+    assert run.reference_path == copy
+
+
+@pytest.mark.parametrize("fmt", [None, "jpeg"])
+def test_first_and_last_frames_are_decoded_in_rgb(tmp_path, fmt):
+    """Raw rgb8 frames come back exactly; JPEG ones within JPEG's error of the same frame
+    decoded by OpenCV; in both, red stays in channel 0."""
+    ts = default_typestore()
+    frames = []
+    for i in range(4):
+        rgb = np.zeros((24, 32, 3), np.uint8)
+        rgb[..., 0] = 200          # red
+        rgb[:, : 4 + 6 * i, 2] = 90
+        frames.append(rgb)
+    with RunRecorder(tmp_path, "frames", image_format=fmt) as rec:
+        for i, rgb in enumerate(frames):
+            rec.write("camera/image", IMAGE, ts.serialize_cdr(_image_msg(ts, rgb, i), IMAGE),
+                      10**9 * (i + 1))
+    run = load_run(rec.bag_dir)
+    assert [f.t for f in run.frames] == [0.0, 3.0]
+    for frame, sent in zip(run.frames, (frames[0], frames[-1])):
+        if fmt is None:
+            np.testing.assert_array_equal(frame.rgb, sent)
+        else:
+            assert np.abs(frame.rgb.astype(int) - sent).mean() < 4
+            assert frame.rgb[..., 0].mean() > 150 > frame.rgb[..., 1].mean()
+
+
+def test_one_split_file_is_read_as_its_own_span(recorded):
+    """A split file keeps the bag's clock and reports only the result it holds itself."""
+    whole = load_run(recorded)
+    info = yaml.safe_load((recorded / "metadata.yaml").read_text())["rosbag2_bagfile_information"]
+    names = info["relative_file_paths"]
+    assert len(names) >= 3
+    first, last = load_run(recorded / names[0]), load_run(recorded / names[-1])
+    assert first.piece.index == 0 and first.piece.count == len(names)
+    assert first.result is None                        # result.json is the whole run's
+    assert last.result is not None and last.result["converged"] is True   # run_result inside
+    middle = load_run(recorded / names[1])
+    np.testing.assert_allclose(middle.status_t, whole.status_t[np.isin(
+        whole.status_t, middle.status_t)])
+    assert middle.piece.t0_s <= middle.status_t[0] and middle.status_t[-1] <= middle.piece.t1_s
+    assert middle.status_t[0] > whole.status_t[0]      # later than the start, same clock

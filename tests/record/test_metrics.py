@@ -8,6 +8,7 @@ from __future__ import annotations
 import json
 import math
 import struct
+from pathlib import Path
 
 import numpy as np
 import pinocchio as pin
@@ -18,8 +19,9 @@ from mcap.reader import make_reader
 import synthetic as syn
 from vservo_node import cli
 from vservo_node.record.bag import load_run
-from vservo_node.record.metrics import (arm_of_run, compute_metrics, ideal_decay, motion_of_run,
-                                        overshoot_px, time_to_tolerance)
+from vservo_node.record.metrics import (DEFINITIONS, arm_of_run, command_of_run,
+                                        compute_metrics, episode_figures, headline, ideal_decay,
+                                        motion_of_run, overshoot_px, rebound, time_to_tolerance)
 
 
 @pytest.fixture(scope="module")
@@ -175,7 +177,12 @@ def test_metrics_json_agrees_with_a_recomputation_from_the_raw_bag(report_dir, r
 
 def test_halted_run(halted, halted_spec):
     m = compute_metrics(load_run(halted))
-    assert m["converged"] is False and m["result_reason"] == "image_stale"
+    assert m["converged"] is False and m["reason"] == "image_stale"
+    assert m["verdict"] == "halted"
+    # a halted run has no time to converge and no overshoot (there was no arrival)
+    assert m["time_to_converge_s"] is None and m["overshoot_pct"] is None
+    # braking (halt_at after the start) lasts 0.2 s, then halted; records every 1/30 s
+    assert m["time_to_halt_s"] == pytest.approx(halted_spec.halt_at + 0.2, abs=1 / 30 + 1e-9)
     assert m["n_halts"] == 1
     halt = m["halts"][0]
     assert halt["state"] == "braking" and halt["reason"] == "image_stale"
@@ -186,3 +193,114 @@ def test_halted_run(halted, halted_spec):
     expected = halted_spec.rms0 * math.exp(-halted_spec.gain * (
         math.floor(last_t * 30 + 1e-9) / 30 - halted_spec.t_start))
     assert m["final_rms_px"] == pytest.approx(expected, rel=1e-9)
+
+
+def test_time_to_converge_is_the_converged_record_minus_the_run_start(recorded, spec):
+    """Converged at the first record after the error has stayed below tolerance for the dwell:
+    ln(e0/tol)/lambda + dwell after the start, each on the 1/30 s record grid (so within two
+    record periods), on the record's clock; the node's own time is kept beside it."""
+    m = compute_metrics(load_run(recorded))
+    assert m["verdict"] == "converged" and m["time_to_halt_s"] is None
+    assert m["time_to_converge_s"] == pytest.approx(spec.time_to_tolerance + spec.dwell_s,
+                                                    abs=2 / spec.status_hz + 1e-9)
+    assert m["node_run_time_s"] == json.loads((recorded / "result.json").read_text())["time_s"]
+    assert m["overshoot_pct"] == pytest.approx(0.0, abs=1e-9)   # exp decay: monotone
+    rows = dict(headline(m))
+    assert rows["verdict"] == f"converged in {m['time_to_converge_s']:.2f} s"
+
+
+def test_rebound_is_the_classic_overshoot_of_a_scalar_response():
+    """|e| of e0 (1 - y), y an underdamped second-order step response, dips to 0 and rises to
+    e0 Mp, Mp = exp(-zeta pi / sqrt(1 - zeta^2)) (Ogata, Modern Control Engineering, 5th ed.,
+    2010, sec. 5-3); an exponential decay does not rise at all."""
+    zeta, wn = 0.3, 4.0
+    wd = wn * math.sqrt(1 - zeta ** 2)
+    t = np.linspace(0, 5, 20001)
+    y = 1 - np.exp(-zeta * wn * t) * (np.cos(wd * t) + zeta / math.sqrt(1 - zeta ** 2)
+                                      * np.sin(wd * t))
+    mp = math.exp(-zeta * math.pi / math.sqrt(1 - zeta ** 2))
+    # on the 0.25 ms grid |e| dips to ~3e-4, not to 0: hence 1e-3, not 1e-6
+    assert rebound(np.abs(12.0 * (1 - y))) == pytest.approx(12.0 * mp, rel=1e-3)
+    assert rebound(5.0 * np.exp(-t)) == 0.0
+
+
+def test_command_acceleration_is_the_change_over_the_longer_of_period_and_gap():
+    """dq steps of 0.024 rad/s every 8 ms are 3 rad/s^2; one command lost on the way (16 ms
+    gap, 0.048 step) still reads 3 rad/s^2, not 6."""
+    from vservo_node.record.bag import RunData, Series
+    from vservo_node.record.bag import _status_table
+    t = np.array([0.0, 0.008, 0.016, 0.032, 0.040])
+    dq = np.array([[0.0], [0.024], [0.048], [0.096], [0.120]])
+    run = RunData(path=Path("x"), start_ns=0, topics={}, status_t=np.zeros(0),
+                  status=_status_table([]), joint_names=["j"], joint_t=np.zeros(0),
+                  joint_position=np.zeros((0, 1)), joint_velocity=np.zeros((0, 1)),
+                  joint_cmd=Series(t, dq), params={"io.output_rate_hz": 125.0})
+    command = command_of_run(run, ["j"])
+    assert command.period == pytest.approx(0.008)
+    np.testing.assert_allclose(command.accel[:, 0], [3.0, 3.0, 3.0, 3.0])
+
+
+def test_final_pose_error_from_the_truth_topics_against_scipy(halted):
+    """Without a result's pose error, the last camera truth against the taught pose: distance
+    by numpy, angle by SciPy's Rotation.magnitude of the relative rotation."""
+    from scipy.spatial.transform import Rotation
+    run = load_run(halted)
+    run.result = {k: v for k, v in run.result.items() if not k.startswith("final_pose")}
+    m = compute_metrics(run)
+    goal, last = run.taught_pose.values[-1], run.camera_truth.values[-1]
+    angle = (Rotation.from_quat(goal[3:]).inv() * Rotation.from_quat(last[3:])).magnitude()
+    assert m["final_pose_error_mm"] == pytest.approx(1e3 * np.linalg.norm(last[:3] - goal[:3]))
+    assert m["final_pose_error_deg"] == pytest.approx(math.degrees(angle))
+    assert m["final_pose_error_mm"] > 1.0      # the halted run stopped away from its goal
+
+
+def test_episode_figures_follow_the_record_definitions():
+    """A headless episode's figures under the record's names: peak joint speed over the limit
+    in use (EpisodeResult's is over the URDF limit), Cartesian peaks over their limits, and the
+    time filed by verdict."""
+    from types import SimpleNamespace
+    values = {"limits.joint_velocity_scale": 0.5, "limits.tool_linear_speed": 0.1,
+              "limits.camera_linear_speed": 0.08, "limits.angular_speed": 0.6}
+    episode = SimpleNamespace(converged=True, reason="", time_s=6.2, initial_rms_px=80.0,
+                              final_rms_px=0.1, pose_error_mm=0.2, pose_error_deg=0.05,
+                              peak_joint_speed_ratio=0.3, peak_tool_speed=0.05,
+                              peak_camera_speed=0.04, peak_angular_speed=0.3,
+                              min_limit_margin=0.4, camera_depth_change_max=0.01)
+    f = episode_figures(episode, values)
+    assert f["peak_joint_speed_ratio"] == pytest.approx(0.6)
+    assert f["peak_tool_speed_ratio"] == pytest.approx(0.5)
+    assert f["peak_camera_speed_ratio"] == pytest.approx(0.5)
+    assert f["peak_angular_speed_ratio"] == pytest.approx(0.5)
+    assert f["time_to_converge_s"] == 6.2 and f["time_to_halt_s"] is None
+    halted = episode_figures(SimpleNamespace(**{**vars(episode), "converged": False,
+                                                "reason": "run_timeout"}), values)
+    assert halted["time_to_converge_s"] is None and halted["time_to_halt_s"] == 6.2
+    assert halted["reason"] == "run_timeout"
+    assert all(k in DEFINITIONS for k in ("time_to_converge_s", "peak_joint_speed_ratio"))
+
+
+def test_the_nodes_detail_and_pose_estimate_are_shown_when_present(halted):
+    """Fields a newer node adds: ``detail`` (the check that fired) and the estimated pose error
+    in the result, ``pose_error_mm``/``_deg`` in status records (the last one counts when the
+    result has none). Older records simply lack them."""
+    from vservo_node.record.bag import _status_table
+    run = load_run(halted)
+    assert compute_metrics(run)["estimated_pose_error_mm"] is None
+    run.result = {**run.result, "detail": "image check: 4 frames against the prediction",
+                  "estimated_pose_error_mm": 0.8, "estimated_pose_error_deg": 0.2,
+                  "estimated_pose_error_spread_mm": 0.1}
+    m = compute_metrics(run)
+    assert m["detail"].startswith("image check") and m["estimated_pose_error_spread_mm"] == 0.1
+    rows = dict(headline(m))
+    assert rows["what fired"] == m["detail"]
+    assert rows["pose error (node's estimate)"] == "0.800 mm, 0.200 deg"
+    records = [{"t": 0.0, "state": "servoing", "pose_error_mm": 3.0, "pose_error_deg": 1.0,
+                "detail": ""},
+               {"t": 0.1, "state": "servoing", "pose_error_mm": 2.5, "pose_error_deg": None,
+                "detail": "x"}]
+    table = _status_table(records)
+    assert table["pose_error_mm"].dtype == float and table["detail"].dtype == object
+    run.status, run.status_t = table, np.array([0.0, 0.1])
+    run.result = {"converged": False, "reason": "diverging"}
+    m = compute_metrics(run)
+    assert m["estimated_pose_error_mm"] == 2.5 and m["estimated_pose_error_deg"] == 1.0

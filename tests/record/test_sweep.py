@@ -10,12 +10,17 @@ import dataclasses
 import io
 import json
 import sys
+
+import yaml
 from types import SimpleNamespace
 
 import pytest
 
-from vservo_node.record.sweep import (DASK_PINS, Progress, SweepError, judge, load_sweep, plan,
-                                      run_sweep, sweep_from_dict, write_results, write_table)
+from vservo_node import cli
+from vservo_node.record.sweep import (DASK_PINS, MIN_PER_CELL, Progress, SweepError,
+                                      best_params, judge, load_sweep, plan, run_sweep,
+                                      success_map, sweep_from_dict, user_params, wilson_interval,
+                                      write_results, write_table)
 
 
 def _sweep(**entries):
@@ -124,6 +129,8 @@ def test_the_quick_sweep_gives_the_same_table_in_one_process_and_in_two(tmp_path
     # (Chaumette & Hutchinson 2006, Part I: local asymptotic stability; Hutchinson, Hager &
     # Corke 1996: robust to calibration error): every episode succeeds
     assert one.summary["success_rate"] == 1.0, one.summary["failure_reasons"]
+    # stratified draws: every cell of the 2 x 2 map holds an episode
+    assert one.summary["success_map"]["n"] == [[1, 1], [1, 1]]
 
 
 def test_projected_noise_without_projected_sensing_is_refused():
@@ -146,7 +153,8 @@ def test_a_projected_sweep_repeats_itself_and_agrees_with_the_image_sweep(tmp_pa
     assert first.summary["success_rate"] == 1.0, first.summary["failure_reasons"]
     image = run_sweep(quick, workers=2, progress=False)
     for p, i in zip(first.rows, image.rows):
-        assert p["time_s"] == pytest.approx(i["time_s"], rel=0.05), (p, i)
+        assert p["time_to_converge_s"] == pytest.approx(i["time_to_converge_s"], rel=0.05), \
+            (p, i)
 
 
 def test_success_falls_off_as_the_start_rotation_grows(tmp_path):
@@ -166,7 +174,7 @@ def test_success_falls_off_as_the_start_rotation_grows(tmp_path):
     for angle in (150.0, 170.0):
         row = by_angle[angle]
         assert row["status"] == "ok" and not row["success"], row
-        assert row["camera_depth_change_max"] > 0.10, row
+        assert row["camera_depth_change_max_m"] > 0.10, row
     assert run.summary["success_map"]["rate"] == [1.0, 1.0, 0.0, 0.0]
 
     written = write_results(run, tmp_path / "out")
@@ -193,3 +201,91 @@ def test_the_same_sweep_runs_on_a_dask_cluster():
         remote = run_sweep(two, scheduler=cluster.scheduler_address, progress=False)
     assert remote.rows == local.rows
     assert remote.workers.startswith("dask tcp://127.0.0.1:")
+
+
+# ----------------------------------------------------------------------------- map, best, params
+def test_random_draws_fill_every_map_cell():
+    spec = _sweep(mode="random", episodes=8, seed=3, map_bins=2, axes={
+        "start.rotation_deg": {"range": [-20.0, 20.0]}, "start.lateral_m": {"range": [0.0, 0.04]},
+        "calib.depth": {"range": [-0.1, 0.1]}}, map=["start.rotation_deg", "start.lateral_m"])
+    rows = [{**p.values, "status": "ok", "success": True} for p in plan(spec)]
+    assert success_map(spec, rows)["n"] == [[2, 2], [2, 2]]
+    assert all(-0.1 <= r["calib.depth"] <= 0.1 for r in rows)
+
+
+def test_map_bins_default_to_full_cells_and_impossible_ones_are_refused():
+    axes = {"start.rotation_deg": {"range": [-20.0, 20.0]},
+            "start.lateral_m": {"range": [0.0, 0.04]}}
+    spec = _sweep(mode="random", episodes=40, axes=axes)
+    assert spec.map_bins == 3 and spec.map_bins ** 2 * MIN_PER_CELL <= 40 < 4 ** 2 * MIN_PER_CELL
+    with pytest.raises(SweepError, match="more than the 4 episodes can fill"):
+        _sweep(mode="random", episodes=4, map_bins=3, axes=axes)
+
+
+def test_wilson_interval_against_scipy():
+    from scipy.stats import binomtest
+    for k, n in ((2, 2), (19, 20), (0, 7), (5, 9)):
+        ci = binomtest(k, n).proportion_ci(confidence_level=0.95, method="wilson")
+        assert wilson_interval(k, n) == pytest.approx((ci.low, ci.high), abs=1e-9)
+
+
+def test_best_parameters_need_enough_episodes_and_robust_neighbours():
+    """gain 2.0 is fastest but ran twice; 1.6 beats 1.2 on time but its neighbour 2.0 is far
+    less sure (Wilson lower end 0.34 against 0.61, margin 0.2); 1.2's neighbours hold."""
+    spec = _sweep(best={"min_episodes": 5, "margin": 0.2},
+                  axes={"control.gain_near": {"values": [0.8, 1.2, 1.6, 2.0]}})
+    plan_ = {0.8: (5, 6, 7.0), 1.2: (6, 6, 6.0), 1.6: (6, 6, 5.0), 2.0: (2, 2, 4.0)}
+    rows = [{"status": "ok", "control.gain_near": g, "success": i < wins,
+             "time_to_converge_s": t if i < wins else None}
+            for g, (wins, n, t) in plan_.items() for i in range(n)]
+    chosen = best_params(spec, rows)
+    assert chosen["best"]["values"] == {"control.gain_near": 1.2}
+    groups = {g["values"]["control.gain_near"]: g for g in chosen["groups"]}
+    assert not groups[2.0]["enough_episodes"]
+    assert groups[1.6]["weak_neighbours"] == ["control.gain_near=2.0 (2/2)"]
+    assert chosen["rule"]["min_episodes"] == 5 and chosen["rule"]["margin"] == 0.2
+    strict = _sweep(best={"min_episodes": 7},
+                    axes={"control.gain_near": {"values": [0.8, 1.2, 1.6, 2.0]}})
+    none = best_params(strict, rows)
+    assert none["best"] is None and "no group has 7 episodes" in none["reason"]
+
+
+def test_a_users_parameter_file_is_the_episodes_base(tmp_path):
+    path = tmp_path / "cell.yaml"
+    path.write_text(yaml.safe_dump({"vservo": {"ros__parameters": {
+        "use_sim_time": False, "robot": {"urdf_path": "/my/arm.urdf", "tool_point": [0, 0, 0.1]},
+        "control": {"gain_near": 0.9}, "limits": {"joint_acceleration": [2.0]}}}}))
+    base, notes = user_params(path)
+    assert base == {"robot.tool_point": [0.0, 0.0, 0.1], "control.gain_near": 0.9,
+                    "limits.joint_acceleration": [2.0]}
+    assert any("robot.urdf_path" in n for n in notes) and any("use_sim_time" in n for n in notes)
+    path.write_text(yaml.safe_dump({"vservo": {"ros__parameters": {"control.gain_nera": 1.0}}}))
+    with pytest.raises(SweepError, match="did you mean control.gain_near"):
+        user_params(path)
+
+
+def test_a_slow_run_ends_on_the_nodes_run_timeout_and_is_kept_as_a_record(tmp_path, capsys):
+    """control.max_run_s from the user's file (0.6 s) is too short for tray_offset: the episode
+    ends on the node's own run_timeout (not the episode's), and the failed episode is a run
+    record that `vservo report` reads as halted on that reason."""
+    from vservo_node.record.report import write_report
+    params = tmp_path / "cell.yaml"
+    params.write_text(yaml.safe_dump({"vservo": {"ros__parameters": {
+        "control": {"max_run_s": 0.6}, "limits": {"joint_acceleration": [3.0]}}}}))
+    sweep = tmp_path / "short.yaml"
+    sweep.write_text(yaml.safe_dump({
+        "format": "vservo_sweep/1", "name": "short", "scenario": "tray_offset",
+        "sensing": "projected", "fixed": {"control.tolerance_px": 0.25},
+        "axes": {"start.rotation_deg": {"values": [10.0]}}}))
+    out = tmp_path / "out"
+    assert cli.main(["sweep", str(sweep), "--params", str(params), "--workers", "1",
+                     "--out", str(out), "--quiet"]) == 0
+    assert "1 x run_timeout" in capsys.readouterr().out
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["failure_reasons"] == {"run_timeout": 1}
+    assert summary["params_file"] == str(params)
+    (record,) = (out / "records").iterdir()
+    page, m = write_report(record)
+    assert m["verdict"] == "halted" and m["reason"] == "run_timeout"
+    assert m["time_to_halt_s"] == pytest.approx(0.6, abs=0.3)   # + braking
+    assert "HALTED: run_timeout" in page.read_text()

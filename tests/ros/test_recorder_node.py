@@ -85,12 +85,14 @@ STUB = textwrap.dedent("""
     from vservo_node.vision.camera import CameraModel
 
     urdf, cycles, recorders = open(sys.argv[1]).read(), int(sys.argv[2]), int(sys.argv[3])
+    reference_file = sys.argv[4]
     joints = ["p_j1", "p_j2", "p_j3"]
     rclpy.init()
     node = rclpy.create_node("vservo")
     for name, value in [("control.tolerance_px", 2.0), ("limits.joint_velocity_scale", 0.5),
                         ("robot.base_frame", "base_link"), ("robot.tool_frame", "ee"),
-                        ("robot.min_joints", 3), ("robot.hand_eye", [0.0] * 6 + [1.0])]:
+                        ("robot.min_joints", 3), ("robot.hand_eye", [0.0] * 6 + [1.0]),
+                        ("reference.file", reference_file)]:
         node.declare_parameter(name, value)
     # declared with a type and no value, as the controller declares its empty-list defaults:
     # rclpy's GetParameters then answers nothing for a request that names it
@@ -213,6 +215,10 @@ def session(ros_node, tmp_path_factory):
     ``continuous`` (record_continuously) and ``killed`` (no report); the last two with their
     node name and last_bag topic remapped. Run r1 ends normally; during r2 the recorders get
     SIGINT, SIGTERM and SIGKILL, the last once its r2 bag has a completed split."""
+    station = tmp_path_factory.mktemp("station")
+    (station / "s1.png").write_bytes(b"\x89PNG\r\n\x1a\n not really an image")
+    (station / "s1.yaml").write_text(yaml.safe_dump({"format": "vservo_reference/1",
+                                                    "name": "s1", "image": "s1.png"}))
     per_run = Recorder(tmp_path_factory.mktemp("runs"))
     continuous = Recorder(tmp_path_factory.mktemp("session"))
     killed = Recorder(tmp_path_factory.mktemp("killed"))
@@ -236,7 +242,8 @@ def session(ros_node, tmp_path_factory):
         for topic, _ in last_bag_topics:
             harness.wait_for_publisher(ros_node, topic, 30.0, procs)
         procs.append(harness.NodeProcess([sys.executable, "-c", STUB, str(URDF), str(CYCLES),
-                                          str(len(last_bag_topics))], "stub"))
+                                          str(len(last_bag_topics)), str(station / "s1.yaml")],
+                                         "stub"))
         harness.spin_until(ros_node, lambda: len(per_run.announced) == 1
                            and len(killed.announced) == 1, 60.0, "the bags of run r1", procs)
         harness.spin_until(ros_node, lambda: "r2" in runs_seen, 20.0, "run r2", procs)
@@ -352,6 +359,10 @@ def test_run_bag_has_result_controller_params_and_report(session):
     # The report used the recorded URDF (joint speed limit 2.0 rad/s, planar3.urdf) and the
     # recorded parameters (scale 0.5): peak ratio 0.5 / (2.0 * 0.5) = 0.5.
     assert metrics["peak_joint_speed_ratio"] == pytest.approx(0.5)
+    # the controller's reference.file and the image it names, copied into the bag
+    station = Path(params["reference.file"]).parent
+    for name in ("s1.yaml", "s1.png"):
+        assert (bag / "reference" / name).read_bytes() == (station / name).read_bytes()
 
 
 def test_interrupted_run_bag_is_closed_cleanly(session):
@@ -378,7 +389,9 @@ def test_continuous_session_is_one_bag_of_everything(session):
     assert len(got["/joint_states"][1]) > 3 + CYCLES + 3         # before, in, after r1, r2
     assert [json.loads(m.data)["run_id"] for _, m in got["/servo/run_result"][1]] == \
         ["r0", "r1"]                                          # latched r0 arrives too
-    assert len(got["/camera/image"][1]) >= CYCLES - 1       # raw, not decimated
+    # JPEG by default (image_format), not decimated
+    images = got["/camera/image/compressed"][1]
+    assert len(images) >= CYCLES - 1 and images[0][1].format.startswith("mono8; jpeg")
     assert json.loads((bag / "result.json").read_text())["run_id"] == "r1"
     assert "control.tolerance_px" in load_params_file(bag / "params.yaml", "vservo")
     assert not (bag / "report").exists() and not (bag / OPEN_DIR).exists()

@@ -1,11 +1,17 @@
-"""`vservo compare BAG... [--out DIR]`: several runs' error curves and metrics side by side."""
+"""`vservo compare BAG... [--out DIR]`: several runs as a repeatability study."""
 from __future__ import annotations
+
+import sys
 
 
 def register(subparsers) -> None:
     parser = subparsers.add_parser(
-        "compare", help="overlay the error curves of several runs and tabulate their metrics",
-        description="Prints a table of metrics and writes compare.csv and compare.html.")
+        "compare", help="repeatability of several runs: spread of final pose, joints, times",
+        description="Prints the repeatability table (n, mean, SD, min, max, range of the final "
+                    "pose error, final image error, time to converge, peak joint speed and "
+                    "final joints over the runs that converged) and one row per run, and "
+                    "writes compare.html, repeatability.csv, runs.csv and series.csv (the time "
+                    "series of every run).")
     parser.add_argument("bags", nargs="+", help="bag folders (or single .mcap / .db3 files)")
     parser.add_argument("--out", default="compare", help="output folder (default: ./compare)")
     parser.add_argument("--tol", type=float, help="tolerance in px for every run (default: "
@@ -25,5 +31,7 @@ def _run(args) -> int:
         print(f"vservo compare: {exc}", file=sys.stderr)
         return 1
     print(table)
-    print(f"written: {Path(args.out) / 'compare.csv'}, {Path(args.out) / 'compare.html'}")
+    out = Path(args.out)
+    print(f"written: {out / 'compare.html'}, {out / 'repeatability.csv'}, {out / 'runs.csv'}, "
+          f"{out / 'series.csv'}")
     return 0

@@ -8,7 +8,8 @@ The bag is a folder ``<root>/<UTC time>_<scenario>/`` holding
   rosbags writer;
 - ``metadata.yaml``: rosbag2 metadata (format version 9, as rosbags writes it), written when the
   bag opens and rewritten after every completed split, so it always lists only complete files;
-- ``params.yaml``: the parameters of the run, ``result.json``: the run result once known.
+- ``params.yaml``: the parameters of the run, ``result.json``: the run result once known;
+- ``reference/``: a copy of the taught reference file and the files it names (`copy_reference`).
 
 Crash safety: the split being written lives in a hidden folder ``.open/`` and is moved into the
 bag only once closed. A SIGKILL therefore loses at most the open split: a split is closed when it
@@ -52,6 +53,7 @@ OPEN_DIR = ".open"
 PARAMS_FILE = "params.yaml"
 RESULT_FILE = "result.json"
 METADATA_FILE = "metadata.yaml"
+REFERENCE_DIR = "reference"   # the taught reference of the run, copied in (see copy_reference)
 # params.yaml holds robot_description (the URDF text, up to ~1 MB for large robots) besides the
 # controller parameters: the cap of a URDF (control/kinematics.py), not of our small files.
 PARAMS_MAX_BYTES = 16 << 20
@@ -121,6 +123,8 @@ class RunRecorder:
         image_format: None records sensor_msgs/Image as is; 'png' or 'jpeg' records it as
             sensor_msgs/CompressedImage on ``<topic>/compressed`` (image_transport's naming).
         jpeg_quality: 0..100 for 'jpeg'.
+        folder_name: the bag folder's name instead of ``<UTC time>_<scenario>`` (a suffix
+            ``-1``, ``-2``... is added if it exists).
 
     Thread-safe: `write` may be called from any thread. Use as a context manager or call
     `close`. Topic names are made absolute ('servo/status' -> '/servo/status').
@@ -130,7 +134,8 @@ class RunRecorder:
                  started: datetime | None = None, typestore=None,
                  split_s: float = DEFAULT_SPLIT_S, split_bytes: int = DEFAULT_SPLIT_BYTES,
                  poll_s: float = DEFAULT_POLL_S, image_every: int = 1,
-                 image_format: str | None = None, jpeg_quality: int = 90):
+                 image_format: str | None = None, jpeg_quality: int = 90,
+                 folder_name: str | None = None):
         if split_s <= 0 or poll_s <= 0 or split_bytes <= 0:
             raise ValueError(f"split_s, poll_s, split_bytes must be > 0, got "
                              f"{split_s}, {poll_s}, {split_bytes}")
@@ -143,7 +148,7 @@ class RunRecorder:
         self.image_every, self.image_format = image_every, image_format
         self.jpeg_quality = jpeg_quality
         self.bag_dir = self._make_folder(Path(root), scenario,
-                                         started or datetime.now(timezone.utc))
+                                         started or datetime.now(timezone.utc), folder_name)
         self.scenario = scenario
         self._topics: dict[str, tuple[str, str]] = {}   # topic -> (msgtype, rihs01)
         self._counts: dict[str, int] = {}               # topic -> messages in completed splits
@@ -162,9 +167,10 @@ class RunRecorder:
         self._thread.start()
 
     @staticmethod
-    def _make_folder(root: Path, scenario: str, started: datetime) -> Path:
+    def _make_folder(root: Path, scenario: str, started: datetime,
+                     name: str | None = None) -> Path:
         root.mkdir(parents=True, exist_ok=True)
-        base = run_folder_name(scenario, started)
+        base = name or run_folder_name(scenario, started)
         for i in range(1000):
             path = root / (base if i == 0 else f"{base}-{i}")
             try:
@@ -233,6 +239,28 @@ class RunRecorder:
             if self._split is not None:
                 self._close_split()
         (self.bag_dir / OPEN_DIR).rmdir()
+
+    def copy_reference(self, path: str | Path) -> Path | None:
+        """Copy the taught reference file ``path`` (YAML) into ``reference/`` of the bag, with
+        the files it names beside it (its ``image``: the taught view), so the record keeps the
+        goal it was servoed to after the station is taught again. Returns the copy; None when
+        ``path`` is not a readable file (the bag still records the path in params.yaml)."""
+        source = Path(path)
+        if not source.is_file():
+            return None
+        folder = self.bag_dir / REFERENCE_DIR
+        folder.mkdir(exist_ok=True)
+        copy = Path(shutil.copy2(source, folder / source.name))
+        try:
+            data = load_yaml(source, prefix="reference ")
+        except YamlFileError:   # not plain YAML: the copy is all we can keep
+            return copy
+        for name in _named_files(data):
+            beside = source.parent / name
+            if beside.is_file() and not (folder / name).exists():
+                (folder / name).parent.mkdir(parents=True, exist_ok=True)
+                shutil.copy2(beside, folder / name)
+        return copy
 
     def __enter__(self) -> RunRecorder:
         return self
@@ -347,6 +375,15 @@ class RunRecorder:
         return bytes(ts.serialize_cdr(msg, COMPRESSED_IMAGE))
 
 
+def _named_files(data) -> list[str]:
+    """Relative file names a reference file names at its top level (``image: view.png``)."""
+    if not isinstance(data, dict):
+        return []
+    return [v for v in data.values() if isinstance(v, str) and not Path(v).is_absolute()
+            and Path(v).suffix.lower() in (".png", ".jpg", ".jpeg", ".yaml", ".npz")
+            and ".." not in Path(v).parts]
+
+
 _ENCODINGS = {  # sensor_msgs/image_encodings: name -> (dtype, channels)
     "mono8": (np.uint8, 1), "8UC1": (np.uint8, 1), "mono16": (np.uint16, 1),
     "16UC1": (np.uint16, 1), "rgb8": (np.uint8, 3), "bgr8": (np.uint8, 3), "8UC3": (np.uint8, 3),
@@ -371,6 +408,27 @@ def image_to_array(img) -> np.ndarray | None:
     return pixels.reshape(shape)
 
 
+def image_to_rgb(msgtype: str, msg) -> np.ndarray | None:
+    """An Image or CompressedImage (rosbags objects) as (H, W, 3) uint8 RGB for display; 16-bit
+    and float images are stretched to 0..255. None when it cannot be decoded."""
+    import cv2  # only needed to show images
+
+    if msgtype == COMPRESSED_IMAGE:
+        array = cv2.imdecode(np.asarray(msg.data, np.uint8), cv2.IMREAD_UNCHANGED)
+        rgb_order = False      # OpenCV decodes colour as BGR
+    else:
+        array = image_to_array(msg)
+        rgb_order = msg.encoding.startswith("rgb")
+    if array is None:
+        return None
+    if array.dtype != np.uint8:
+        array = cv2.normalize(array, None, 0, 255, cv2.NORM_MINMAX, dtype=cv2.CV_8U)
+    if array.ndim == 2:
+        return np.repeat(array[..., None], 3, axis=2)
+    array = array[..., :3]
+    return np.ascontiguousarray(array if rgb_order else array[..., ::-1])
+
+
 # --- reading -----------------------------------------------------------------------------------
 @dataclass
 class Series:
@@ -381,11 +439,31 @@ class Series:
 
 
 @dataclass
+class Frame:
+    """One camera image of the record: ``t`` s on the record's clock, ``rgb`` (H, W, 3) uint8."""
+    t: float
+    rgb: np.ndarray
+
+
+@dataclass
+class Piece:
+    """Where a single split file lies in its bag: ``file`` name, ``index`` of ``count`` files,
+    and its span ``t0_s``..``t1_s`` on the bag's clock (s since the bag's first message)."""
+    file: str
+    index: int
+    count: int
+    t0_s: float
+    t1_s: float
+
+
+@dataclass
 class RunData:
     """One run read back from a bag. Series are None when their topic is absent.
 
     status: one array per interface.STATUS_FIELDS name over ``status_t``: floats for numbers
-        (NaN where missing), object arrays for strings, lists and dicts, and ``dq`` (T, n).
+        (NaN where missing), object arrays for strings, lists and dicts, and ``dq`` (T, n);
+        fields a newer node adds (e.g. ``detail``, ``pose_error_mm``) are kept the same way
+        (floats when every value is a number or missing, else objects).
     joint_*: joint states reordered by name to ``joint_names`` (first message's order);
         positions rad or m, velocities rad/s or m/s, NaN where a message lacks a value.
     camera_twist, twist_cmd: [v; w] in m/s and rad/s. features, feature_error: pixels
@@ -415,6 +493,10 @@ class RunData:
     params: dict = field(default_factory=dict)
     result: dict | None = None
     skipped: int = 0   # status records that were not valid JSON objects
+    frames: list = field(default_factory=list)   # [Frame]: the first and the last image
+    reference: dict | None = None       # the copied reference file (reference/*.yaml), parsed
+    reference_path: Path | None = None
+    piece: Piece | None = None          # set when one split file of a bag was read
 
 
 def _flat(values: list) -> np.ndarray:
@@ -459,7 +541,7 @@ _OTHER = {  # role -> (interface topic, type)
     "image": (itf.TOPIC_IMAGE, IMAGE),
     "image_compressed": (itf.TOPIC_IMAGE_COMPRESSED, COMPRESSED_IMAGE),
 }
-_STATUS_TEXT = ("run_id", "state", "reason", "limits_acted", "limit_counts")
+_STATUS_TEXT = ("run_id", "state", "reason", "limits_acted", "limit_counts", "detail")
 
 
 def match_topic(names: dict[str, str], relative: str, msgtype: str) -> str | None:
@@ -479,37 +561,81 @@ def match_topic(names: dict[str, str], relative: str, msgtype: str) -> str | Non
 
 def _status_table(records: list[dict]) -> dict[str, np.ndarray]:
     table = {}
-    for name in itf.STATUS_FIELDS:
+    extra = [k for k in dict.fromkeys(k for r in records for k in r) if k not in itf.STATUS_FIELDS]
+    for name in (*itf.STATUS_FIELDS, *extra):
+        values = [r.get(name) for r in records]
+        numbers = [v for v in values if v is not None]
+        numeric = name not in _STATUS_TEXT and bool(numbers) and all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) for v in numbers)
+        numeric = numeric or (name in itf.STATUS_FIELDS and name not in _STATUS_TEXT)
         if name == "dq":
-            table[name] = _flat([r.get("dq") or [] for r in records])
-        elif name in _STATUS_TEXT:
-            column = np.empty(len(records), dtype=object)
-            for i, r in enumerate(records):
-                column[i] = r.get(name)
-            table[name] = column
+            table[name] = _flat([v or [] for v in values])
+        elif numeric:
+            table[name] = np.array([np.nan if v is None else v for v in values], dtype=float)
         else:
-            table[name] = np.array([r.get(name, np.nan) for r in records], dtype=float)
+            column = np.empty(len(records), dtype=object)
+            column[:] = values
+            table[name] = column
     return table
+
+
+def _piece_of(path: Path) -> tuple[Piece, int] | None:
+    """(Piece, bag start ns) when ``path`` is one file listed in its folder's metadata.yaml."""
+    meta = path.parent / METADATA_FILE
+    if not path.is_file() or not meta.is_file():
+        return None
+    try:
+        info = load_yaml(meta, max_bytes=METADATA_MAX_BYTES,
+                         prefix="bag metadata ")["rosbag2_bagfile_information"]
+        names = [f["path"] for f in info["files"]]
+        index = names.index(path.name)
+        start = int(info["starting_time"]["nanoseconds_since_epoch"])
+        entry = info["files"][index]
+        t0 = (int(entry["starting_time"]["nanoseconds_since_epoch"]) - start) * 1e-9
+        t1 = t0 + int(entry["duration"]["nanoseconds"]) * 1e-9
+    except (KeyError, TypeError, ValueError):
+        return None
+    return Piece(path.name, index, len(names), t0, t1), start
+
+
+def _reference_of(folder: Path) -> tuple[dict | None, Path | None]:
+    """The reference file copied into the bag (reference/*.yaml), parsed; (None, None) if none."""
+    for path in sorted((folder / REFERENCE_DIR).glob("*.yaml")):
+        try:
+            data = load_yaml(path, prefix="copied reference ")
+        except YamlFileError:
+            continue
+        if isinstance(data, dict):
+            return data, path
+    return None, None
 
 
 def load_run(bag: str | Path) -> RunData:
     """Read a run from a rosbag2 bag folder (ours or ``ros2 bag record``'s) or one .mcap/.db3.
 
     Uses rosbags' AnyReader (Jazzy typestore for bags without embedded definitions) and picks
-    topics by interface name and type; params.yaml and result.json are read when present.
+    topics by interface name and type; params.yaml, result.json and the copied reference are
+    read when present. The first and the last camera image are decoded (``frames``).
     A bag folder's metadata.yaml is screened first (``yaml_files.screen_yaml``: size, syntax,
     no anchors/aliases or tags) and params.yaml read through ``yaml_files.load_yaml``; either
     refused is a YamlFileError (a ValueError) naming the file and the place.
+
+    One split file of a bag (a path listed in its folder's metadata.yaml) is read as a
+    ``piece``: times stay on the whole bag's clock, and the run result is the one the file
+    holds itself (its run_result message), never the bag's result.json, so a report of the
+    piece covers the piece's time span and nothing else.
     """
     path = Path(bag)
     folder = path if path.is_dir() else path.parent
     if path.is_dir() and (path / METADATA_FILE).exists():
         screen_yaml(path / METADATA_FILE, max_bytes=METADATA_MAX_BYTES, prefix="bag metadata ")
     params = _read_params(folder / PARAMS_FILE)
+    piece_info = None if path.is_dir() else _piece_of(path)
     rows: dict[str, tuple[list, list]] = {}
     joints: list = []
     status: list[tuple[int, dict]] = []
     images: list[int] = []
+    first_last: list = []   # (stamp, msgtype, raw) of the first and the newest image
     latest: dict[str, object] = {}
     skipped = 0
     with AnyReader([path], default_typestore=default_typestore()) as reader:
@@ -521,11 +647,23 @@ def load_run(bag: str | Path) -> RunData:
             if topic is not None:
                 role_of[topic] = role
         start_ns = reader.start_time if reader.message_count else 0
+        if piece_info is not None:   # a piece keeps the whole bag's clock
+            start_ns = piece_info[1]
+        image_roles = {r for t, r in role_of.items() if r in ("image", "image_compressed")}
+        image_role = "image" if "image" in image_roles else "image_compressed"
         wanted = [c for c in reader.connections if c.topic in role_of]
         for conn, stamp, raw in reader.messages(connections=wanted):
             role = role_of[conn.topic]
             if role in ("image", "image_compressed"):
-                images.append(stamp)     # images are counted, not decoded
+                images.append(stamp)     # images are counted; the first and last decoded
+                if role == image_role:
+                    entry = (stamp, conn.msgtype, raw)
+                    if not first_last:
+                        first_last.append(entry)
+                    elif len(first_last) == 1:
+                        first_last.append(entry)
+                    elif stamp >= first_last[1][0]:
+                        first_last[1] = entry
                 continue
             msg = reader.deserialize(raw, conn.msgtype)
             if role in _ROW_SERIES:
@@ -547,6 +685,11 @@ def load_run(bag: str | Path) -> RunData:
             else:
                 latest[role] = msg
         topics = {c.topic: (c.msgtype, c.msgcount) for c in reader.connections}
+        frames = []
+        for stamp, msgtype, raw in first_last:
+            rgb = image_to_rgb(msgtype, reader.deserialize(raw, msgtype))
+            if rgb is not None:
+                frames.append((stamp, rgb))
 
     def secs(stamps) -> np.ndarray:
         return (np.asarray(stamps, dtype=np.int64) - start_ns) * 1e-9
@@ -566,9 +709,12 @@ def load_run(bag: str | Path) -> RunData:
     for role, (ts, vals) in rows.items():
         order = np.argsort(ts, kind="stable")
         series[role] = Series(secs(ts)[order], _flat(vals)[order])
-    result = _read_json(folder / RESULT_FILE) if (folder / RESULT_FILE).exists() else None
+    # a piece of a bag reports only the result it holds itself, not the whole run's
+    result = (_read_json(folder / RESULT_FILE)
+              if piece_info is None and (folder / RESULT_FILE).exists() else None)
     if result is None and "run_result" in latest:
         result = json.loads(latest["run_result"].data)
+    reference, reference_path = _reference_of(folder)
     info = latest.get("camera_info")
     return RunData(
         path=path, start_ns=start_ns, topics=topics,
@@ -582,7 +728,10 @@ def load_run(bag: str | Path) -> RunData:
             "distortion_model": info.distortion_model},
         robot_description=(latest["robot_description"].data
                            if "robot_description" in latest else None),
-        params=params, result=result, skipped=skipped)
+        params=params, result=result, skipped=skipped,
+        frames=[Frame(float(secs([stamp])[0]), rgb) for stamp, rgb in frames],
+        reference=reference, reference_path=reference_path,
+        piece=piece_info[0] if piece_info else None)
 
 
 def _read_json(path: Path) -> dict:

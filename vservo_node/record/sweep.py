@@ -22,7 +22,9 @@ variant of one scenario. A sweep file (YAML, format ``vservo_sweep/1``, our own)
                                                         # only); random: uniform in the range
     success: {pose_mm: 2.0, pose_deg: 0.5, limit_slack: 0.01}
     map: [start.rotation_deg, start.lateral_m]          # axes of the success map (1 or 2)
-    map_bins: 6                    # random mode: bins per map axis
+    map_bins: 3                    # random mode: bins per map axis (default: as many as
+                                   # keep MIN_PER_CELL episodes in each cell)
+    best: {min_episodes: 5, margin: 0.1}   # how best parameters are chosen (see best_params)
 
 Names in ``fixed`` and ``axes`` are controller parameters (``vservo_node.params`` schema names,
 e.g. ``control.gain_near``) or the scene quantities of :data:`SCENE_NAMES`. Start offsets are
@@ -41,6 +43,23 @@ calls :func:`run_sweep` with several workers needs the ``if __name__ == "__main_
 on a Dask cluster given its scheduler address (Dask is imported only then; its workers need
 vservo_node and the scenario files). Rows come back in plan order, so the table is the same
 however the sweep ran.
+
+Random mode draws the map axes stratified: episode i falls in map cell i mod (number of
+cells), uniformly inside it, so every cell of the map holds episodes (a plan with fewer
+episodes than cells is refused); the other axes are drawn uniformly over their ranges.
+
+Controller parameters of every episode, lowest priority first: ``config/vservo_sim.yaml`` (the
+simulated cell's file), the user's parameter file (``vservo sweep --params FILE``: a ROS 2
+parameter file of the node; ``robot.*`` but ``robot.tool_point``, ``target.file`` and
+``reference.*`` do not apply, the scenario fixes them), ``fixed``, the swept values. When none of
+them sets ``control.max_run_s`` it is the scenario's ``duration_s``, and each episode runs
+``control.max_run_s`` + :data:`BRAKE_ALLOWANCE_S`, so a run too slow to converge ends on the
+node's own ``run_timeout``.
+
+Failed episodes (ran, not a success) are kept as run records (rosbag2, as the recorder writes
+them) under ``<out>/records/`` when :func:`run_sweep` is given ``records_dir``: status records,
+joint states, the true camera and taught poses, the camera frames at the start and at the end,
+parameters and result, so ``vservo report`` opens them like any run.
 
 Success of an episode: the servo converged, the true camera pose is within ``pose_mm`` and
 ``pose_deg`` of the true taught pose, and no limit was exceeded by more than ``limit_slack``
@@ -73,6 +92,7 @@ from scipy.spatial.transform import Rotation
 from vservo_node import params, paths
 from vservo_node.control.frames import transform
 from vservo_node.interface import SENSING_MODES
+from vservo_node.record import metrics
 from vservo_node.yaml_entries import EntryReader
 from vservo_node.yaml_files import YamlFileError, brief
 
@@ -105,12 +125,20 @@ SCENE_NAMES = {
                               "scenario's)", None),
 }
 _TOP = {"format", "name", "description", "scenario", "mode", "seed", "repeats", "episodes",
-        "fixed", "axes", "success", "map", "map_bins", "sensing"}
+        "fixed", "axes", "success", "map", "map_bins", "sensing", "best"}
+_BEST = {"min_episodes", "margin"}
+MIN_PER_CELL = 3          # random mode: episodes per map cell the default bins keep
+BRAKE_ALLOWANCE_S = 2.0   # an episode runs max_run_s + this: the timeout halt and its braking
+# parameters a scenario fixes (a user parameter file's values for them do not apply)
+NOT_APPLICABLE = ("robot.", "target.file", "reference.", "robot_description")
 _AXIS = {"values", "range", "steps"}
 _SUCCESS = {"pose_mm", "pose_deg", "limit_slack"}
-METRICS = ("converged", "reason", "time_s", "final_rms_px", "initial_rms_px", "pose_error_mm",
-           "pose_error_deg", "peak_joint_speed_ratio", "peak_tool_speed", "peak_camera_speed",
-           "peak_angular_speed", "min_limit_margin", "camera_depth_change_max")
+# Columns of the episode table: vservo_node.record.metrics' names and definitions, from
+# metrics.episode_figures (peak joint speed over the limit in use, times by verdict).
+METRICS = ("converged", "reason", "time_to_converge_s", "time_to_halt_s", "final_rms_px",
+           "initial_rms_px", "final_pose_error_mm", "final_pose_error_deg",
+           "peak_joint_speed_ratio", "peak_tool_speed_m_s", "peak_camera_speed_m_s",
+           "peak_angular_speed_rad_s", "min_joint_limit_margin", "camera_depth_change_max_m")
 
 
 # Most episodes one sweep file may plan (grid combinations x repeats, or random episodes):
@@ -149,9 +177,16 @@ class Axis:
     def draw(self, rng: np.random.Generator):
         if self.values:
             return self.values[int(rng.integers(len(self.values)))]
+        return self.draw_between(rng, self.low, self.high)
+
+    def draw_between(self, rng: np.random.Generator, low: float, high: float):
+        """Uniform in [low, high) (integers: of those inside, at least the nearest one)."""
         if self.integer:
-            return int(rng.integers(int(self.low), int(self.high) + 1))
-        return float(rng.uniform(self.low, self.high))
+            lo, hi = math.ceil(low), max(math.ceil(low), math.ceil(high) - 1)
+            if high >= self.high:
+                hi = max(lo, int(math.floor(high)))
+            return int(rng.integers(lo, hi + 1))
+        return float(rng.uniform(low, high))
 
 
 @dataclass(frozen=True)
@@ -162,6 +197,17 @@ class Success:
     pose_mm: float = 2.0
     pose_deg: float = 0.5
     limit_slack: float = 0.01
+
+
+@dataclass(frozen=True)
+class Best:
+    """How the best controller parameters are chosen: only groups of at least
+    ``min_episodes``; ranked by the lower end of the 95 % Wilson interval of their success
+    rate; and robust: on each numeric swept parameter the neighbouring values' groups reach a
+    lower end within ``margin`` of it (the choice is not on a cliff's edge)."""
+
+    min_episodes: int = 5
+    margin: float = 0.1
 
 
 @dataclass(frozen=True)
@@ -182,6 +228,9 @@ class SweepSpec:
     map_bins: int
     source: Path | None = None
     sensing: str = "image"
+    best: Best = field(default_factory=Best)
+    base_params: dict = field(default_factory=dict)   # the user's parameter file (--params)
+    params_source: str = ""
 
 
 @dataclass(frozen=True)
@@ -317,13 +366,25 @@ def sweep_from_dict(data, source: Path | None = None) -> SweepSpec:
         if total > MAX_EPISODES:
             r.fail("axes", f"the grid plans {total} episodes (combinations x repeats); expected "
                            f"at most {MAX_EPISODES}")
+    binned = [a for a in axes if a.name in map_axes and not a.values]
+    if "map_bins" in data:
+        map_bins = r.integer(data["map_bins"], "map_bins", 1, MAX_MAP_BINS)
+        if mode == "random" and binned and map_bins ** len(binned) > episodes:
+            r.fail("map_bins", f"{map_bins} bins per axis make {map_bins ** len(binned)} map "
+                               f"cells, more than the {episodes} episodes can fill; lower "
+                               f"map_bins or raise episodes")
+    else:   # as many bins as keep MIN_PER_CELL episodes in each cell
+        map_bins = min(MAX_MAP_BINS, max(1, int((episodes / MIN_PER_CELL)
+                                                ** (1.0 / max(len(binned), 1)) + 1e-9)))
+    best = r.mapping(data.get("best"), "best", _BEST)
+    best = Best(min_episodes=r.integer(best.get("min_episodes", Best.min_episodes),
+                                       "best.min_episodes", 1, MAX_EPISODES),
+                margin=r.number(best.get("margin", Best.margin), "best.margin", minimum=0.0))
     return SweepSpec(
         name=r.text(data["name"], "name"), description=str(data.get("description", "")).strip(),
         scenario=scenario, mode=mode, seed=r.integer(data.get("seed", 0), "seed", 0),
-        repeats=repeats, episodes=episodes,
-        fixed=fixed, axes=axes, success=success, map_axes=tuple(map_axes),
-        map_bins=r.integer(data.get("map_bins", 6), "map_bins", 1, MAX_MAP_BINS), source=source,
-        sensing=sensing)
+        repeats=repeats, episodes=episodes, fixed=fixed, axes=axes, success=success,
+        map_axes=tuple(map_axes), map_bins=map_bins, source=source, sensing=sensing, best=best)
 
 
 def load_sweep(name_or_path) -> SweepSpec:
@@ -348,11 +409,18 @@ def plan(spec: SweepSpec) -> list[Point]:
         chosen = [combo for combo in combos for _ in range(spec.repeats)]
     else:
         chosen = [None] * spec.episodes
+    strata = _strata(spec)
     points = []
     for index, combo in enumerate(chosen):
         rng = np.random.default_rng([spec.seed, index])
-        values = (dict(zip(names, combo)) if combo is not None
-                  else {a.name: a.draw(rng) for a in spec.axes})
+        if combo is not None:
+            values = dict(zip(names, combo))
+        else:
+            values = {a.name: a.draw(rng) for a in spec.axes}
+            cell = np.unravel_index(index % max(1, math.prod(len(e) - 1 for _, e in strata)),
+                                    [len(e) - 1 for _, e in strata]) if strata else ()
+            for (axis, edges), k in zip(strata, cell):   # stratified over the map's cells
+                values[axis.name] = axis.draw_between(rng, edges[k], edges[k + 1])
         points.append(Point(index, int(rng.integers(2**31)), values))
     for point in points:
         try:
@@ -363,15 +431,64 @@ def plan(spec: SweepSpec) -> list[Point]:
     return points
 
 
+def _strata(spec: SweepSpec) -> list:
+    """[(axis, bin edges)] of the map axes a random plan draws stratified (ranges only)."""
+    if spec.mode != "random":
+        return []
+    out = []
+    for name in spec.map_axes:
+        axis = next(a for a in spec.axes if a.name == name)
+        if not axis.values:
+            out.append((axis, np.linspace(axis.low, axis.high, spec.map_bins + 1)))
+    return out
+
+
+def _overrides(spec: SweepSpec, point: Point) -> dict:
+    """Controller parameters over config/vservo_sim.yaml: the user's file, fixed, swept;
+    ``control.max_run_s`` the scenario's duration_s when none of them sets it."""
+    merged = {**spec.base_params, **spec.fixed, **point.values}
+    out = {k: v for k, v in merged.items() if k in params.BY_NAME}
+    out.setdefault("control.max_run_s", float(_base_scenario(spec.scenario).duration_s))
+    return out
+
+
 def _episode_params(spec: SweepSpec, point: Point) -> dict:
     from vservo_node.episode import episode_params
 
-    merged = {**spec.fixed, **point.values}
     base = _base_scenario(spec.scenario)
-    # as run_scenario_episode builds them: the scenario's controller entries, then the sweep's
-    return episode_params({**base.controller,
-                           **{k: v for k, v in merged.items() if k in params.BY_NAME}},
+    # as run_scenario_episode builds them: the scenario's controller entries, then the user's
+    # file, the sweep's fixed and swept values
+    return episode_params({**base.controller, **_overrides(spec, point)},
                           camera_rate_hz=base.fps)
+
+
+def user_params(path) -> tuple[dict, list[str]]:
+    """The controller parameters of the user's parameter file that apply to sweep episodes,
+    and notes on what was left out (ROS's own names; what the scenario fixes). SweepError
+    naming the file for an unknown name (with the nearest known one) or an invalid value."""
+    from vservo_node import param_names
+
+    try:
+        values = params.load_params_file(path)
+    except Exception as exc:   # YAML syntax, layout, missing file: one message, no traceback
+        raise SweepError(f"parameter file {path}: {exc}") from None
+    known, ros_own, unknown = param_names.split(values)
+    if unknown:
+        raise SweepError(f"parameter file {path}: " + "; ".join(
+            f"{name}: unknown parameter" + (f" (did you mean {hint}?)" if hint else "")
+            for name, hint in unknown.items()))
+    checked = params.validate(known)
+    if not checked.ok:
+        raise SweepError(f"parameter file {path}: " + "; ".join(checked.errors))
+    fixed_by_scenario = sorted(k for k in known if k.startswith(NOT_APPLICABLE)
+                               and k != "robot.tool_point")
+    notes = []
+    if fixed_by_scenario:
+        notes.append(f"the scenario fixes {', '.join(fixed_by_scenario)}: the file's values "
+                     "do not apply")
+    if ros_own:
+        notes.append(f"ROS's own {', '.join(sorted(ros_own))} ignored")
+    return {k: known[k] for k in known if k not in fixed_by_scenario}, notes
 
 
 @functools.lru_cache(maxsize=8)
@@ -450,9 +567,11 @@ def judge(result, values: dict, success: Success) -> tuple[bool, str, list]:
     return not failure, failure, exceeded
 
 
-def run_job(spec: SweepSpec, point: Point) -> dict:
+def run_job(spec: SweepSpec, point: Point, records_dir: str | None = None) -> dict:
     """Run one planned episode; a flat row (axis values, status, success, failure, metrics).
-    Status ``ok`` (it ran), ``skipped`` (start out of reach, view not teachable) or ``error``."""
+    Status ``ok`` (it ran), ``skipped`` (start out of reach, view not teachable) or ``error``.
+    A failed episode is written as a run record under ``records_dir`` when given (its folder
+    in the row's ``record``)."""
     from vservo_node.episode import run_scenario_episode
     from vservo_node.vision.reference import BadReferenceError
 
@@ -469,10 +588,12 @@ def run_job(spec: SweepSpec, point: Point) -> dict:
         except ValueError as exc:
             return {**row, "status": "skipped", "failure": "start_unreachable",
                     "reason": str(exc).splitlines()[0]}
-        overrides = {k: v for k, v in {**spec.fixed, **point.values}.items()
-                     if k in params.BY_NAME}
+        overrides = _overrides(spec, point)
+        scenario = dataclasses.replace(
+            scenario, duration_s=values["control.max_run_s"] + BRAKE_ALLOWANCE_S)
         try:
             result = run_scenario_episode(scenario, overrides, point.seed,
+                                          record=records_dir is not None,
                                           focal_scale=focal_scale, sensing=spec.sensing,
                                           noise_px=scene.get("sensing.noise_px"))
         except BadReferenceError as exc:
@@ -481,9 +602,27 @@ def run_job(spec: SweepSpec, point: Point) -> dict:
         return {**row, "status": "error", "failure": f"error:{type(exc).__name__}",
                 "reason": "".join(traceback.format_exception_only(exc)).strip()}
     ok, failure, exceeded = judge(result, values, spec.success)
-    row.update({k: getattr(result, k) for k in METRICS})
+    figures = metrics.episode_figures(result, values)
+    row.update({k: figures.get(k) for k in METRICS})
     row.update(success=ok, failure=failure, limits_exceeded=";".join(exceeded))
+    if not ok and records_dir is not None:
+        try:
+            row["record"] = str(write_episode_record(
+                records_dir, spec, point, scenario, values, result, failure))
+        except Exception as exc:   # noqa: BLE001 - the row stands without its record
+            row["record"] = f"error:{type(exc).__name__}: {exc}"
     return row
+
+
+def write_episode_record(root, spec: SweepSpec, point: Point, scenario, values: dict, result,
+                         failure: str) -> Path:
+    """A failed episode as a run record (see record/episode_record.py); returns its folder."""
+    from vservo_node.record.episode_record import write_record
+
+    name = f"episode{point.index:04d}_{failure.replace(':', '_') or 'failed'}"
+    return write_record(Path(root), name, scenario, values, result,
+                        notes={"sweep": spec.name, "episode": point.index, "seed": point.seed,
+                               **{k: v for k, v in point.values.items()}})
 
 
 # ----------------------------------------------------------------------------- running
@@ -531,21 +670,21 @@ def _one_cv_thread() -> None:
     cv2.setNumThreads(1)
 
 
-def _local_rows(spec, points, workers: int) -> Iterator[dict]:
+def _local_rows(spec, points, workers: int, records_dir=None) -> Iterator[dict]:
     if workers <= 1:
         for point in points:
-            yield run_job(spec, point)
+            yield run_job(spec, point, records_dir)
         return
     import multiprocessing
     # spawn: a fresh interpreter per worker (forking a parent with OpenCV threads can hang)
     with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("spawn"),
                              initializer=_one_cv_thread) as pool:
-        futures = [pool.submit(run_job, spec, point) for point in points]
+        futures = [pool.submit(run_job, spec, point, records_dir) for point in points]
         for future in as_completed(futures):
             yield future.result()
 
 
-def _dask_rows(spec, points, address: str) -> Iterator[dict]:
+def _dask_rows(spec, points, address: str, records_dir=None) -> Iterator[dict]:
     try:
         from distributed import Client
         from distributed import as_completed as dask_completed
@@ -554,23 +693,28 @@ def _dask_rows(spec, points, address: str) -> Iterator[dict]:
                          f"scheduler is not installed; install it with: pip install "
                          f"{DASK_PINS}") from exc
     with Client(address) as client:   # closes this connection only, not the cluster
-        futures = client.map(run_job, [spec] * len(points), points, pure=False)
+        futures = client.map(run_job, [spec] * len(points), points,
+                             [records_dir] * len(points), pure=False)
         for future in dask_completed(futures):
             yield future.result()
 
 
 def run_sweep(spec: SweepSpec, workers: int = 1, scheduler: str | None = None,
-              progress: bool = True, stream=None) -> SweepRun:
+              progress: bool = True, stream=None, records_dir=None) -> SweepRun:
     """Run every episode of ``spec``: in this process (``workers`` 1), in ``workers`` local
     processes, or on the Dask cluster whose scheduler listens at ``scheduler`` (its workers
-    need vservo_node and the scenario files). Rows come back in plan order whatever ran them,
-    so the same spec gives the same table."""
+    need vservo_node and the scenario files, and ``records_dir`` must be a folder they
+    share). Rows come back in plan order whatever ran them, so the same spec gives the same
+    table. With ``records_dir``, failed episodes are kept there as run records."""
+    if records_dir is not None:
+        records_dir = str(Path(records_dir).resolve())
+        Path(records_dir).mkdir(parents=True, exist_ok=True)
     points = plan(spec)
     bar = Progress(len(points), f"sweep {spec.name}", stream) if progress else None
     t0 = time.perf_counter()
     rows = []
-    source = (_dask_rows(spec, points, scheduler) if scheduler
-              else _local_rows(spec, points, workers))
+    source = (_dask_rows(spec, points, scheduler, records_dir) if scheduler
+              else _local_rows(spec, points, workers, records_dir))
     for row in source:
         rows.append(row)
         if bar:
@@ -602,9 +746,30 @@ def _map_bins(spec: SweepSpec, axis: Axis):
         return [f"{c:.3g}" if isinstance(c, float) else str(c) for c in categories], \
             categories.index
     edges = np.linspace(axis.low, axis.high, spec.map_bins + 1)
-    labels = [f"{(a + b) / 2:.3g}" for a, b in zip(edges[:-1], edges[1:])]
+    tiny = 1e-9 * max(abs(axis.high - axis.low), 1e-300)   # linspace round-off, not values
+
+    def num(v):
+        return f"{0.0 if abs(v) < tiny else v:.3g}"
+    labels = [f"{num(a)} to {num(b)}" for a, b in zip(edges[:-1], edges[1:])]
     return labels, lambda v: int(np.clip(np.searchsorted(edges, v, "right") - 1, 0,
                                          spec.map_bins - 1))
+
+
+# units of the scene quantities, for axis labels (controller parameters: params.SCHEMA's unit)
+SCENE_UNITS = {"start.rotation_deg": "deg", "start.lateral_m": "m", "start.tilt_deg": "deg",
+               "start.depth_m": "m", "calib.hand_eye_deg": "deg", "calib.hand_eye_m": "m",
+               "calib.focal": "relative error", "calib.depth": "relative error",
+               "image.noise_std": "grey levels", "image.scale": "fraction",
+               "sensing.noise_px": "px", "arm.joint_noise_std": "rad",
+               "arm.velocity_lag_s": "s", "arm.command_latency_s": "s"}
+
+
+def axis_label(name: str) -> str:
+    """``name (unit)`` of a swept quantity; ``(choice)`` for text parameters."""
+    param = params.BY_NAME.get(name)
+    unit = (param.unit or ("choice" if param.type is str else "-")) if param is not None \
+        else SCENE_UNITS.get(name, "-")
+    return f"{name} ({unit})"
 
 
 def success_map(spec: SweepSpec, rows: list) -> dict:
@@ -624,26 +789,83 @@ def success_map(spec: SweepSpec, rows: list) -> dict:
             "n": n.tolist(), "successes": ok.tolist(), "rate": rate.tolist()}
 
 
+def wilson_interval(successes: int, n: int, z: float = 1.959963984540054) -> tuple:
+    """The Wilson score interval of a success rate (Wilson 1927, "Probable inference, the law
+    of succession, and statistical inference", J. Am. Stat. Assoc. 22: 209-212), 95 % by
+    default: unlike k/n it tells 2 of 2 (0.34..1) from 20 of 20 (0.84..1)."""
+    if n <= 0:
+        return 0.0, 1.0
+    p = successes / n
+    centre = (p + z * z / (2 * n)) / (1 + z * z / n)
+    half = z / (1 + z * z / n) * math.sqrt(p * (1 - p) / n + z * z / (4 * n * n))
+    return max(0.0, centre - half), min(1.0, centre + half)
+
+
 def best_params(spec: SweepSpec, rows: list) -> dict | None:
-    """The swept controller parameters' values with the highest success rate (ties: the
-    shortest median time to converge), and every group's figures; None when no controller
-    parameter was swept."""
+    """The swept controller parameters' values to use, and every group's figures; None when
+    no controller parameter was swept.
+
+    Rule (``spec.best``, stated in the result): groups of fewer than ``min_episodes`` are not
+    chosen; the rest rank by the lower end of the 95 % Wilson interval of their success rate
+    (ties: the shorter median time to converge); the choice must be *robust*: on each numeric
+    swept parameter, the groups at the neighbouring values (the others equal) reach a lower
+    end within ``margin`` of the choice's (a value at the edge of the swept range has one
+    neighbour). The first group in rank order that passes is ``best``; ``None`` when none
+    does (then ``reason`` says why)."""
     names = [a.name for a in spec.axes if a.name in params.BY_NAME]
     if not names:
         return None
+    rule = spec.best
     groups = defaultdict(list)
     for row in rows:
         if row["status"] == "ok":
             groups[tuple(row[n] for n in names)].append(row)
-    table = []
+    table = {}
     for key, members in groups.items():
-        times = [r["time_s"] for r in members if r["success"]]
-        table.append({"values": dict(zip(names, key)), "episodes": len(members),
-                      "success_rate": sum(r["success"] for r in members) / len(members),
-                      "median_time_s": float(np.median(times)) if times else None})
-    table.sort(key=lambda g: (-g["success_rate"], g["median_time_s"] if g["median_time_s"]
-                              is not None else math.inf))
-    return {"parameters": names, "best": table[0] if table else None, "groups": table}
+        wins = sum(bool(r["success"]) for r in members)
+        times = [r["time_to_converge_s"] for r in members if r["success"]]
+        low, high = wilson_interval(wins, len(members))
+        table[key] = {"values": dict(zip(names, key)), "episodes": len(members),
+                      "successes": wins, "success_rate": wins / len(members),
+                      "rate_low": low, "rate_high": high,
+                      "median_time_s": float(np.median(times)) if times else None}
+    numeric = [i for i, n in enumerate(names)
+               if all(isinstance(k[i], (int, float)) and not isinstance(k[i], bool)
+                      for k in table)]
+    axis_values = {i: sorted({k[i] for k in table}) for i in numeric}
+
+    def neighbours(key):
+        for i in numeric:
+            values = axis_values[i]
+            j = values.index(key[i])
+            for jj in (j - 1, j + 1):
+                if 0 <= jj < len(values):
+                    other = key[:i] + (values[jj],) + key[i + 1:]
+                    yield names[i], other
+
+    for key, g in table.items():
+        weak = [f"{name}={other[names.index(name)]} ({table[other]['successes']}/"
+                f"{table[other]['episodes']})"
+                for name, other in neighbours(key) if other in table
+                and table[other]["rate_low"] < g["rate_low"] - rule.margin]
+        g["enough_episodes"] = g["episodes"] >= rule.min_episodes
+        g["weak_neighbours"] = weak
+    ranked = sorted(table.values(), key=lambda g: (
+        -g["rate_low"], g["median_time_s"] if g["median_time_s"] is not None else math.inf))
+    best = next((g for g in ranked if g["enough_episodes"] and not g["weak_neighbours"]), None)
+    reason = ""
+    if best is None:
+        reason = ("no group has " + str(rule.min_episodes) + " episodes"
+                  if not any(g["enough_episodes"] for g in ranked)
+                  else "every group with enough episodes has a neighbour that fails more "
+                       f"(beyond the margin {rule.margin})")
+    return {"parameters": names, "best": best, "reason": reason,
+            "rule": {"min_episodes": rule.min_episodes, "margin": rule.margin,
+                     "rank": "lower end of the 95 % Wilson interval of the success rate, "
+                             "then the shorter median time to converge",
+                     "robust": "neighbouring values on each numeric swept parameter reach a "
+                               "lower end within the margin"},
+            "groups": ranked}
 
 
 def summarize(run: SweepRun) -> dict:
@@ -661,7 +883,8 @@ def summarize(run: SweepRun) -> dict:
         "errors": sum(r["status"] == "error" for r in rows),
         "successes": len(wins),
         "success_rate": len(wins) / len(ran) if ran else None,
-        "time_to_converge_s": _stats([r["time_s"] for r in wins]),
+        "time_to_converge_s": _stats([r["time_to_converge_s"] for r in wins]),
+        "params_file": spec.params_source or None,
         "failure_reasons": dict(Counter(r["failure"] for r in rows if not r["success"])
                                 .most_common()),
         "success_map": success_map(spec, rows),
@@ -703,8 +926,8 @@ def _plot_map(summary: dict, path: Path) -> Path:
         for x, k, r in zip(xs, n, rate):
             ax.text(x, (0 if np.isnan(r) else r) + 0.02, f"n={k}", ha="center", fontsize=8)
         ax.set_xticks(xs, m["labels"][0])
-        ax.set_xlabel(m["axes"][0])
-        ax.set_ylabel("success rate")
+        ax.set_xlabel(axis_label(m["axes"][0]))
+        ax.set_ylabel("success rate (fraction)")
         ax.set_ylim(0, 1.1)
     else:
         cmap = matplotlib.colormaps["RdYlGn"].with_extremes(bad="lightgrey")  # grey: no episode
@@ -715,9 +938,9 @@ def _plot_map(summary: dict, path: Path) -> Path:
                         fontsize=8)
         ax.set_xticks(range(n.shape[0]), m["labels"][0])
         ax.set_yticks(range(n.shape[1]), m["labels"][1])
-        ax.set_xlabel(m["axes"][0])
-        ax.set_ylabel(m["axes"][1])
-        fig.colorbar(image, ax=ax, label="success rate")
+        ax.set_xlabel(axis_label(m["axes"][0]))
+        ax.set_ylabel(axis_label(m["axes"][1]))
+        fig.colorbar(image, ax=ax, label="success rate (fraction; grey: no episode)")
     ax.set_title(f"{summary['name']}: success by {' and '.join(m['axes'])}", fontsize=10)
     fig.tight_layout()
     fig.savefig(path, dpi=100)
@@ -730,14 +953,17 @@ def _plot_times(rows: list, summary: dict, path: Path) -> Path:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    times = [r["time_s"] for r in rows if r["success"]]
+    from matplotlib.ticker import MaxNLocator
+
+    times = [r["time_to_converge_s"] for r in rows if r["success"]]
     fig, ax = plt.subplots(figsize=(6.4, 4.0))
     if times:
         ax.hist(times, bins=min(20, max(5, len(times) // 3)), color="tab:blue")
+        ax.yaxis.set_major_locator(MaxNLocator(integer=True))
     else:
         ax.text(0.5, 0.5, "no successful episode", ha="center", transform=ax.transAxes)
-    ax.set_xlabel("time to converge, s")
-    ax.set_ylabel("episodes")
+    ax.set_xlabel("time to converge (s)")
+    ax.set_ylabel("episodes (count)")
     ax.set_title(f"{summary['name']}: {len(times)} successful episodes")
     fig.tight_layout()
     fig.savefig(path, dpi=100)
@@ -763,7 +989,11 @@ def write_results(run: SweepRun, out_dir) -> list[Path]:
     written.append(_plot_map(summary, out / "success_map.png"))
     written.append(_plot_times(run.rows, summary, out / "time_to_converge.png"))
     if summary["best_params"]:
-        groups = [{**g["values"], "episodes": g["episodes"], "success_rate": g["success_rate"],
-                   "median_time_s": g["median_time_s"]} for g in summary["best_params"]["groups"]]
+        groups = [{**g["values"], "episodes": g["episodes"], "successes": g["successes"],
+                   "success_rate": g["success_rate"], "rate_low_95": g["rate_low"],
+                   "median_time_s": g["median_time_s"],
+                   "enough_episodes": g["enough_episodes"],
+                   "weak_neighbours": "; ".join(g["weak_neighbours"])}
+                  for g in summary["best_params"]["groups"]]
         written.append(write_table(groups, out / "params.csv"))
     return written

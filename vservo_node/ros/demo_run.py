@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import math
 import shutil
 import time
 from datetime import datetime, timezone
@@ -40,10 +39,15 @@ from vservo_node.vision.image_io import to_bgr_or_mono
 from vservo_node.vision.reference import save_reference
 from vservo_node.yaml_files import dump_yaml
 
-SUMMARY_KEYS = ("converged", "time_s", "final_rms_px", "final_pose_error_mm",
-                "final_pose_error_deg", "peak_joint_speed_ratio", "peak_tcp_speed_mps",
-                "halt_reason")
+# The summary's figures, by their names and definitions in vservo_node.record.metrics: read
+# from the recorded run's metrics.json, so the demo prints what the report shows.
+SUMMARY_KEYS = ("verdict", "converged", "reason", "detail", "time_to_converge_s",
+                "time_to_halt_s", "final_rms_px", "tolerance_px", "final_pose_error_mm",
+                "final_pose_error_deg", "estimated_pose_error_mm", "estimated_pose_error_deg",
+                "peak_joint_speed_ratio", "peak_joint_speed_joint", "peak_tool_speed_m_s",
+                "peak_tool_speed_ratio")
 RECORDER_READY_TIMEOUT_S = 20.0   # generous: the recorder imports and discovers on a busy machine
+REPORT_TIMEOUT_S = 60.0          # the recorder writes the report first; a loaded machine takes long
 
 
 def teach(scenario, folder: Path) -> Path:
@@ -103,8 +107,6 @@ class Watcher(Node):
         self.last_bag = None
         self.status = None
         self.q = None
-        self.peak_joint_ratio = 0.0
-        self.peak_tcp = 0.0
         self.create_subscription(String, interface.TOPIC_RUN_RESULT, self._on_result,
                                  qos.LATCHED)
         self.create_subscription(String, interface.TOPIC_LAST_BAG, self._on_bag, qos.LATCHED)
@@ -130,14 +132,6 @@ class Watcher(Node):
     def _on_status(self, msg):
         status = json.loads(msg.data)
         self.status = status
-        dq = status.get("dq")
-        if dq and self.q is not None and status.get("state") in ("servoing", "settling",
-                                                                 "braking"):
-            dq = np.array([0.0 if v is None else v for v in dq])
-            self.peak_joint_ratio = max(self.peak_joint_ratio,
-                                        float(np.max(np.abs(dq) / self.arm.velocity_limits)))
-            v = self.arm.point_jacobian_base(self.q, "tool", np.zeros(3)) @ dq
-            self.peak_tcp = max(self.peak_tcp, float(np.linalg.norm(v)))
 
 
 def _call(node, client, request, processes, timeout=10.0):
@@ -216,19 +210,9 @@ def run_cell_demo(args) -> int:
         harness.spin_until(node, lambda: node.result is not None,
                            max(1.0, deadline - time.monotonic()), "the run result", processes)
         result = node.result
-        summary.update({
-            "converged": bool(result.get("converged")),
-            "time_s": result.get("time_s"),
-            "final_rms_px": result.get("final_rms_px"),
-            "final_pose_error_mm": result.get("final_pose_error_mm"),
-            "final_pose_error_deg": result.get("final_pose_error_deg"),
-            "peak_joint_speed_ratio": node.peak_joint_ratio,
-            "peak_tcp_speed_mps": node.peak_tcp,
-            "halt_reason": result.get("reason") or None,
-        })
         if recorder:   # the recorder names the bag once the bag and its report are written
             try:
-                harness.spin_until(node, lambda: node.last_bag is not None, 20.0,
+                harness.spin_until(node, lambda: node.last_bag is not None, REPORT_TIMEOUT_S,
                                    "the recorder's bag and report", processes)
             except TimeoutError as exc:
                 print(f"warning: no report: {exc}".splitlines()[0])
@@ -239,8 +223,10 @@ def run_cell_demo(args) -> int:
             proc.stop()
             shutil.move(proc.log_path, folder / f"{proc.name}.log")   # keep logs with the run
     wall = time.monotonic() - t_wall
-    _print_summary(scenario.name, summary, wall)
     bag = node.last_bag
+    metrics = _run_metrics(bag, node.result)
+    summary.update({k: metrics.get(k) for k in SUMMARY_KEYS})
+    _print_summary(scenario.name, metrics, wall, recorded=bool(bag))
     if bag:
         print(f"run recorded in:     {bag}")
         for page in sorted(Path(bag).glob("report/*.html")):
@@ -272,19 +258,25 @@ def _start_recorder(scenario, args):
         name="vservo_recorder")
 
 
-def _fmt(value, spec):
-    if value is None or (isinstance(value, float) and math.isnan(value)):
-        return "n/a"
-    return format(value, spec)
+def _run_metrics(bag, result) -> dict:
+    """The run's figures as the report computed them (<bag>/report/metrics.json; recomputed
+    from the bag when the report is missing); without a bag, the run result alone."""
+    from vservo_node.record.metrics import compute_metrics, result_metrics
+
+    if bag:
+        path = Path(bag) / "report" / "metrics.json"
+        if path.is_file():
+            return json.loads(path.read_text())
+        from vservo_node.record.bag import load_run
+        return compute_metrics(load_run(bag))
+    return result_metrics(result)
 
 
-def _print_summary(name, s, wall):
+def _print_summary(name, metrics, wall, recorded: bool):
+    from vservo_node.record.metrics import headline
+
     print(f"\n== vservo demo: {name} (wall time {wall:.1f} s) ==")
-    print(f"converged            {s['converged']}")
-    print(f"time to converge     {_fmt(s['time_s'], '.2f')} s")
-    print(f"final RMS error      {_fmt(s['final_rms_px'], '.3f')} px")
-    print(f"final pose error     {_fmt(s['final_pose_error_mm'], '.3f')} mm, "
-          f"{_fmt(s['final_pose_error_deg'], '.3f')} deg (ground truth)")
-    print(f"peak joint speed     {_fmt(s['peak_joint_speed_ratio'], '.2f')} of the URDF limit")
-    print(f"peak tool speed      {_fmt(s['peak_tcp_speed_mps'], '.3f')} m/s")
-    print(f"halt reason          {s['halt_reason'] or '-'}")
+    for label, text in headline(metrics):
+        print(f"{label:28s} {text}")
+    if not recorded:
+        print("(no record of the run: speeds are not known; the figures are the run result's)")

@@ -12,7 +12,7 @@ clock (ROS time: the simulated clock under ``use_sim_time``), in nanoseconds.
     ``joint_states``; the commands ``servo/joint_velocity_cmd``, ``servo/joint_trajectory_cmd``,
     ``servo/twist_cmd``; ``servo/status``, ``servo/feature_error``, ``servo/error_rms``,
     ``servo/camera_twist``, ``servo/features``, ``servo/run_result``; ``camera/camera_info``,
-    ``camera/image``; ``robot_description``; the simulator's ground truth ``sim/*`` when
+    ``camera/image`` (compressed by default, see ``image_format``); ``robot_description``; the simulator's ground truth ``sim/*`` when
     present. QoS: sensor-data for camera topics, transient local for the latched ones
     (``servo/run_result``, ``robot_description``, ``sim/taught_camera_pose``), reliable state
     otherwise. The latched topics other than the run result are published once, so the newest
@@ -30,6 +30,11 @@ Runs
     tail is over closes the bag at once. With ``record_continuously`` one bag covers the
     whole session (opened at start, closed at shutdown, so without an automatic report;
     ``result.json`` holds the latest run's result).
+
+Taught reference
+    The controller's ``reference.file`` (read from its parameters) is copied into
+    ``<bag>/reference/`` with the files it names (its taught image), when the bag opens or when
+    the parameters arrive; a file this node cannot read is logged and only its path is kept.
 
 Controller parameters (``params.yaml`` of each bag, as a ROS 2 parameter file of the
 controller node, ``{<fully qualified name>: {ros__parameters: {<dotted name>: value}}}``)
@@ -57,8 +62,9 @@ Parameters (read at start; read-only)
     ``<output_dir>/<UTC time>_<scenario>/``. ``scenario`` (str, 'live'). ``make_report`` (bool,
     true). ``record_continuously`` (bool, false). ``tail_s`` (float >= 0, 0.5 s).
     ``image_every`` (int >= 1, 1): keep every k-th image. ``image_format`` ('raw' | 'png' |
-    'jpeg', 'raw'): 'raw' records sensor_msgs/Image as is, the others as CompressedImage on
-    ``camera/image/compressed``. ``jpeg_quality`` (int 0..100, 90). ``controller_node`` (str,
+    'jpeg', 'jpeg'): 'jpeg' and 'png' record sensor_msgs/Image as CompressedImage on
+    ``camera/image/compressed`` (a 9 s demo run: ~10 MB with JPEG, ~230 MB raw); 'raw' as it
+    comes. ``jpeg_quality`` (int 0..100, 90). ``controller_node`` (str,
     'vservo'). ``max_queue_mb`` (float 1..65536, 256 MiB): messages waiting for the writer
     thread; beyond it new messages are dropped and counted (a warning per second says how
     many).
@@ -89,6 +95,11 @@ from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
+# Imported at start, not on first use: OpenCV's import (JPEG/PNG encoding, the report's
+# frames) holds the GIL for about a second on a loaded machine, and when that happened at the
+# first image of a run the executor thread lost ~1.5 s of joint states and images (measured on
+# two demo runs). The report module below (matplotlib) is imported at start for the same reason.
+import cv2  # noqa: F401
 from geometry_msgs.msg import PoseStamped, TwistStamped
 from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ParameterDescriptor,
                                 ParameterEvent, ParameterType)
@@ -252,6 +263,21 @@ class BagWriter:
         self._write_failed = False
         self._recorder = self._make_recorder(params)
         self._log.info(f"recording into {self._recorder.bag_dir}")
+        self._copy_reference(params)
+
+    def _copy_reference(self, params: dict | None) -> None:
+        """Copy the controller's reference.file (and the files it names) into the bag."""
+        path = reference_file(params)
+        if self._recorder is None or not path:
+            return
+        try:
+            copy = self._recorder.copy_reference(path)
+        except OSError as exc:
+            self._log.warning(f"cannot copy the reference {path} into the bag: {exc}")
+            return
+        if copy is None:
+            self._log.warning(f"reference file {path} not found from this node: the bag keeps "
+                              "its path only (params.yaml)")
 
     def _write(self, topic: str, msgtype: str, raw: bytes, stamp_ns: int) -> None:
         try:
@@ -279,12 +305,22 @@ class BagWriter:
             tmp.write_text(dump_yaml(params, sort_keys=False), encoding="utf8")
             os.replace(tmp, path)
             self._log.info(f"controller parameters written to {path}")
+            self._copy_reference(params)
 
     def _close(self, report: bool) -> None:
         recorder, self._recorder = self._recorder, None
         if recorder is not None:
             recorder.close()
             self._on_closed(recorder.bag_dir, report)
+
+
+def reference_file(params: dict | None) -> str:
+    """``reference.file`` of a parameter file form ``{node: {ros__parameters: {...}}}``."""
+    for section in (params or {}).values():
+        values = section.get("ros__parameters", {}) if isinstance(section, dict) else {}
+        if values.get("reference.file"):
+            return str(values["reference.file"])
+    return ""
 
 
 def _plain(value):
@@ -403,8 +439,9 @@ PARAMETERS = {  # name -> (default, descriptor)
                                 floating_point_range={"from_value": 0.0, "to_value": 60.0})),
     "image_every": (1, _descriptor("keep every k-th image",
                                    integer_range={"from_value": 1, "to_value": 1000, "step": 1})),
-    "image_format": ("raw", _descriptor("'raw' records images as they come; 'png' or 'jpeg' "
-                                        "as CompressedImage on <image topic>/compressed")),
+    "image_format": ("jpeg", _descriptor("'jpeg' (default) or 'png' records images as "
+                                         "CompressedImage on <image topic>/compressed; 'raw' "
+                                         "as they come (~30 MB per second at 640x480, 30 Hz)")),
     "jpeg_quality": (90, _descriptor("JPEG quality for image_format 'jpeg'",
                                      integer_range={"from_value": 0, "to_value": 100,
                                                     "step": 1})),
