@@ -109,6 +109,12 @@ GUIDANCE: dict[str, Guidance] = {
     "shutdown": Guidance(
         "the node was shut down (SIGINT or SIGTERM) during the run",
         "who stopped the node or its launch file"),
+    "pose_estimate_failed": Guidance(
+        "with `control.scheme: decoupled`, no pose of the taught points could be estimated "
+        "from the current view: too few matched features (at least 4), features nearly "
+        "collinear, or taught depths missing",
+        "`control.min_features` (>= 4); the taught reference has depths (`depth.source`); "
+        "the feature layout in the frames; `control.scheme: point` for such targets"),
     # headless episodes (vservo_node.episode) only
     "episode_timeout": Guidance(
         "the headless episode ended before the servo ended its run (the episode is shorter "
