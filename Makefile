@@ -5,7 +5,15 @@ PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
 ISOLATED := tools/isolated
 
-.PHONY: venv demo test test-core bench soak clean
+# ROS 2 tool checks (tests/install): colcon, rosdep, xmllint and ros2 launch on a second venv
+# with ROS 2's launch/ros2cli wheels from ../shared/ros2-tools (beside the repository, as CI lays
+# it out; ROS2_TOOLS=... to point elsewhere). Where the folder is absent they skip, saying so.
+ROS2_TOOLS ?= $(abspath ../shared/ros2-tools)
+export VSERVO_ROS2_TOOLS := $(ROS2_TOOLS)
+VENV_ROS2  := .venv-ros2
+ROS2_STAMP := $(VENV_ROS2)/.installed
+
+.PHONY: venv venv-ros2 demo test test-core test-install bench soak clean
 
 venv: $(STAMP)
 
@@ -16,17 +24,33 @@ $(STAMP): requirements.txt constraints.txt setup.py
 	$(PY) -m pip install --quiet --no-deps -e .
 	touch $(STAMP)
 
+venv-ros2: venv
+	@if [ -d "$(ROS2_TOOLS)/wheels/kilted" ]; then $(MAKE) --no-print-directory $(ROS2_STAMP); \
+	else echo "venv-ros2: $(ROS2_TOOLS) not found: the ROS 2 tool checks (tests/install) skip"; fi
+
+$(ROS2_STAMP): requirements.txt requirements-ros2-tools.txt constraints.txt $(wildcard $(ROS2_TOOLS)/wheels/kilted/*.whl)
+	rm -rf $(VENV_ROS2)
+	$(PYTHON) -m venv $(VENV_ROS2)
+	$(VENV_ROS2)/bin/python -m pip install --quiet --upgrade "pip>=24"
+	$(VENV_ROS2)/bin/python -m pip install --quiet -r requirements.txt -r requirements-ros2-tools.txt -c constraints.txt
+	$(VENV_ROS2)/bin/python -m pip install --quiet --no-deps $(ROS2_TOOLS)/wheels/kilted/*.whl
+	touch $@
+
 # The main job on the built-in simulated cell (sim node + controller over DDS, isolated).
 demo: venv
 	$(ISOLATED) $(PY) -m vservo_node.cli demo $(DEMO_ARGS)
 
 # The whole suite; ROS tests run inside a private network namespace (see DEVELOPERS.md).
-test: venv
+test: venv venv-ros2
 	$(ISOLATED) $(PY) -m pytest tests $(PYTEST_ARGS)
 
 # The suite without ROS processes (fast inner loop).
 test-core: venv
-	$(PY) -m pytest tests --ignore=tests/ros --ignore=tests/e2e $(PYTEST_ARGS)
+	$(PY) -m pytest tests --ignore=tests/ros --ignore=tests/e2e --ignore=tests/install $(PYTEST_ARGS)
+
+# Only the ROS 2 tool checks (colcon, rosdep, xmllint, ros2 launch).
+test-install: venv venv-ros2
+	$(ISOLATED) $(PY) -m pytest tests/install $(PYTEST_ARGS)
 
 # Ten minutes of repeated runs on the simulated cell: memory, timing, records (tools/soak.py).
 soak: venv
@@ -36,4 +60,4 @@ bench: venv
 	@for b in benchmarks/*.py; do echo "== $$b"; $(ISOLATED) $(PY) $$b || exit 1; done
 
 clean:
-	rm -rf $(VENV) build *.egg-info .pytest_cache
+	rm -rf $(VENV) $(VENV_ROS2) build *.egg-info .pytest_cache
