@@ -3,13 +3,16 @@ come with ros2node/ros2param, which the ROS 2 tool wheels do not include): wait 
 then print one JSON object with its publishers, subscriptions, services, enclave and the values
 of the parameters asked for.
 
-    python graph_probe.py /cell1/vservo [--params a.b c.d] [--publishes TOPIC ...] [--timeout S]
+    python graph_probe.py /cell1/vservo [--params a.b c.d] [--publishes TOPIC ...]
+                          [--message TOPIC] [--timeout S]
 
 ``--publishes`` also waits until the node's publishers include those topics (a node announces
-its endpoints a moment after its name). Exit 0 with the JSON; 1 with a message on timeout.
+its endpoints a moment after its name); ``--message`` until one message arrived on that topic
+(of the type the graph names, best-effort so any publisher matches). Exit 0 with the JSON; 1 with a message on timeout.
 Run it inside tools/isolated like every ROS process of the tests.
 """
 import argparse
+import importlib
 import json
 import sys
 import time
@@ -18,6 +21,7 @@ import rclpy
 from rcl_interfaces.srv import GetParameters
 from rclpy.node import Node
 from rclpy.parameter import parameter_value_to_python
+from rclpy.qos import qos_profile_sensor_data
 
 
 def main():
@@ -25,6 +29,7 @@ def main():
     parser.add_argument("node", help="fully qualified node name, e.g. /cell1/vservo")
     parser.add_argument("--params", nargs="*", default=[])
     parser.add_argument("--publishes", nargs="*", default=[])
+    parser.add_argument("--message", default=None)
     parser.add_argument("--timeout", type=float, default=60.0)
     args = parser.parse_args()
     namespace, _, name = args.node.rpartition("/")
@@ -51,6 +56,16 @@ def main():
 
     wait(f"{args.node} to publish {args.publishes}",
          lambda: set(args.publishes) <= set(publishers()))
+    if args.message:
+        wait(f"a publisher on {args.message}",
+             lambda: bool(probe.get_publishers_info_by_topic(args.message)))
+        type_name = probe.get_publishers_info_by_topic(args.message)[0].topic_type
+        package, _, message = type_name.split("/")
+        msg_class = getattr(importlib.import_module(f"{package}.msg"), message)
+        received = []
+        probe.create_subscription(msg_class, args.message, received.append,
+                                  qos_profile_sensor_data)
+        wait(f"a message on {args.message}", lambda: bool(received))
     out = {
         "publishers": publishers(),
         "subscriptions": dict(probe.get_subscriber_names_and_types_by_node(name, namespace)),

@@ -146,7 +146,8 @@ class Launch:
         self._out.close()
 
 
-def probe(ros2: Ros2, node: str, *, params=(), publishes=(), timeout=90.0) -> dict:
+def probe(ros2: Ros2, node: str, *, params=(), publishes=(), message=None,
+          timeout=90.0) -> dict:
     """tests/install/graph_probe.py against a running node (from the tool venv)."""
     import json
     command = [ros2.python(), str(Path(__file__).with_name("graph_probe.py")), node,
@@ -155,5 +156,7 @@ def probe(ros2: Ros2, node: str, *, params=(), publishes=(), timeout=90.0) -> di
         command += ["--params", *params]
     if publishes:
         command += ["--publishes", *publishes]
+    if message:
+        command += ["--message", message]
     proc = ros2.run(command, timeout=timeout + 30)
     return json.loads(proc.stdout.strip().splitlines()[-1])

@@ -88,9 +88,10 @@ def test_sim_cell_launch_scenario_clock_and_clean_stop(ros2, workspace):
         assert recorder["params"] == {
             "scenario": scenario.name,
             "output_dir": str(ros2.scratch / "ros_home" / "vservo" / "runs")}
-        # stopped once the cell runs (the controller has the simulated camera): a Ctrl-C during
-        # start-up lands in imports or the first render, which this test does not judge
-        launch.wait_for("[vservo]: camera model:", 120.0)
+        # stopped once the cell runs (an image went out): a Ctrl-C during start-up lands in
+        # imports or the first render, which this test does not judge
+        probe(ros2, f"/{interface.SIM_NODE}", message=f"/{interface.TOPIC_IMAGE}")
+        launch.wait_for("[vservo_recorder]: ready", 60.0)
         rc = launch.interrupt()
     finally:
         launch.kill()
