@@ -7,11 +7,13 @@
 - sim_cell.launch.py: `scenario:=` reaches the controller (target, URDF, camera rate, name of
   the taught reference) and the recorder, the simulator publishes /clock because the nodes
   follow it; a group SIGINT (Ctrl-C in a terminal) ends every process with exit code 0 and
-  without a traceback.
+  without a traceback; a run taught, enabled and started converges.
 """
+import json
 import re
+from pathlib import Path
 
-from ros2_helpers import ROOT, Launch, probe
+from ros2_helpers import ROOT, Launch, Ros2, probe
 from vservo_node import interface
 from vservo_node.ros.launch_support import COMMAND_TOPICS
 from vservo_node.sim import load_scenario
@@ -95,4 +97,35 @@ def test_sim_cell_launch_scenario_clock_and_clean_stop(ros2, workspace):
         rc = launch.interrupt()
     finally:
         launch.kill()
+    assert_stopped_cleanly(launch, rc, expected=3)
+
+
+def test_sim_cell_launch_converges_then_stops_cleanly(ros2, workspace, tmp_path):
+    """The documented flow end to end through `ros2 launch`: the reference taught at the
+    scenario's taught pose (as `vservo demo` teaches it: the taught view rendered and captured
+    offline, loaded with reference_file:=), every node on the simulator's clock (the default),
+    then enable + start over the controller's services; the run converges, the recorder's bag
+    lands under $ROS_HOME/vservo/runs, and a group SIGINT ends every process cleanly.
+    Convergence criteria as tests/e2e/test_converge.py (common practice, no source)."""
+    from vservo_node.ros.demo_run import teach
+    scenario = load_scenario("tray_offset")
+    reference = teach(scenario, tmp_path)
+    launch = Launch(ros2, workspace, ["sim_cell.launch.py", f"scenario:={scenario.name}",
+                                      f"reference_file:={reference}"],
+                    ros2.scratch / "sim_cell_run.log")
+    try:
+        proc = ros2.run(Ros2.sourced(workspace, "python",
+                                     str(Path(__file__).with_name("drive_run.py")),
+                                     scenario.name, "--timeout", "150"), timeout=200)
+        run = json.loads(proc.stdout.strip().splitlines()[-1])
+        rc = launch.interrupt()
+    finally:
+        launch.kill()
+    result = run["result"]
+    assert result["converged"], (result, launch.output()[-4000:])
+    assert result["final_rms_px"] < 0.5
+    assert result["final_pose_error_mm"] < 0.5 and result["final_pose_error_deg"] < 0.1, result
+    assert 0.0 < result["time_s"] < 20.0, result   # simulated seconds, not 0 (issue 12, point 3)
+    runs = ros2.scratch / "ros_home" / "vservo" / "runs"
+    assert Path(run["bag"]).parent == runs and (Path(run["bag"]) / "metadata.yaml").is_file()
     assert_stopped_cleanly(launch, rc, expected=3)
