@@ -125,7 +125,7 @@ def test_sim_cell_launch_converges_then_stops_cleanly(ros2, workspace, tmp_path)
     assert result["converged"], (result, launch.output()[-4000:])
     assert result["final_rms_px"] < 0.5
     assert result["final_pose_error_mm"] < 0.5 and result["final_pose_error_deg"] < 0.1, result
-    assert 0.0 < result["time_s"] < 20.0, result   # simulated seconds, not 0 (issue 12, point 3)
+    assert 0.0 < result["time_s"] < 20.0, result   # not halted at 0.00 s (issue 12, point 3)
     runs = ros2.scratch / "ros_home" / "vservo" / "runs"
     assert Path(run["bag"]).parent == runs and (Path(run["bag"]) / "metadata.yaml").is_file()
     assert_stopped_cleanly(launch, rc, expected=3)
