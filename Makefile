@@ -28,11 +28,16 @@ venv-ros2: venv
 	@if [ -d "$(ROS2_TOOLS)/wheels/kilted" ]; then $(MAKE) --no-print-directory $(ROS2_STAMP); \
 	else echo "venv-ros2: $(ROS2_TOOLS) not found: the ROS 2 tool checks (tests/install) skip"; fi
 
-$(ROS2_STAMP): requirements.txt requirements-ros2-tools.txt constraints.txt $(wildcard $(ROS2_TOOLS)/wheels/kilted/*.whl)
+# The project's packages come from .venv as hard links (the same pinned files, in seconds instead
+# of a second install; a plain copy where links are impossible), without .venv's editable
+# vservo_node: inside .venv-ros2 the package must come from a colcon install. Then the tools.
+$(ROS2_STAMP): $(STAMP) requirements-ros2-tools.txt $(wildcard $(ROS2_TOOLS)/wheels/kilted/*.whl)
 	rm -rf $(VENV_ROS2)
-	$(PYTHON) -m venv $(VENV_ROS2)
-	$(VENV_ROS2)/bin/python -m pip install --quiet --upgrade "pip>=24"
-	$(VENV_ROS2)/bin/python -m pip install --quiet -r requirements.txt -r requirements-ros2-tools.txt -c constraints.txt
+	$(PYTHON) -m venv --without-pip $(VENV_ROS2)
+	site=$$($(VENV_ROS2)/bin/python -c 'import sysconfig; print(sysconfig.get_paths()["purelib"])'); \
+	cp -al $(VENV)/lib/. $(VENV_ROS2)/lib/ 2>/dev/null || cp -a $(VENV)/lib/. $(VENV_ROS2)/lib/; \
+	rm -rf $$site/__editable__*vservo_node* $$site/vservo_node*.dist-info $$site/vservo_node*.egg-link
+	$(VENV_ROS2)/bin/python -m pip install --quiet -r requirements-ros2-tools.txt -c constraints.txt
 	$(VENV_ROS2)/bin/python -m pip install --quiet --no-deps $(ROS2_TOOLS)/wheels/kilted/*.whl
 	touch $@
 

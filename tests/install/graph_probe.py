@@ -4,10 +4,10 @@ then print one JSON object with its publishers, subscriptions, services, enclave
 of the parameters asked for.
 
     python graph_probe.py /cell1/vservo [--params a.b c.d] [--publishes TOPIC ...]
-                          [--message TOPIC] [--timeout S]
+                          [--subscribes TOPIC ...]                          [--message TOPIC] [--timeout S]
 
-``--publishes`` also waits until the node's publishers include those topics (a node announces
-its endpoints a moment after its name); ``--message`` until one message arrived on that topic
+``--publishes`` / ``--subscribes`` also wait until the node's publishers / subscriptions include
+those topics (a node announces its endpoints a moment after its name); ``--message`` until one message arrived on that topic
 (of the type the graph names, best-effort so any publisher matches). Exit 0 with the JSON; 1 with a message on timeout.
 Run it inside tools/isolated like every ROS process of the tests.
 """
@@ -29,6 +29,7 @@ def main():
     parser.add_argument("node", help="fully qualified node name, e.g. /cell1/vservo")
     parser.add_argument("--params", nargs="*", default=[])
     parser.add_argument("--publishes", nargs="*", default=[])
+    parser.add_argument("--subscribes", nargs="*", default=[])
     parser.add_argument("--message", default=None)
     parser.add_argument("--timeout", type=float, default=60.0)
     args = parser.parse_args()
@@ -54,8 +55,13 @@ def main():
     def publishers():
         return dict(probe.get_publisher_names_and_types_by_node(name, namespace))
 
+    def subscriptions():
+        return dict(probe.get_subscriber_names_and_types_by_node(name, namespace))
+
     wait(f"{args.node} to publish {args.publishes}",
          lambda: set(args.publishes) <= set(publishers()))
+    wait(f"{args.node} to subscribe to {args.subscribes}",
+         lambda: set(args.subscribes) <= set(subscriptions()))
     if args.message:
         wait(f"a publisher on {args.message}",
              lambda: bool(probe.get_publishers_info_by_topic(args.message)))
@@ -68,7 +74,7 @@ def main():
         wait(f"a message on {args.message}", lambda: bool(received))
     out = {
         "publishers": publishers(),
-        "subscriptions": dict(probe.get_subscriber_names_and_types_by_node(name, namespace)),
+        "subscriptions": subscriptions(),
         "services": dict(probe.get_service_names_and_types_by_node(name, namespace)),
         "enclave": next((e for n, ns, e in probe.get_node_names_and_namespaces_with_enclaves()
                          if (ns, n) == (namespace, name)), None),

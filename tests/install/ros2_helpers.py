@@ -146,7 +146,7 @@ class Launch:
         self._out.close()
 
 
-def probe(ros2: Ros2, node: str, *, params=(), publishes=(), message=None,
+def probe(ros2: Ros2, node: str, *, params=(), publishes=(), subscribes=(), message=None,
           timeout=90.0) -> dict:
     """tests/install/graph_probe.py against a running node (from the tool venv)."""
     import json
@@ -156,6 +156,8 @@ def probe(ros2: Ros2, node: str, *, params=(), publishes=(), message=None,
         command += ["--params", *params]
     if publishes:
         command += ["--publishes", *publishes]
+    if subscribes:
+        command += ["--subscribes", *subscribes]
     if message:
         command += ["--message", message]
     proc = ros2.run(command, timeout=timeout + 30)
