@@ -27,7 +27,8 @@ import pytest
 
 ROOT = Path(__file__).resolve().parents[2]
 TOOLS = Path(os.environ.get("VSERVO_ROS2_TOOLS") or ROOT.parent / "shared" / "ros2-tools")
-VENV = ROOT / ".venv-ros2"
+VENV = ROOT / ".venv-ros2"                # Kilted's stack: the project's pinned wheels
+VENV_JAZZY = ROOT / ".venv-ros2-jazzy"    # Jazzy's: ros-jazzy-rclpy 7.1.6, Fast DDS 2.14
 # Variables of the calling process's own ROS set-up that must not leak into the tools.
 SCRUBBED = ("_ROS_WHEELS_BOOTSTRAP_COMPLETE", "LD_LIBRARY_PATH", "PYTHONPATH", "PYTHONHOME",
             "VIRTUAL_ENV", "AMENT_PREFIX_PATH", "COLCON_PREFIX_PATH", "CMAKE_PREFIX_PATH",
@@ -35,8 +36,8 @@ SCRUBBED = ("_ROS_WHEELS_BOOTSTRAP_COMPLETE", "LD_LIBRARY_PATH", "PYTHONPATH", "
             "FASTDDS_DEFAULT_PROFILES_FILE", "FASTRTPS_DEFAULT_PROFILES_FILE")
 
 
-def tools_missing_reason() -> str | None:
-    if not (TOOLS / "wheels" / "kilted").is_dir():
+def tools_missing_reason(distro: str = "kilted") -> str | None:
+    if not (TOOLS / "wheels" / distro).is_dir():
         return (f"ROS 2 tool wheels not found at {TOOLS} (../shared/ros2-tools beside the "
                 "repository, or VSERVO_ROS2_TOOLS): colcon/rosdep/ros2 launch checks skipped")
     return None

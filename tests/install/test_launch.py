@@ -100,14 +100,16 @@ def test_sim_cell_launch_scenario_clock_and_clean_stop(ros2, workspace):
     assert_stopped_cleanly(launch, rc, expected=3)
 
 
-def test_sim_cell_launch_converges_then_stops_cleanly(ros2, workspace, tmp_path):
+def test_sim_cell_launch_converges_then_stops_cleanly(stack, tmp_path):
     """The documented flow end to end through `ros2 launch`: the reference taught at the
     scenario's taught pose (as `vservo demo` teaches it: the taught view rendered and captured
     offline, loaded with reference_file:=), every node on the simulator's clock (the default),
     then enable + start over the controller's services; the run converges, the recorder's bag
-    lands under $ROS_HOME/vservo/runs, and a group SIGINT ends every process cleanly.
+    lands under $ROS_HOME/vservo/runs, and a group SIGINT ends every process cleanly. On
+    Kilted's stack (the project's wheels) and on Jazzy's (rclpy 7.1.6, Fast DDS 2.14).
     Convergence criteria as tests/e2e/test_converge.py (common practice, no source)."""
     from vservo_node.ros.demo_run import teach
+    ros2, workspace = stack
     scenario = load_scenario("tray_offset")
     reference = teach(scenario, tmp_path)
     # The shipped controller file with input timeouts for a busy CI machine (a stall of the
