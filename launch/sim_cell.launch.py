@@ -10,12 +10,15 @@ Arguments:
   (``<scenario>_station``); the recorder names its bags after it.
 - ``controller_params`` (default config/vservo_sim.yaml), ``sim_params`` (default
   config/sim_cell.yaml): parameter files, keyed ``/**/<node>``.
-- ``use_sim_time`` (default true): every node follows the simulator's /clock, and the
-  simulator publishes it (its ``publish_clock`` follows this argument, so the clock is
-  there exactly when the nodes wait for it). Images, joint states, node clocks and recorded
-  log times are then all simulated time: a simulator slowed by a busy machine (or run with
-  ``real_time_factor`` other than 1, which needs the clock) stays consistent. false: wall
-  time throughout.
+- ``use_sim_time`` (default false): the simulator's ``publish_clock`` follows it, so /clock
+  is there exactly when the nodes wait for it. false (the default, what ``vservo demo`` and
+  the end-to-end tests run): stamps are wall time, and a simulator that falls behind on a busy
+  machine skips ahead instead of stamping ever later; this agrees with the controller's
+  supervisor, which times runs, timeouts and its follow check on the steady clock. true:
+  images, joint states, node clocks and recorded log times are simulated time (needed for
+  ``real_time_factor`` other than 1 or ``lock_step`` in ``sim_params``); the supervisor still
+  judges motion on the steady clock, so a simulator that cannot keep real time then looks
+  like an arm that does not follow (runs halt ``not_following``; measured under load).
 - ``reference_file``: a taught reference to load at start (empty: teach one with
   ``servo/capture_reference`` at the taught pose); ``reference_dir``: where taught references
   are written (default ``$ROS_HOME/vservo/references``, ROS_HOME defaulting to ~/.ros).
@@ -86,9 +89,9 @@ def generate_launch_description():
                               description="parameter file of the servo controller"),
         DeclareLaunchArgument("sim_params", default_value=os.path.join(config, "sim_cell.yaml"),
                               description="parameter file of the simulated cell"),
-        DeclareLaunchArgument("use_sim_time", default_value="true",
+        DeclareLaunchArgument("use_sim_time", default_value="false",
                               description="all nodes follow the simulator's /clock, which the "
-                                          "simulator then publishes"),
+                                          "simulator then publishes (default: wall time)"),
         DeclareLaunchArgument("reference_file", default_value="",
                               description="taught reference to load (empty: teach one)"),
         DeclareLaunchArgument("reference_dir", default_value=ros_home_folder("vservo", "references"),

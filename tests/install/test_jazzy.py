@@ -1,7 +1,8 @@
 """The package on ROS 2 Jazzy's Python stack (.venv-ros2-jazzy: ros-jazzy-rclpy 7.1.6, Fast DDS
 2.14, Jazzy's launch and ros2cli): colcon build gives the executables, and the shipped Fast DDS
 profile reaches Fast DDS 2.14, which reads FASTRTPS_DEFAULT_PROFILES_FILE only (issue 12, point
-6). The launch run on this stack is test_launch.py's convergence test, parametrized by stack.
+6). `ros2 launch` of the simulated cell on this stack: test_launch.py's start/stop test,
+parametrized by stack.
 """
 import textwrap
 

@@ -5,13 +5,13 @@
   (speed scale 0.2 and the permit, not the defaults 0.5 and off: its keys are `/**/vservo`),
   `enclave:=` reaches the node, use_sim_time defaults to false, references go under ROS_HOME.
 - sim_cell.launch.py: `scenario:=` reaches the controller (target, URDF, camera rate, name of
-  the taught reference) and the recorder, the simulator publishes /clock because the nodes
-  follow it; a group SIGINT (Ctrl-C in a terminal) ends every process with exit code 0 and
-  without a traceback; a run taught, enabled and started converges.
+  the taught reference) and the recorder; with use_sim_time:=true the simulator publishes
+  /clock because the nodes follow it; a group SIGINT (Ctrl-C in a terminal) ends every process with exit code 0 and
+  without a traceback; a run taught, enabled and started with the operator commands converges.
 """
 import json
 import re
-from pathlib import Path
+import time
 
 from ros2_helpers import ROOT, Launch, Ros2, probe
 from vservo_node import interface
@@ -65,10 +65,12 @@ def test_arm_launch_remaps_every_command_interface(ros2, workspace):
             launch.kill()
 
 
-def test_sim_cell_launch_scenario_clock_and_clean_stop(ros2, workspace):
+def test_sim_cell_launch_scenario_clock_and_clean_stop(stack):
+    """On Kilted's stack (the project's wheels) and on Jazzy's (rclpy 7.1.6, Fast DDS 2.14)."""
+    ros2, workspace = stack
     scenario = load_scenario("tray_tags_offset")
-    launch = Launch(ros2, workspace, ["sim_cell.launch.py", f"scenario:={scenario.name}"],
-                    ros2.scratch / "sim_cell.log")
+    launch = Launch(ros2, workspace, ["sim_cell.launch.py", f"scenario:={scenario.name}",
+                                      "use_sim_time:=true"], ros2.scratch / "sim_cell.log")
     try:
         controller = probe(ros2, f"/{interface.CONTROLLER_NODE}", subscribes=["/clock"], params=[
             "target.file", "robot.urdf_path", "io.camera_rate_hz", "reference.name",
@@ -100,18 +102,13 @@ def test_sim_cell_launch_scenario_clock_and_clean_stop(ros2, workspace):
     assert_stopped_cleanly(launch, rc, expected=3)
 
 
-def test_sim_cell_launch_converges_then_stops_cleanly(stack, tmp_path):
-    """The documented flow end to end through `ros2 launch`: the reference taught at the
-    scenario's taught pose (as `vservo demo` teaches it: the taught view rendered and captured
-    offline, loaded with reference_file:=), every node on the simulator's clock (the default),
-    then enable + start over the controller's services; the run converges, the recorder's bag
-    lands under $ROS_HOME/vservo/runs, and a group SIGINT ends every process cleanly. On
-    Kilted's stack (the project's wheels) and on Jazzy's (rclpy 7.1.6, Fast DDS 2.14).
-    Convergence criteria as tests/e2e/test_converge.py (common practice, no source)."""
-    from vservo_node.ros.demo_run import teach
-    ros2, workspace = stack
+def test_sim_cell_launch_converges_then_stops_cleanly(ros2, workspace, tmp_path):
+    """The README's flow end to end: `ros2 launch vservo_node sim_cell.launch.py`, then the
+    operator commands through `ros2 run vservo_node vservo ...`: teach at the taught pose (the
+    simulator moves there and back), enable, start and wait, on wall time (the default). The run converges (`start --wait` exits 0 only then), the recorder's
+    bag and result land under $ROS_HOME/vservo/runs, and a group SIGINT ends every process
+    cleanly. Convergence criteria as tests/e2e/test_converge.py (common practice, no source)."""
     scenario = load_scenario("tray_offset")
-    reference = teach(scenario, tmp_path)
     # The shipped controller file with input timeouts for a busy CI machine (a stall of the
     # simulator's 250 Hz joint states over 0.25 s halted a run here at a load average of 12):
     # this checks the launch path, tests/e2e the real-time margins.
@@ -122,22 +119,34 @@ def test_sim_cell_launch_converges_then_stops_cleanly(stack, tmp_path):
         text = text.replace(f"{name}: {value}", f"{name}: 1.0")
     controller_params.write_text(text)
     launch = Launch(ros2, workspace, ["sim_cell.launch.py", f"scenario:={scenario.name}",
-                                      f"reference_file:={reference}",
                                       f"controller_params:={controller_params}"],
                     ros2.scratch / "sim_cell_run.log")
+    steps = {}
     try:
-        proc = ros2.run(Ros2.sourced(workspace, "python",
-                                     str(Path(__file__).with_name("drive_run.py")),
-                                     scenario.name, "--timeout", "150"), timeout=200)
-        run = json.loads(proc.stdout.strip().splitlines()[-1])
+        launch.wait_for("[vservo_recorder]: ready", 120.0)
+        for step in (["teach", "--sim", "--timeout", "30"], ["enable", "--retry", "30"],
+                     ["start", "--retry", "10", "--wait", "--result-timeout", "120"]):
+            proc = ros2.run(Ros2.sourced(workspace, "ros2", "run", "vservo_node", "vservo",
+                                         *step), timeout=240, check=False)
+            steps[step[0]] = proc
+            assert proc.returncode == 0, (step, proc.stdout[-3000:], proc.stderr[-3000:],
+                                          launch.output()[-4000:])
+        runs = ros2.scratch / "ros_home" / "vservo" / "runs"
+        result_files = []
+        end = time.monotonic() + 60
+        while not result_files and time.monotonic() < end:
+            result_files = sorted(runs.glob(f"*_{scenario.name}/result.json"))
+            time.sleep(0.5)
         rc = launch.interrupt()
     finally:
         launch.kill()
-    result = run["result"]
-    assert result["converged"], (result, launch.output()[-4000:])
+    reference = ros2.scratch / "ros_home" / "vservo" / "references" / \
+        f"{scenario.name}_station.yaml"
+    assert reference.is_file(), steps["teach"].stdout   # taught under ROS_HOME, not the CWD
+    assert result_files, f"no result.json under {runs}"
+    result = json.loads(result_files[-1].read_text())
+    assert result["converged"], result
     assert result["final_rms_px"] < 0.5
     assert result["final_pose_error_mm"] < 0.5 and result["final_pose_error_deg"] < 0.1, result
     assert 0.0 < result["time_s"] < 20.0, result   # not halted at 0.00 s (issue 12, point 3)
-    runs = ros2.scratch / "ros_home" / "vservo" / "runs"
-    assert Path(run["bag"]).parent == runs and (Path(run["bag"]) / "metadata.yaml").is_file()
     assert_stopped_cleanly(launch, rc, expected=3)
