@@ -29,6 +29,10 @@ setup(
     # Python dependencies: see requirements.txt (pinned) for venv installs; on a ROS 2 install
     # they come from rosdep keys in package.xml.
     install_requires=["setuptools"],
+    # What colcon looks for to run `colcon test` with pytest (without it colcon falls back to
+    # unittest and finds no test), as ROS 2's ament_python package template declares it
+    # (tests_require is gone from setuptools >= 72).
+    extras_require={"test": ["pytest"]},
     zip_safe=True,
     maintainer="vservo_node maintainers",
     maintainer_email="vservo-maintainers@example.com",

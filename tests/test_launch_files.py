@@ -74,3 +74,25 @@ def test_launch_description_builds(path):  # pragma: no cover - needs a ROS 2 in
     spec.loader.exec_module(module)
     description = module.generate_launch_description()
     assert description.entities
+
+
+def test_command_remap_follows_the_selected_interface(tmp_path):
+    """arm.launch.py remaps `command:=` onto the topic of the interface the controller will
+    use: the launch argument, else the parameter file's value for the node in that namespace
+    (a `/**/vservo` key applies in any), else the parameter's default. The graph itself is
+    checked in tests/install (ros2 launch)."""
+    from vservo_node import interface, params
+    from vservo_node.ros.launch_support import COMMAND_TOPICS, command_interface
+    path = tmp_path / "arm.yaml"
+    path.write_text("/**/vservo:\n  ros__parameters:\n    io: {command_interface: tool_twist}\n"
+                    "/cell2/vservo:\n  ros__parameters:\n    io: {command_interface: joint_trajectory}\n")
+    assert command_interface(str(path), "") == "tool_twist"
+    assert command_interface(str(path), "cell1") == "tool_twist"
+    assert command_interface(str(path), "/cell2") == "joint_trajectory"
+    assert command_interface(str(path), "cell2", "camera_twist") == "camera_twist"
+    assert command_interface(str(tmp_path / "missing.yaml"), "") == \
+        params.BY_NAME["io.command_interface"].default
+    with pytest.raises(ValueError, match="expected one of"):
+        command_interface(str(path), "", "joint_effort")
+    assert set(COMMAND_TOPICS) == set(params.BY_NAME["io.command_interface"].choices)
+    assert COMMAND_TOPICS["joint_trajectory"] == interface.TOPIC_JOINT_TRAJECTORY_CMD

@@ -88,6 +88,53 @@ def test_check_command_on_files(tmp_path, capsys):
     assert "control.gain_near" in out and "limits.joint_acceleration: required" in out
 
 
+@pytest.mark.parametrize("key", ["/**/vservo", "/**", "vservo", "/vservo", "/cell1/vservo",
+                                 "/cell1/*"])
+def test_file_keys_that_reach_a_node_named_vservo(tmp_path, key, capsys):
+    """Every key form rcl applies to a node named vservo in some namespace is read (and
+    `vservo check` accepts it); the values are the file's."""
+    path = write(tmp_path, f"""
+        {key}:
+          ros__parameters:
+            limits: {{joint_acceleration: [2.0], joint_velocity_scale: 0.2}}
+            io: {{require_permit: true}}
+    """)
+    values = params.load_params_file(path)
+    assert values == {"limits.joint_acceleration": [2.0], "limits.joint_velocity_scale": 0.2,
+                      "io.require_permit": True}
+    assert main(["check", str(path)]) == 0, capsys.readouterr()
+
+
+def test_file_keys_for_other_nodes_are_not_read(tmp_path):
+    path = write(tmp_path, """
+        /**/vservo_sim:
+          ros__parameters: {scenario: tray_twist}
+        /cell1/other:
+          ros__parameters: {scenario: tray_twist}
+    """)
+    with pytest.raises(ValueError, match="no ros__parameters for node 'vservo'"):
+        params.load_params_file(path)
+
+
+def test_full_node_name_selects_its_namespace_in_file_order(tmp_path):
+    """A later matching section overrides an earlier one, whatever its key (what rclpy 9.1.2
+    does with such a file, measured)."""
+    path = write(tmp_path, """
+        /cell1/vservo:
+          ros__parameters: {control: {gain_near: 0.5}}
+        /**/vservo:
+          ros__parameters: {control: {gain_near: 0.9, gain_far: 0.3}}
+        /cell2/vservo:
+          ros__parameters: {control: {gain_near: 0.7}}
+    """)
+    assert params.load_params_file(path, "/cell1/vservo") == {"control.gain_near": 0.9,
+                                                              "control.gain_far": 0.3}
+    assert params.load_params_file(path, "/cell2/vservo")["control.gain_near"] == 0.7
+    assert params.load_params_file(path, "/cell3/vservo")["control.gain_near"] == 0.9
+    with pytest.raises(ValueError, match="several namespaces.*full name"):
+        params.load_params_file(path)   # which of cell1 and cell2 is meant?
+
+
 def test_readme_table_matches_the_schema():
     from pathlib import Path
     readme = (Path(__file__).resolve().parent.parent / "README.md").read_text()

@@ -11,6 +11,7 @@ is kept. While motion is enabled, entries marked ``tighten`` may only move in th
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -343,12 +344,39 @@ def _flatten_checked(tree: dict, path, where: str, prefix: str = "") -> dict[str
     return flat
 
 
+def _node_key_regex(key: str) -> re.Pattern:
+    """The fully qualified node names a parameter file's node key applies to, as rcl matches
+    them: a key without a leading '/' starts at the root ('vservo' is '/vservo'), '/**' stands
+    for any number of namespace tokens (none included), '/*' for exactly one token (ROS 2
+    documentation, "Understanding parameters", parameter file wildcards; from memory, and
+    tests/install checks that a node under a namespace takes a '/**/vservo' file's values)."""
+    key = key if key.startswith("/") else "/" + key
+    parts = re.split(r"(/\*\*|/\*)", key)
+    body = "".join({"/**": "(?:/[^/]+)*", "/*": "/[^/]+"}.get(part, re.escape(part))
+                   for part in parts)
+    return re.compile(body + r"\Z")
+
+
+def _namespace(key: str) -> str:
+    """Namespace part of a node key without wildcards: 'vservo' -> '/', '/a/vservo' -> '/a'."""
+    return "/" + key.strip("/").rpartition("/")[0]
+
+
 def load_params_file(path: str | Path, node_name: str = "vservo") -> dict[str, Any]:
-    """Read the ros__parameters of node_name (or of '/**') from a ROS 2 parameter file.
+    """Read the ros__parameters a node would take from a ROS 2 parameter file.
+
+    ``node_name``: a fully qualified name ('/cell1/vservo') takes every section whose key
+    applies to exactly that node ('/**', '/**/vservo', '/cell1/*', '/cell1/vservo'); a plain
+    name ('vservo', the default) takes the sections that apply to a node of that name in some
+    namespace ('/**', '/**/vservo', 'vservo', '/vservo', '/cell1/vservo', '/cell1/*'), and
+    refuses a file whose exact sections name several namespaces (ambiguous: give the full
+    name). Matching sections apply in file order, a later one overriding an earlier one, as
+    rclpy applies them (measured with rclpy 9.1.2: '/cell1/vservo' then '/**/vservo' leaves
+    the second's values).
 
     YamlFileError (a ValueError) naming the file and the key for anything but
-    ``{node: {ros__parameters: {name: value, ...}}}`` (see ``yaml_files.load_yaml``: size cap,
-    no anchors/aliases or tags).
+    ``{node: {ros__parameters: {name: value, ...}}}`` in a matching section (see
+    ``yaml_files.load_yaml``: size cap, no anchors/aliases or tags).
     """
     data = load_yaml(path)
     if data is None:
@@ -356,19 +384,33 @@ def load_params_file(path: str | Path, node_name: str = "vservo") -> dict[str, A
     if not isinstance(data, dict):
         raise YamlFileError(f"{path}: top level: expected a mapping of node names to "
                             f"ros__parameters, got {brief(data)}")
-    values: dict[str, Any] = {}
-    for key in ("/**", node_name, "/" + node_name):
-        if key not in data:
+    short = node_name.rstrip("/").rpartition("/")[2]
+    matched = []
+    for key, section in data.items():
+        key = str(key)
+        if node_name.startswith("/"):
+            hit = _node_key_regex(key).match(node_name) is not None
+        else:
+            hit = key.rstrip("/").rpartition("/")[2] in (short, "*", "**")
+        if not hit:
             continue
-        section = data[key]
         if not isinstance(section, dict) or not isinstance(section.get("ros__parameters"), dict):
             raise YamlFileError(f"{path}: {key}: expected a mapping with 'ros__parameters' (a "
                                 f"mapping of parameter names to values), got {brief(section)}")
-        values.update(_flatten_checked(section["ros__parameters"], path,
+        matched.append(key)
+    exact = [k for k in matched if "*" not in k]
+    namespaces = sorted({_namespace(k) for k in exact})
+    if len(namespaces) > 1:
+        raise YamlFileError(f"{path}: sections for node '{node_name}' in several namespaces "
+                            f"({', '.join(exact)}): give the node's full name, e.g. "
+                            f"{namespaces[-1].rstrip('/')}/{short}")
+    values: dict[str, Any] = {}
+    for key in matched:
+        values.update(_flatten_checked(data[key]["ros__parameters"], path,
                                        f"{key}.ros__parameters"))
     if not values and data:
-        raise YamlFileError(f"{path}: no ros__parameters for node '{node_name}' or '/**' "
-                            f"(found sections: {brief(', '.join(map(str, data)))})")
+        raise YamlFileError(f"{path}: no ros__parameters for node '{node_name}' (keys such as "
+                            f"/**/{short}, /**, {short}; found: {brief(', '.join(map(str, data)))})")
     return values
 
 

@@ -47,7 +47,7 @@ def controller_values(extra: dict | None = None) -> dict:
     """The controller's parameter values by schema name: config/vservo_sim.yaml with
     ``extra`` (nested like the file) over it; what the tests read limits and timeouts from."""
     doc = yaml.safe_load((config_dir() / "vservo_sim.yaml").read_text())
-    nested = doc["vservo"]["ros__parameters"]
+    nested = doc["/**/vservo"]["ros__parameters"]
     for section, entries in (extra or {}).items():
         nested.setdefault(section, {}).update(entries)
     return {f"{s}.{k}": v for s, entries in nested.items() for k, v in entries.items()}
@@ -216,7 +216,7 @@ class Cell:
         reference = self.reference = demo_run.teach(self.scenario, folder)
         overrides = demo_run.controller_overrides(self.scenario, reference, folder,
                                                   spec.extra_dict())
-        self.values = controller_values(yaml.safe_load(overrides.read_text())["vservo"]
+        self.values = controller_values(yaml.safe_load(overrides.read_text())["/**/vservo"]
                                         ["ros__parameters"])
         if self.sim is None:
             remap = ["-r", f"{itf.TOPIC_IMAGE}:={RELAY_IN}"] if spec.relay else []

@@ -84,5 +84,5 @@ def stop_sim(proc):
 
 def config_scenario():
     """The scenario named in config/sim_cell.yaml (what the node loads by default)."""
-    params = yaml.safe_load(CONFIG.read_text())["vservo_sim"]["ros__parameters"]
+    params = yaml.safe_load(CONFIG.read_text())["/**/vservo_sim"]["ros__parameters"]
     return load_scenario(params["scenario"])

@@ -1,4 +1,5 @@
 """The shared-memory DDS profile and the process harness, with real processes."""
+import subprocess
 import sys
 import textwrap
 import xml.etree.ElementTree as ET
@@ -9,21 +10,75 @@ from rclpy.serialization import serialize_message
 from sensor_msgs.msg import Image
 
 from vservo_node.ros import convert, dds, harness, qos
+from vservo_node.ros.dds import PROFILE_VARIABLES
 
 NS = {"dds": "http://www.eprosima.com"}
 
 
 def test_profile_only_when_user_has_none():
-    env = {}
-    path = dds.use_shm_profile(env)
-    assert path.is_file() and env == {"FASTDDS_DEFAULT_PROFILES_FILE": str(path)}
+    """The variable(s) each Fast DDS reads: FASTRTPS_DEFAULT_PROFILES_FILE for Fast DDS 2 (Jazzy
+    ships 2.14), FASTDDS_DEFAULT_PROFILES_FILE for Fast DDS 3 (eProsima, Fast DDS documentation,
+    "XML profiles" / "Environment variables", 2.x and 3.x editions)."""
+    for major, expected in ((2, PROFILE_VARIABLES), (None, PROFILE_VARIABLES),
+                            (3, ("FASTDDS_DEFAULT_PROFILES_FILE",))):
+        env = {}
+        path = dds.use_shm_profile(env, major=major)
+        assert path.is_file() and env == dict.fromkeys(expected, str(path)), major
     for user_choice in ({"FASTDDS_DEFAULT_PROFILES_FILE": "/mine.xml"},
                         {"FASTRTPS_DEFAULT_PROFILES_FILE": "/mine.xml"},
                         {"RMW_IMPLEMENTATION": "rmw_cyclonedds_cpp"}):
-        env = dict(user_choice)
-        assert dds.use_shm_profile(env) is None and env == user_choice
-    env = {"RMW_IMPLEMENTATION": "rmw_fastrtps_cpp"}
-    assert dds.use_shm_profile(env) == path
+        for major in (2, 3):
+            env = dict(user_choice)
+            assert dds.use_shm_profile(env, major=major) is None and env == user_choice
+    env = {"RMW_IMPLEMENTATION": "rmw_fastrtps_cpp", "FASTRTPS_DEFAULT_PROFILES_FILE": ""}
+    assert dds.use_shm_profile(env, major=2) == path   # set but empty: nobody chose a file
+    assert env["FASTRTPS_DEFAULT_PROFILES_FILE"] == env["FASTDDS_DEFAULT_PROFILES_FILE"] == str(path)
+
+
+def test_fast_dds_version_from_the_wheels_or_the_distribution(monkeypatch):
+    """This venv's wheels carry Fast DDS 3 (ros-fastdds, Kilted's stack); without wheels a
+    sourced install's ROS_DISTRO tells."""
+    from importlib import metadata
+    assert dds.fast_dds_major({}) == int(metadata.version("ros-fastdds").split(".")[0]) == 3
+
+    def missing(name):
+        raise metadata.PackageNotFoundError(name)
+    monkeypatch.setattr(dds.metadata, "version", missing)
+    assert dds.fast_dds_major({"ROS_DISTRO": "jazzy"}) == 2
+    assert dds.fast_dds_major({"ROS_DISTRO": "kilted"}) == 3
+    assert dds.fast_dds_major({}) is None
+
+
+SEGMENT_PROBE = textwrap.dedent("""
+    import os, sys, rclpy
+    from vservo_node.ros import dds
+    if sys.argv[1] == "profile":
+        dds.use_shm_profile()
+    rclpy.init()
+    node = rclpy.create_node("segment_probe")
+    maps = open("/proc/self/maps").read().split()
+    segments = {w for w in maps if w.startswith("/dev/shm/fastdds_") or w.startswith("/dev/shm/fastrtps_")}
+    print(max((os.path.getsize(s) for s in segments if os.path.exists(s)), default=0))
+    node.destroy_node()
+    rclpy.shutdown()
+""")
+
+
+def test_profile_reaches_fast_dds():
+    """The profile really applies: the largest shared-memory segment this process maps is the
+    profile's 32 MiB (plus Fast DDS's bookkeeping) with it, Fast DDS's 512 KiB default without
+    it; no deprecation warning about the variable name."""
+    sizes = {}
+    for mode in ("profile", "none"):
+        env = harness.child_environment()
+        for name in PROFILE_VARIABLES:
+            env.pop(name, None)
+        proc = subprocess.run([sys.executable, "-c", SEGMENT_PROBE, mode], env=env,
+                              capture_output=True, text=True, timeout=60)
+        assert proc.returncode == 0, proc.stderr
+        assert "deprecated" not in proc.stderr, proc.stderr
+        sizes[mode] = int(proc.stdout.split()[-1])
+    assert sizes["profile"] >= 32 * 2**20 > 2**20 > sizes["none"], sizes
 
 
 def test_segment_holds_full_hd_frames():

@@ -66,18 +66,16 @@ def teach(scenario, folder: Path) -> Path:
     return save_reference(reference, folder / f"{scenario.name}_station.yaml")
 
 
-def controller_overrides(scenario, reference_file: Path, folder: Path,
-                         extra: dict | None = None) -> Path:
-    """A parameter file layered over config/vservo_sim.yaml for this scenario: arm, target,
-    reference, camera rate, the believed hand-eye when it differs from the URDF's, the
-    scenario's ``controller`` entries, then ``extra`` (nested like the file:
-    ``{"control": {"gain_near": 1.0}}``) over those."""
+def scenario_controller_params(scenario) -> dict:
+    """The controller parameters a scenario fixes, nested like a parameter file: arm (URDF and
+    frames), target, camera rate, the believed hand-eye when it differs from the URDF's, and the
+    scenario's own ``controller`` entries.
+    Used by ``controller_overrides`` and by launch/sim_cell.launch.py."""
     values = {
         "robot": {"urdf_path": str(scenario.urdf_path), "base_frame": scenario.base_frame,
                   "tool_frame": scenario.tool_frame, "camera_frame": scenario.camera_frame},
         "target": {"file": str(scenario.target.source) if getattr(scenario.target, "source", None)
                    else scenario.target.name},
-        "reference": {"file": str(reference_file)},
         "io": {"camera_rate_hz": float(scenario.fps)},
     }
     T_belief = scenario.T_tool_camera_belief
@@ -90,10 +88,21 @@ def controller_overrides(scenario, reference_file: Path, folder: Path,
             values.setdefault(section, {})[leaf] = value
         else:
             values[name] = value
+    return values
+
+
+def controller_overrides(scenario, reference_file: Path, folder: Path,
+                         extra: dict | None = None) -> Path:
+    """A parameter file layered over config/vservo_sim.yaml for this scenario
+    (``scenario_controller_params``) and the taught reference, then ``extra`` (nested like the
+    file: ``{"control": {"gain_near": 1.0}}``) over those. Keyed ``/**/vservo`` like the
+    shipped file, so rcl merges the two sections in file order and these values win."""
+    values = scenario_controller_params(scenario)
+    values["reference"] = {"file": str(reference_file)}
     for section, entries in (extra or {}).items():
         values.setdefault(section, {}).update(entries)
     path = folder / "controller_overrides.yaml"
-    path.write_text(dump_yaml({"vservo": {"ros__parameters": values}}))
+    path.write_text(dump_yaml({"/**/vservo": {"ros__parameters": values}}))
     return path
 
 

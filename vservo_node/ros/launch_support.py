@@ -1,0 +1,49 @@
+"""Helpers the launch files share (launch/arm.launch.py, launch/sim_cell.launch.py).
+
+Importable without the launch packages (only ``ros_home_folder`` needs them, on call), so the
+parts that decide something are tested in a plain venv too (tests/test_launch_files.py).
+"""
+from __future__ import annotations
+
+import os
+
+from vservo_node import interface, params
+
+# The topic each command interface publishes on (what ``command:=`` remaps).
+COMMAND_TOPICS = {"joint_velocity": interface.TOPIC_JOINT_VELOCITY_CMD,
+                  "joint_trajectory": interface.TOPIC_JOINT_TRAJECTORY_CMD,
+                  "tool_twist": interface.TOPIC_TWIST_CMD,
+                  "camera_twist": interface.TOPIC_TWIST_CMD}
+
+
+def ros_home_folder(*parts):
+    """Substitution for $ROS_HOME/<parts>, ROS_HOME defaulting to ~/.ros as ROS 2's tools take
+    it: output folders that do not depend on the directory launch was started from."""
+    from launch.substitutions import EnvironmentVariable, PathJoinSubstitution
+    home = EnvironmentVariable("ROS_HOME",
+                               default_value=os.path.join(os.path.expanduser("~"), ".ros"))
+    return PathJoinSubstitution([home, *parts])
+
+
+def node_fqn(namespace: str, name: str) -> str:
+    """'/cell1/vservo' from ('cell1' or '/cell1/', 'vservo'); '/vservo' without a namespace."""
+    return "/" + "/".join(p for p in (namespace.strip("/"), name) if p)
+
+
+def command_interface(params_file: str, namespace: str, override: str = "") -> str:
+    """The command interface the controller will use: ``override`` when given, else the
+    parameter file's value for the node /<namespace>/vservo, else the parameter's default.
+    ValueError naming the choices when it is none of COMMAND_TOPICS; an unreadable file counts
+    as not setting it (the node reports the file itself)."""
+    kind = override
+    if not kind:
+        try:
+            values = params.load_params_file(params_file,
+                                             node_fqn(namespace, interface.CONTROLLER_NODE))
+        except (OSError, ValueError):
+            values = {}
+        kind = values.get("io.command_interface",
+                          params.BY_NAME["io.command_interface"].default)
+    if kind not in COMMAND_TOPICS:
+        raise ValueError(f"command_interface {kind!r}: expected one of {', '.join(COMMAND_TOPICS)}")
+    return kind
