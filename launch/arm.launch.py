@@ -62,7 +62,10 @@ def _nodes(context):
                   remappings=remaps, ros_arguments=ros_arguments)]
     if arg("record").lower() in ("true", "1", "yes"):
         nodes.append(Node(package=PACKAGE, executable="vservo_recorder",
-                          name=interface.RECORDER_NODE, output="screen", namespace=namespace,
+                          name=interface.RECORDER_NODE,
+               # the recorder closes its bag and writes the report of a run that just ended
+               # on SIGINT: up to ~10 s on a busy machine, longer than launch's default 5 s
+               sigterm_timeout="20", output="screen", namespace=namespace,
                           parameters=[{"scenario": "live", "output_dir": arg("output_dir"),
                                        "use_sim_time": use_sim_time}],
                           remappings=remaps, ros_arguments=ros_arguments))

@@ -72,6 +72,9 @@ def _nodes(context):
              output="screen", parameters=[arg("controller_params"), controller],
              ros_arguments=ros_arguments),
     ] + ([Node(package=PACKAGE, executable="vservo_recorder", name=interface.RECORDER_NODE,
+               # the recorder closes its bag and writes the report of a run that just ended
+               # on SIGINT: up to ~10 s on a busy machine, longer than launch's default 5 s
+               sigterm_timeout="20",
                output="screen",
                parameters=[{"scenario": scenario.name, "output_dir": arg("output_dir"),
                             "use_sim_time": use_sim_time}],

@@ -167,6 +167,9 @@ SCHEMA: tuple[Param, ...] = (
     _p("io.image_rectified", bool, False, "the image topic carries rectified images "
        "(image_rect): use camera_info's P and no distortion, never undistort twice"),
     _p("io.compressed_image", bool, False, "subscribe to sensor_msgs/CompressedImage"),
+    _p("io.sim_truth", bool, False, "subscribe to a simulated cell's ground truth (sim/"
+       "camera_pose_truth, sim/taught_camera_pose) for the true pose error in the run result; "
+       "simulated cells only"),
     _p("io.publish_overlay", bool, False, "publish an overlay image of detections and errors"),
 )
 

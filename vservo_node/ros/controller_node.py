@@ -32,7 +32,7 @@ Inputs (relative names, remap them; ``vservo_node.interface``)
     parameter, else the ``robot_description`` topic (std_msgs/String, transient local).
     ``cell/speed_scale`` (std_msgs/Float64, clipped to [0, 1]) scales every speed limit.
     ``cell/motion_permit`` (std_msgs/Bool heartbeat) when ``io.require_permit``.
-    ``sim/camera_pose_truth`` and ``sim/taught_camera_pose`` (simulated cell only) fill the
+    ``sim/camera_pose_truth`` and ``sim/taught_camera_pose`` (with ``io.sim_truth`` only) fill the
     pose error of the run result.
     Image time = header stamp + ``io.camera_time_offset_s``. The last second of joint states is
     kept and each image is evaluated at the joints interpolated at its time.
@@ -189,7 +189,7 @@ from vservo_node.vision.reference import load_reference, reference_path, save_re
 from vservo_node.vision.targets import load_target
 
 # Parameters the node is built around (publishers, subscriptions, the arm model).
-READ_ONLY = frozenset({
+READ_ONLY = frozenset({"io.sim_truth",
     "robot.urdf_path", "robot_description", "robot.base_frame", "robot.tool_frame",
     "robot.camera_frame", "robot.hand_eye", "robot.tool_point", "robot.min_joints",
     "io.command_interface", "io.command_joint_order", "io.output_rate_hz",
@@ -1379,10 +1379,11 @@ class ControllerNode(Node):
         self.create_subscription(Float64, itf.TOPIC_SPEED_SCALE, self._on_speed_scale,
                                  qos.STATE_IN)
         self.create_subscription(Bool, itf.TOPIC_MOTION_PERMIT, self._on_permit, qos.STATE_IN)
-        self.create_subscription(PoseStamped, itf.TOPIC_SIM_CAMERA_POSE_TRUTH,
-                                 functools.partial(self._on_truth, "camera"), qos.STATE)
-        self.create_subscription(PoseStamped, itf.TOPIC_SIM_TAUGHT_POSE,
-                                 functools.partial(self._on_truth, "taught"), qos.LATCHED)
+        if v["io.sim_truth"]:   # a simulated cell's ground truth, never on a real arm
+            self.create_subscription(PoseStamped, itf.TOPIC_SIM_CAMERA_POSE_TRUTH,
+                                     functools.partial(self._on_truth, "camera"), qos.STATE)
+            self.create_subscription(PoseStamped, itf.TOPIC_SIM_TAUGHT_POSE,
+                                     functools.partial(self._on_truth, "taught"), qos.LATCHED)
 
     def _now(self) -> float:
         """Node time (ROS time; simulated with use_sim_time), seconds: stamps of what the node
