@@ -23,7 +23,8 @@ from hypothesis import strategies as st
 from scipy.spatial.transform import Rotation
 
 from vservo_node.control import frames
-from vservo_node.control.pose_error import (PoseErrorEstimator, disagreement, first_order,
+from vservo_node.control.pose_error import (PoseErrorEstimator, PoseEstimate, PoseTolerance,
+                                            PoseWindow, disagreement, first_order,
                                             from_homography, from_model, homography, plane_of,
                                             pose_from_model, solve_known_plane)
 
@@ -341,3 +342,68 @@ def test_pose_from_model_refuses_a_pose_behind_the_camera_or_bad_models():
         pose_from_model(xy, PLATE[:, :2])
     with pytest.raises(ValueError, match="collinear"):
         pose_from_model(xy, np.column_stack([np.linspace(0, 0.1, 5), np.zeros(5), np.zeros(5)]))
+
+
+# ----------------------------------------------------------------------------- dwell window
+def _estimate(t_mm, rotvec_deg):
+    return PoseEstimate("pnp", True, _pose(rotvec_deg, np.asarray(t_mm) * 1e-3))
+
+
+def test_window_keeps_the_last_span_and_averages_it():
+    w = PoseWindow(0.3)
+    rng = np.random.default_rng(2)
+    truth_mm, truth_deg = np.array([0.3, -0.2, 0.1]), np.array([0.0, 0.0, 0.05])
+    kept = []
+    for k in range(40):                       # 30 frames/s for 1.3 s
+        t = k / 30.0
+        noise_t, noise_r = rng.normal(0, 0.2, 3), rng.normal(0, 0.02, 3)
+        w.add(t, _estimate(truth_mm + noise_t, truth_deg + noise_r))
+        kept.append((t, truth_mm + noise_t, truth_deg + noise_r))
+    inside = [(tm, r) for t, tm, r in kept if t >= kept[-1][0] - 0.3 - 1e-9]
+    assert len(w) == len(inside) == 10
+    s = w.summary()
+    mean_t = np.mean([tm for tm, _ in inside], axis=0)
+    # translations: the arithmetic mean (numpy) and the RMS distance from it
+    assert s.mm == pytest.approx(np.linalg.norm(mean_t), rel=1e-9)
+    spread = np.sqrt(np.mean(np.sum((np.array([tm for tm, _ in inside]) - mean_t) ** 2, axis=1)))
+    assert s.spread_mm == pytest.approx(spread, rel=1e-9)
+    # rotations this small: the chordal mean is the mean rotation vector to well below 1e-4 deg
+    mean_r = np.mean([r for _, r in inside], axis=0)
+    assert s.deg == pytest.approx(np.linalg.norm(mean_r), abs=1e-4)
+    assert s.span_s == pytest.approx(0.3) and s.n == 10 and s.n_invalid == 0
+    assert math.isnan(s.check_mm)
+
+
+def test_window_judges_the_tolerance_parts_it_is_given():
+    w = PoseWindow(0.2)
+    for k in range(7):
+        w.add(k / 30.0, _estimate([0.4, 0.0, 0.0], [0.0, 0.08, 0.0]))
+    s = w.summary()
+    assert s.within(PoseTolerance(0.5, 0.1)) and s.within(PoseTolerance(0.5, 0.0))
+    assert not s.within(PoseTolerance(0.3, 0.1)) and not s.within(PoseTolerance(0.5, 0.05))
+    assert s.within(PoseTolerance(0.0, 0.1)) and not PoseTolerance().active
+    # an invalid estimate in the window: no judgement on it
+    w.add(7 / 30.0, PoseEstimate("pnp", False, reason="too few points"))
+    assert w.summary().n_invalid == 1 and not w.summary().within(PoseTolerance(5.0, 5.0))
+    # ... until it has left the window
+    for k in range(8, 16):
+        w.add(k / 30.0, _estimate([0.4, 0.0, 0.0], [0.0, 0.08, 0.0]))
+    assert w.summary().within(PoseTolerance(0.5, 0.1))
+    # time going backwards starts the window over
+    w.add(0.0, _estimate([1.0, 0.0, 0.0], [0.0, 0.0, 0.0]))
+    assert len(w) == 1 and w.summary().mm == pytest.approx(1.0)
+    with pytest.raises(ValueError, match="must be finite"):
+        PoseTolerance(-0.1, 0.0)
+
+
+def test_window_reports_the_first_order_cross_check():
+    T_true = DISPLACEMENTS["stop"]
+    xy_c, xy_t, _ = _views(T_true)
+    est = PoseErrorEstimator(xy_t, model_points=PLATE)
+    w = PoseWindow(0.3)
+    for k in range(10):
+        w.add(k / 30.0, est.estimate(xy_c), est.first_order(xy_c))
+    s = w.summary()
+    mm, deg = disagreement(est.estimate(xy_c), est.first_order(xy_c))
+    assert s.check_mm == pytest.approx(mm, abs=1e-9) and s.check_deg == pytest.approx(deg, abs=1e-9)
+    assert s.check_mm < 0.02 and s.check_deg < 0.005     # second order at the stop

@@ -453,3 +453,106 @@ class PoseErrorEstimator:
             return first_order(xy_now, self.xy_taught[sel], Z)
         except ValueError as exc:
             return invalid("first_order", str(exc))
+
+
+# ----------------------------------------------------------------------------- dwell average
+@dataclass(frozen=True)
+class PoseTolerance:
+    """An arrival requirement in task units: the camera within ``mm`` (translation) and ``deg``
+    (rotation) of the taught pose; 0 leaves that part out."""
+    mm: float = 0.0
+    deg: float = 0.0
+
+    def __post_init__(self) -> None:
+        for name in ("mm", "deg"):
+            value = getattr(self, name)
+            if not (math.isfinite(value) and value >= 0):
+                raise ValueError(f"pose tolerance {name} must be finite and >= 0 (0 = not "
+                                 f"used), got {value!r}")
+
+    @property
+    def active(self) -> bool:
+        return self.mm > 0 or self.deg > 0
+
+
+@dataclass(frozen=True)
+class WindowSummary:
+    """The estimates of one window: ``n`` valid ones (``n_invalid`` others); ``mm`` and ``deg``
+    the translation and rotation of their mean displacement (translations averaged, rotations
+    by their chordal mean: SciPy ``Rotation.mean``); ``spread_mm`` and ``spread_deg`` the RMS
+    distance of the single estimates from that mean (the single-frame scatter; the mean's own
+    uncertainty is about spread / sqrt(n) for independent frames); ``check_mm`` and
+    ``check_deg`` the disagreement of the mean with the mean first-order estimate (NaN when
+    none was added); ``span_s`` the time between the first and last estimate."""
+    n: int = 0
+    n_invalid: int = 0
+    mm: float = math.nan
+    deg: float = math.nan
+    spread_mm: float = math.nan
+    spread_deg: float = math.nan
+    check_mm: float = math.nan
+    check_deg: float = math.nan
+    span_s: float = 0.0
+
+    def within(self, tolerance: PoseTolerance) -> bool:
+        """True when every estimate was valid and the mean is inside ``tolerance`` (the parts
+        it uses)."""
+        if self.n == 0 or self.n_invalid:
+            return False
+        return ((tolerance.mm <= 0 or self.mm <= tolerance.mm)
+                and (tolerance.deg <= 0 or self.deg <= tolerance.deg))
+
+
+def _mean_displacement(estimates):
+    """(T, spread_mm, spread_deg) of valid estimates: mean translation, chordal-mean rotation."""
+    t = np.array([e.T_taught_current[:3, 3] for e in estimates])
+    rot = Rotation.from_matrix(np.array([e.T_taught_current[:3, :3] for e in estimates]))
+    t_mean, r_mean = t.mean(axis=0), rot.mean()
+    spread_m = math.sqrt(float(np.mean(np.sum((t - t_mean) ** 2, axis=1))))
+    spread_rad = math.sqrt(float(np.mean((r_mean.inv() * rot).magnitude() ** 2)))
+    return frames.transform(r_mean.as_matrix(), t_mean), 1e3 * spread_m, math.degrees(spread_rad)
+
+
+class PoseWindow:
+    """The pose-error estimates of the last ``span_s`` seconds (the arrival dwell), for judging
+    a tolerance on their mean rather than on one noisy frame. ``add`` once per frame with the
+    frame's time; ``summary`` describes what the window holds."""
+
+    def __init__(self, span_s: float):
+        if not (math.isfinite(span_s) and span_s >= 0):
+            raise ValueError(f"window span must be finite and >= 0 s, got {span_s!r}")
+        self.span_s = float(span_s)
+        self._items: list = []    # (t, estimate, first-order estimate or None)
+
+    def clear(self) -> None:
+        self._items.clear()
+
+    def __len__(self) -> int:
+        return len(self._items)
+
+    def add(self, t: float, estimate: PoseEstimate, check: PoseEstimate | None = None) -> None:
+        """Add the estimate of the frame at time ``t`` (s) and optionally its first-order
+        cross-check; estimates older than ``t - span_s`` leave the window."""
+        if self._items and t < self._items[-1][0]:
+            self._items.clear()    # time went backwards: start over
+        self._items.append((float(t), estimate, check))
+        start = t - self.span_s - 1e-9
+        while self._items and self._items[0][0] < start:
+            self._items.pop(0)
+
+    def summary(self) -> WindowSummary:
+        valid = [e for _, e, _ in self._items if e.valid]
+        n_invalid = len(self._items) - len(valid)
+        if not valid:
+            return WindowSummary(0, n_invalid)
+        T, spread_mm, spread_deg = _mean_displacement(valid)
+        moved, turned = frames.pose_error(np.eye(4), T)
+        check_mm = check_deg = math.nan
+        checks = [c for _, _, c in self._items if c is not None and c.valid]
+        if checks:
+            T_check = _mean_displacement(checks)[0]
+            check_m, check_rad = frames.pose_error(T, T_check)
+            check_mm, check_deg = 1e3 * check_m, math.degrees(check_rad)
+        return WindowSummary(len(valid), n_invalid, 1e3 * moved, math.degrees(turned),
+                             spread_mm, spread_deg, check_mm, check_deg,
+                             self._items[-1][0] - self._items[0][0])
