@@ -379,6 +379,7 @@ def test_window_judges_the_tolerance_parts_it_is_given():
     for k in range(7):
         w.add(k / 30.0, _estimate([0.4, 0.0, 0.0], [0.0, 0.08, 0.0]))
     s = w.summary()
+    assert s.bound_mm == pytest.approx(0.4) and s.spread_mm == pytest.approx(0.0, abs=1e-12)
     assert s.within(PoseTolerance(0.5, 0.1)) and s.within(PoseTolerance(0.5, 0.0))
     assert not s.within(PoseTolerance(0.3, 0.1)) and not s.within(PoseTolerance(0.5, 0.05))
     assert s.within(PoseTolerance(0.0, 0.1)) and not PoseTolerance().active
@@ -407,3 +408,20 @@ def test_window_reports_the_first_order_cross_check():
     mm, deg = disagreement(est.estimate(xy_c), est.first_order(xy_c))
     assert s.check_mm == pytest.approx(mm, abs=1e-9) and s.check_deg == pytest.approx(deg, abs=1e-9)
     assert s.check_mm < 0.02 and s.check_deg < 0.005     # second order at the stop
+
+
+def test_a_noisy_mean_must_clear_the_tolerance_by_its_uncertainty():
+    # mean 0.4 mm, single-frame spread ~0.3 mm over 10 frames: the mean's standard error is
+    # ~0.1 mm, so 0.4 + 2 x 0.1 mm is not inside 0.5 mm although the mean is.
+    rng = np.random.default_rng(8)
+    w = PoseWindow(0.3)
+    offsets = rng.normal(0, 0.3 / math.sqrt(3), (10, 3))
+    offsets -= offsets.mean(axis=0)                # exact mean 0.4 mm along x
+    for k, o in enumerate(offsets):
+        w.add(k / 30.0, _estimate(np.array([0.4, 0, 0]) + o, [0, 0, 0]))
+    s = w.summary()
+    assert s.mm == pytest.approx(0.4, abs=1e-9)
+    se = s.spread_mm / math.sqrt(10)
+    assert s.bound_mm == pytest.approx(0.4 + 2 * se) and 0.5 < s.bound_mm
+    assert not s.within(PoseTolerance(0.5, 0.0)) and s.within(PoseTolerance(0.4 + 2.1 * se, 0))
+    assert "mean of 10 frames" in s.describe()

@@ -475,6 +475,13 @@ class PoseTolerance:
         return self.mm > 0 or self.deg > 0
 
 
+# A tolerance counts as met when the mean plus this many standard errors of the mean
+# (spread / sqrt(n)) is inside it: about 95 % one-sided for a normally distributed mean (common
+# practice, no source). Fewer than MIN_SPREAD_FRAMES estimates give no spread to judge.
+CONFIDENCE_FACTOR = 2.0
+MIN_SPREAD_FRAMES = 3
+
+
 @dataclass(frozen=True)
 class WindowSummary:
     """The estimates of one window: ``n`` valid ones (``n_invalid`` others); ``mm`` and ``deg``
@@ -483,7 +490,9 @@ class WindowSummary:
     distance of the single estimates from that mean (the single-frame scatter; the mean's own
     uncertainty is about spread / sqrt(n) for independent frames); ``check_mm`` and
     ``check_deg`` the disagreement of the mean with the mean first-order estimate (NaN when
-    none was added); ``span_s`` the time between the first and last estimate."""
+    none was added); ``span_s`` the time between the first and last estimate.
+    ``bound_mm`` / ``bound_deg``: the mean plus ``CONFIDENCE_FACTOR`` standard errors, what a
+    tolerance is judged on, so a noisy estimate does not stop a run early by luck."""
     n: int = 0
     n_invalid: int = 0
     mm: float = math.nan
@@ -494,13 +503,37 @@ class WindowSummary:
     check_deg: float = math.nan
     span_s: float = 0.0
 
+    def _bound(self, mean: float, spread: float) -> float:
+        if self.n < MIN_SPREAD_FRAMES:
+            return mean
+        return mean + CONFIDENCE_FACTOR * spread / math.sqrt(self.n)
+
+    @property
+    def bound_mm(self) -> float:
+        return self._bound(self.mm, self.spread_mm)
+
+    @property
+    def bound_deg(self) -> float:
+        return self._bound(self.deg, self.spread_deg)
+
     def within(self, tolerance: PoseTolerance) -> bool:
-        """True when every estimate was valid and the mean is inside ``tolerance`` (the parts
-        it uses)."""
+        """True when every estimate was valid and the mean, plus its uncertainty
+        (``bound_mm``, ``bound_deg``), is inside ``tolerance`` (the parts it uses)."""
         if self.n == 0 or self.n_invalid:
             return False
-        return ((tolerance.mm <= 0 or self.mm <= tolerance.mm)
-                and (tolerance.deg <= 0 or self.deg <= tolerance.deg))
+        return ((tolerance.mm <= 0 or self.bound_mm <= tolerance.mm)
+                and (tolerance.deg <= 0 or self.bound_deg <= tolerance.deg))
+
+    def describe(self) -> str:
+        """One line for logs and halt details."""
+        if self.n == 0:
+            return (f"no valid pose-error estimate in the last window ({self.n_invalid} "
+                    "invalid)")
+        return (f"estimated pose error {self.mm:.3f} mm / {self.deg:.4f} deg (mean of {self.n} "
+                f"frames; with 2 standard errors {self.bound_mm:.3f} mm / "
+                f"{self.bound_deg:.4f} deg; single-frame spread {self.spread_mm:.3f} mm / "
+                f"{self.spread_deg:.4f} deg)"
+                + (f", {self.n_invalid} frames without an estimate" if self.n_invalid else ""))
 
 
 def _mean_displacement(estimates):
