@@ -437,7 +437,7 @@ class PoseErrorEstimator:
                 return from_model(xy_now, xy_taught, self.model_points[sel],
                                   T_taught_target=self.T_taught_target)
             return from_homography(xy_now, xy_taught, self.taught_depths[sel])
-        except ValueError as exc:
+        except (ValueError, cv2.error, np.linalg.LinAlgError) as exc:
             return invalid(self.method, str(exc))
 
     def first_order(self, xy_now, index=None) -> PoseEstimate:
@@ -451,7 +451,7 @@ class PoseErrorEstimator:
                 T = self.T_taught_target
                 Z = (self.model_points[sel] @ T[:3, :3].T + T[:3, 3])[:, 2]
             return first_order(xy_now, self.xy_taught[sel], Z)
-        except ValueError as exc:
+        except (ValueError, np.linalg.LinAlgError) as exc:
             return invalid("first_order", str(exc))
 
 
