@@ -510,10 +510,14 @@ class Servo:
         s, run = self.settings, self._run
         if run.pose_estimator is not None:
             run.pose = run.pose_estimator.estimate(xy_now, ref_i)
-            run.pose_window.add(t, run.pose, run.pose_estimator.first_order(xy_now, ref_i))
+            # the first-order cross-check only where the result reports it: near the goal
+            check = (run.pose_estimator.first_order(xy_now, ref_i)
+                     if self.state == "settling" else None)
+            run.pose_window.add(t, run.pose, check)
         tolerance = s.pose_tolerance
         px_ok = s.tolerance_px <= 0 or rms_px <= s.tolerance_px
-        pose_ok = not tolerance.active or run.pose_window.summary().within(tolerance)
+        pose_ok = not tolerance.active or (px_ok and
+                                           run.pose_window.summary().within(tolerance))
         if px_ok and pose_ok:
             if run.below_since is None:
                 run.below_since = t

@@ -425,3 +425,19 @@ def test_a_noisy_mean_must_clear_the_tolerance_by_its_uncertainty():
     assert s.bound_mm == pytest.approx(0.4 + 2 * se) and 0.5 < s.bound_mm
     assert not s.within(PoseTolerance(0.5, 0.0)) and s.within(PoseTolerance(0.4 + 2.1 * se, 0))
     assert "mean of 10 frames" in s.describe()
+
+
+def test_window_rotation_mean_is_scipys_chordal_mean():
+    # SciPy's Rotation.mean (the chordal L2 mean; Markley et al. 2007, "Averaging quaternions")
+    # as the outside reference, on rotations spread over tens of degrees around 150 deg.
+    rng = np.random.default_rng(12)
+    centre = Rotation.from_rotvec([0.3, -2.0, 1.5])
+    rots = centre * Rotation.from_rotvec(rng.normal(0, 0.3, (12, 3)))
+    w = PoseWindow(1.0)
+    for k, r in enumerate(rots):
+        w.add(k / 30.0, PoseEstimate("pnp", True, frames.transform(r.as_matrix(), np.zeros(3))))
+    s = w.summary()
+    mean = rots.mean()
+    assert s.deg == pytest.approx(math.degrees(mean.magnitude()), abs=1e-9)
+    spread = math.degrees(math.sqrt(np.mean((mean.inv() * rots).magnitude() ** 2)))
+    assert s.spread_deg == pytest.approx(spread, rel=1e-9)

@@ -207,17 +207,21 @@ def _residual(T_camera_target, model, xy) -> float:
     return float(np.sqrt(np.mean(np.sum((p[:, :2] / p[:, 2:] - xy) ** 2, axis=1))))
 
 
-def pose_from_model(xy, model_points) -> tuple[np.ndarray, float]:
+def pose_from_model(xy, model_points, planar: bool | None = None) -> tuple[np.ndarray, float]:
     """``(T_camera_target, rms)``: the target's pose in the camera frame from the normalized
     points ``xy`` (N, 2) of its model points (N, 3), and the RMS residual (normalized units).
 
     Planar model: SOLVEPNP_IPPE (Collins & Bartoli 2014) gives two candidate poses; the one
     with the smaller residual is refined by Levenberg-Marquardt on the reprojection error.
     Non-planar: SOLVEPNP_SQPNP (Terzakis & Lourakis, ECCV 2020), then the same refinement. ValueError when the input is degenerate or no pose puts the model in front of
-    the camera.
+    the camera. ``planar``: whether the model is planar, when the caller knows (else found
+    here).
     """
     xy = check_points(xy, "image points")
-    model, planar = _model(model_points)
+    if planar is None:
+        model, planar = _model(model_points)
+    else:
+        model = np.asarray(model_points, dtype=float)
     _check_same_length(xy, model, "image points", "model points")
     eye = np.eye(3)
     flags = cv2.SOLVEPNP_IPPE if planar else cv2.SOLVEPNP_SQPNP
@@ -240,7 +244,8 @@ def pose_from_model(xy, model_points) -> tuple[np.ndarray, float]:
     return best, best_rms
 
 
-def from_model(xy_now, xy_taught, model_points, T_taught_target=None) -> PoseEstimate:
+def from_model(xy_now, xy_taught, model_points, T_taught_target=None,
+               planar: bool | None = None) -> PoseEstimate:
     """Pose-error estimate from the target's 3-D model (see module doc).
 
     Args:
@@ -248,9 +253,10 @@ def from_model(xy_now, xy_taught, model_points, T_taught_target=None) -> PoseEst
         model_points: (N, 3) the features in the target frame, metres.
         T_taught_target: the target's pose in the taught view if already known (e.g. from all
             taught features, when only some are seen now); else PnP on ``xy_taught``.
+        planar: whether the model is planar, if known (saves checking it).
     ValueError on degenerate input.
     """
-    T_current_target, rms = pose_from_model(xy_now, model_points)
+    T_current_target, rms = pose_from_model(xy_now, model_points, planar)
     info = {"residual_now": rms}
     if T_taught_target is None:
         T_taught_target, rms_taught = pose_from_model(xy_taught, model_points)
@@ -402,9 +408,10 @@ class PoseErrorEstimator:
         self.xy_taught = check_points(xy_taught, "taught points")
         n = len(self.xy_taught)
         self.model_points = None
+        self._planar = False
         self.T_taught_target = None
         if model_points is not None:
-            model, _ = _model(model_points)
+            model, self._planar = _model(model_points)
             _check_same_length(model, self.xy_taught, "model points", "taught points")
             self.model_points = model
             self.T_taught_target, _ = pose_from_model(self.xy_taught, model)
@@ -436,8 +443,10 @@ class PoseErrorEstimator:
             sel = self._select(index)
             xy_taught = self.xy_taught[sel]
             if self.method == "pnp":
+                # a subset of a planar model is planar; of a non-planar one, check it
                 return from_model(xy_now, xy_taught, self.model_points[sel],
-                                  T_taught_target=self.T_taught_target)
+                                  T_taught_target=self.T_taught_target,
+                                  planar=True if self._planar else None)
             return from_homography(xy_now, xy_taught, self.taught_depths[sel])
         except (ValueError, cv2.error, np.linalg.LinAlgError) as exc:
             return invalid(self.method, str(exc))
@@ -539,13 +548,26 @@ class WindowSummary:
 
 
 def _mean_displacement(estimates):
-    """(T, spread_mm, spread_deg) of valid estimates: mean translation, chordal-mean rotation."""
-    t = np.array([e.T_taught_current[:3, 3] for e in estimates])
-    rot = Rotation.from_matrix(np.array([e.T_taught_current[:3, :3] for e in estimates]))
-    t_mean, r_mean = t.mean(axis=0), rot.mean()
+    """(T, spread_mm, spread_deg) of valid estimates: mean translation, chordal-mean rotation.
+
+    The rotation mean is the unit quaternion maximising sum (q_i . q)^2, the eigenvector of the
+    largest eigenvalue of sum q_i q_i^T (Markley, Cheng, Crassidis & Oshman, "Averaging
+    quaternions", J. Guidance, Control, and Dynamics 30(4), 2007; what SciPy's
+    ``Rotation.mean`` computes, tests/control/test_pose_error.py), in a few array operations
+    since it runs every frame."""
+    T = np.array([e.T_taught_current for e in estimates])
+    t = T[:, :3, 3]
+    q = Rotation.from_matrix(T[:, :3, :3]).as_quat()
+    t_mean = t.mean(axis=0)
+    _, vectors = np.linalg.eigh(q.T @ q)
+    q_mean = vectors[:, -1]
     spread_m = math.sqrt(float(np.mean(np.sum((t - t_mean) ** 2, axis=1))))
-    spread_rad = math.sqrt(float(np.mean((r_mean.inv() * rot).magnitude() ** 2)))
-    return frames.transform(r_mean.as_matrix(), t_mean), 1e3 * spread_m, math.degrees(spread_rad)
+    # angle between unit quaternions: 2 atan2(|q x|, |q . q_mean|) on the relative rotation
+    cos_half = np.clip(np.abs(q @ q_mean), 0.0, 1.0)
+    angles = 2.0 * np.arctan2(np.sqrt(np.maximum(0.0, 1.0 - cos_half ** 2)), cos_half)
+    spread_rad = math.sqrt(float(np.mean(angles ** 2)))
+    R_mean = Rotation.from_quat(q_mean).as_matrix()
+    return frames.transform(R_mean, t_mean), 1e3 * spread_m, math.degrees(spread_rad)
 
 
 class PoseWindow:
