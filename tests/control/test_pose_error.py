@@ -164,6 +164,32 @@ def test_near_the_goal_the_known_plane_solve_replaces_opencvs_pure_rotation():
         assert np.abs(R_est - R).max() < 1e-9 and np.abs(t_est - t).max() < 1e-9
 
 
+def test_half_turn_of_a_board_facing_the_camera():
+    # Measured with OpenCV 4.13: IPPE alone returns the identity for an exact half turn about
+    # the optical axis of a fronto-parallel board (also found by control/decoupled.py); the
+    # SQPnP retry recovers it. Checked against the true pose.
+    T_front = _pose([0.0, 0.0, 0.0], [0.0, 0.0, 0.3])
+    for angle in (180.0, 179.0):
+        T_true = _pose([0.0, 0.0, angle], [0.0, 0.0, 0.0])
+        xy_t, z_t = _view(T_front)
+        xy_c, _ = _view(frames.invert(T_true) @ T_front)
+        for est in (from_model(xy_c, xy_t, PLATE), from_homography(xy_c, xy_t, z_t)):
+            mm, deg = _errors(est.T_taught_current, T_true)
+            assert mm < 0.05 and deg < 0.005, (angle, est.method, mm, deg)
+
+
+def test_points_that_fit_no_pose_are_refused():
+    # two features swapped (a mismatch): neither the model nor a plane fits them
+    xy_c, xy_t, z_t = _views(DISPLACEMENTS["medium"])
+    swapped = xy_c[[1, 0, 2, 3, 4]]
+    with pytest.raises(ValueError, match="does not fit"):
+        from_model(swapped, xy_t, PLATE)
+    with pytest.raises(ValueError, match="do not fit"):
+        from_homography(swapped, xy_t, z_t)
+    est = PoseErrorEstimator(xy_t, model_points=PLATE).estimate(swapped)
+    assert not est.valid and "mismatched" in est.reason
+
+
 def test_non_planar_model_uses_the_general_solver():
     T_true = DISPLACEMENTS["medium"]
     xy_c, xy_t, _ = _views(T_true, BLOCK)

@@ -70,6 +70,14 @@ PLANAR_RATIO = 1e-6
 # Taught 3-D points further than this fraction of their extent (RMS) from one plane do not
 # define the plane the homography needs. Common practice, no source.
 OFF_PLANE_RATIO = 0.02
+# PnP: a refined IPPE pose whose RMS residual exceeds RETRY_RESIDUAL (normalized units, ~1 px
+# at a 600 px focal length) is compared with SQPnP's (measured: OpenCV 4.13's IPPE returns the
+# identity for an exact half turn about the optical axis of a board facing the camera, the same
+# finding as control/decoupled.py). A fit whose residual still exceeds MAX_RESIDUAL (~6 px at
+# 600 px) is no pose of these points: a mismatched feature or a wrong model. Common practice,
+# no source.
+RETRY_RESIDUAL = 1.5e-3
+MAX_RESIDUAL = 1e-2
 METHODS = ("pnp", "homography", "first_order")
 
 
@@ -212,8 +220,10 @@ def pose_from_model(xy, model_points, planar: bool | None = None) -> tuple[np.nd
     points ``xy`` (N, 2) of its model points (N, 3), and the RMS residual (normalized units).
 
     Planar model: SOLVEPNP_IPPE (Collins & Bartoli 2014) gives two candidate poses; the one
-    with the smaller residual is refined by Levenberg-Marquardt on the reprojection error.
-    Non-planar: SOLVEPNP_SQPNP (Terzakis & Lourakis, ECCV 2020), then the same refinement. ValueError when the input is degenerate or no pose puts the model in front of
+    with the smaller residual is refined by Levenberg-Marquardt on the reprojection error; when
+    that residual exceeds ``RETRY_RESIDUAL``, SQPnP is tried too and the better fit kept.
+    Non-planar: SOLVEPNP_SQPNP (Terzakis & Lourakis, ECCV 2020), then the same refinement. A fit
+    worse than ``MAX_RESIDUAL`` is refused. ValueError when the input is degenerate or no pose puts the model in front of
     the camera. ``planar``: whether the model is planar, when the caller knows (else found
     here).
     """
@@ -223,25 +233,38 @@ def pose_from_model(xy, model_points, planar: bool | None = None) -> tuple[np.nd
     else:
         model = np.asarray(model_points, dtype=float)
     _check_same_length(xy, model, "image points", "model points")
+    best, best_rms = _solve_pnp(model, xy, cv2.SOLVEPNP_IPPE if planar else cv2.SOLVEPNP_SQPNP)
+    if planar and not best_rms <= RETRY_RESIDUAL:
+        other, other_rms = _solve_pnp(model, xy, cv2.SOLVEPNP_SQPNP)
+        if other_rms < best_rms:
+            best, best_rms = other, other_rms
+    if best is None or not (np.isfinite(best).all() and math.isfinite(best_rms)):
+        raise ValueError("PnP found no pose that puts the target in front of the camera")
+    if best_rms > MAX_RESIDUAL:
+        raise ValueError(f"the target model does not fit the points: RMS residual {best_rms:.4f}"
+                         f" (normalized) > {MAX_RESIDUAL}; a mismatched feature or another "
+                         "target's model")
+    return best, best_rms
+
+
+def _solve_pnp(model, xy, flags):
+    """(T_camera_target, rms) of one OpenCV solver, its best candidate refined by
+    Levenberg-Marquardt; (None, inf) when it finds none."""
     eye = np.eye(3)
-    flags = cv2.SOLVEPNP_IPPE if planar else cv2.SOLVEPNP_SQPNP
     try:
         n, rvecs, tvecs, _ = cv2.solvePnPGeneric(model, xy, eye, None, flags=flags)
-    except cv2.error as exc:
-        raise ValueError(f"solvePnP failed on these points: {exc.err}") from None
+    except cv2.error:
+        return None, math.inf
     # the candidate with the smaller residual (IPPE's two are the planar pose ambiguity), then
     # refined; one refinement per frame keeps the per-frame cost near half a millisecond
     candidates = [_rt_to_T(r, t) for r, t in zip(rvecs[:n], tvecs[:n])]
     residuals = [_residual(T, model, xy) for T in candidates]
     if not candidates or not math.isfinite(min(residuals)):
-        raise ValueError("PnP found no pose that puts the target in front of the camera")
+        return None, math.inf
     i = int(np.argmin(residuals))
     rvec, tvec = cv2.solvePnPRefineLM(model, xy, eye, None, rvecs[i].copy(), tvecs[i].copy())
-    best = _rt_to_T(rvec, tvec)
-    best_rms = _residual(best, model, xy)
-    if not (np.isfinite(best).all() and math.isfinite(best_rms)):
-        raise ValueError("PnP found no pose that puts the target in front of the camera")
-    return best, best_rms
+    T = _rt_to_T(rvec, tvec)
+    return T, _residual(T, model, xy)
 
 
 def from_model(xy_now, xy_taught, model_points, T_taught_target=None,
@@ -332,6 +355,9 @@ def from_homography(xy_now, xy_taught, taught_depths) -> PoseEstimate:
         raise ValueError("the homography decomposition gave a non-finite displacement")
     proj = cv2.perspectiveTransform(xy_taught.reshape(-1, 1, 2), H).reshape(-1, 2)
     rms = float(np.sqrt(np.mean(np.sum((proj - xy_now) ** 2, axis=1))))
+    if not rms <= MAX_RESIDUAL:
+        raise ValueError(f"the points do not fit one plane's homography: RMS residual {rms:.4f} "
+                         f"(normalized) > {MAX_RESIDUAL}; a mismatched feature?")
     return PoseEstimate("homography", True, T, rms, info=info)
 
 
