@@ -2,12 +2,14 @@
 (simulated drives and camera, Perception, Servo at two rates) on the shipped scenarios with the
 shipped controller parameters (config/vservo_sim.yaml), no DDS.
 
-Pass criteria for a converged run: final RMS error within control.tolerance_px; the true camera
-within 2 mm and 0.5 deg of the true taught pose. The allowance follows from the tolerance by the
-first-order sensitivity of the pinhole projection u = f X / Z (Hartley & Zisserman 2003, Multiple
-View Geometry, sec. 6.1): at Z = 0.30 m, f = 615 px, with the corner dots 57 mm (~115 px) from
-the board centre, 0.5 px is ~0.25 mm sideways, ~0.25 deg about the axis and ~1.3 mm in depth;
-2 mm and 0.5 deg leave margin over these.
+Pass criteria for a converged run: final RMS error within control.tolerance_px when it is set;
+the true camera within the requirement the shipped file states in task units
+(control.tolerance_mm / tolerance_deg, 0.5 mm / 0.1 deg), else within 2 mm and 0.5 deg of the
+true taught pose. That allowance follows from a pixel tolerance by the first-order sensitivity
+of the pinhole projection u = f X / Z (Hartley & Zisserman 2003, Multiple View Geometry, sec.
+6.1): at Z = 0.30 m, f = 615 px, with the corner dots 57 mm (~115 px) from the board centre,
+0.5 px is ~0.25 mm sideways, ~0.25 deg about the axis and ~1.3 mm in depth; 2 mm and 0.5 deg
+leave margin over these.
 No true speed above its limit by more than 1 % (the drives lag the command: common practice,
 no source); no joint at a URDF position limit.
 """
@@ -51,8 +53,11 @@ def test_shipped_scenario_converges_with_the_shipped_settings(name):
     r = _episode(name)
     assert r.converged, (f"{name}: halted '{r.reason}' after {r.time_s:.2f} s at "
                          f"{r.final_rms_px:.1f} px")
-    assert r.final_rms_px <= values["control.tolerance_px"]
-    assert r.pose_error_mm <= POSE_MM and r.pose_error_deg <= POSE_DEG, (r.pose_error_mm,
+    if values["control.tolerance_px"] > 0:
+        assert r.final_rms_px <= values["control.tolerance_px"]
+    pose_mm = values["control.tolerance_mm"] or POSE_MM
+    pose_deg = values["control.tolerance_deg"] or POSE_DEG
+    assert r.pose_error_mm <= pose_mm and r.pose_error_deg <= pose_deg, (r.pose_error_mm,
                                                                           r.pose_error_deg)
     _assert_within_limits(r, values)
 

@@ -47,9 +47,12 @@ class PointScene:
         return xy, self.camera.normalized_to_pixels(xy), p[:, 2]
 
     def taught_view(self, q_taught, depth_scale: float = 1.0) -> TaughtView:
+        """The view at q_taught; its model points are the points in the base frame (fixed to
+        the target as much as the target frame is)."""
         xy, uv, z = self.view(q_taught)
         return TaughtView(self.keys, xy, uv, z * depth_scale,
-                          image_size=(self.camera.width, self.camera.height))
+                          image_size=(self.camera.width, self.camera.height),
+                          model=self.points_base)
 
     def sense(self, depth: str = "true", depth_scale: float = 1.0
               ) -> Callable[[np.ndarray, float], Observation | None]:
@@ -78,6 +81,12 @@ class EpisodeResult:
     min_limit_margin: float             # rad, closest approach to a URDF position limit
     initial_rms_px: float
     camera_depth_change_max: float      # m, largest motion along the taught optical axis
+    # the servo's own estimate at the end (control.pose_error, mean over the last dwell_s; NaN
+    # without one) and its single-frame spread
+    estimated_pose_error_mm: float = math.nan
+    estimated_pose_error_deg: float = math.nan
+    estimated_pose_error_spread_mm: float = math.nan
+    estimated_pose_error_spread_deg: float = math.nan
     statuses: list = field(default_factory=list, repr=False)
     q_trace: np.ndarray | None = field(default=None, repr=False)
     camera_trace: np.ndarray | None = field(default=None, repr=False)
@@ -85,7 +94,9 @@ class EpisodeResult:
     def summary(self) -> dict:
         keys = ("converged", "reason", "time_s", "final_rms_px", "pose_error_mm",
                 "pose_error_deg", "peak_joint_speed_ratio", "peak_tool_speed",
-                "peak_camera_speed", "peak_angular_speed", "min_limit_margin", "initial_rms_px")
+                "peak_camera_speed", "peak_angular_speed", "min_limit_margin", "initial_rms_px",
+                "estimated_pose_error_mm", "estimated_pose_error_deg",
+                "estimated_pose_error_spread_mm", "estimated_pose_error_spread_deg")
         return {k: getattr(self, k) for k in keys}
 
 
@@ -156,7 +167,19 @@ class _Meter:
             min_limit_margin=self.margin, initial_rms_px=self.initial_rms,
             camera_depth_change_max=self.depth_dev, statuses=self.statuses,
             q_trace=np.array(self.qs) if self.record else None,
-            camera_trace=np.array(self.cams) if self.record else None)
+            camera_trace=np.array(self.cams) if self.record else None,
+            **_estimated_pose_error(servo))
+
+
+def _estimated_pose_error(servo: Servo) -> dict:
+    """The servo's pose-error estimate over its last dwell (control.pose_error) at the end of
+    an episode, whether or not the run ended."""
+    summary = servo.pose_summary()
+    if summary is None:
+        return {}
+    return {"estimated_pose_error_mm": summary.mm, "estimated_pose_error_deg": summary.deg,
+            "estimated_pose_error_spread_mm": summary.spread_mm,
+            "estimated_pose_error_spread_deg": summary.spread_deg}
 
 
 def run_episode(servo: Servo, sense, q0, T_base_camera_goal, arm_true, *, rate_hz: float = 100.0,
@@ -212,6 +235,9 @@ class PointCase:
     half_side_m: float = 0.05
     depth_m: float = 0.40
     tolerance_px: float = 0.05
+    tolerance_mm: float = 0.0          # control.tolerance_mm / _deg (0 = not used)
+    tolerance_deg: float = 0.0
+    max_run_s: float | None = None     # default: duration_s
     duration_s: float = 15.0
     rate_hz: float = 100.0
     # what the servo believes of the hand-eye: the true one times this rotation (rpy, deg) about
@@ -239,8 +265,10 @@ def run_point_case(case: PointCase, record: bool = False) -> EpisodeResult:
                               math.radians(case.rotation_deg)]), case.translation_m)
     q0 = solve_camera_pose(arm, T_goal @ offset, robot.home, robot.home)
     settings = ServoSettings(interaction_estimate=case.estimate,
-                             tolerance_px=case.tolerance_px, dwell_s=0.2,
-                             max_run_s=case.duration_s,
+                             tolerance_px=case.tolerance_px, tolerance_mm=case.tolerance_mm,
+                             tolerance_deg=case.tolerance_deg, dwell_s=0.2,
+                             max_run_s=(case.duration_s if case.max_run_s is None
+                                        else case.max_run_s),
                              depth_source="observed" if case.depth == "true" else "taught")
     belief = arm
     if any(case.hand_eye_error_rpy_deg):
@@ -412,7 +440,8 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
             reference = load_reference(save_reference(reference, f"{folder}/episode.yaml"),
                                        sc.target)
         perception = Perception(sc.target, camera, reference, depth)
-        servo.set_reference(_depth_scaled(taught_view(reference, camera), sc.depth_scale_belief))
+        servo.set_reference(_depth_scaled(taught_view(reference, camera, sc.target),
+                                          sc.depth_scale_belief))
 
         def observe(t_frame):
             return perception.process(bgr(cell.render(t_frame)), t_frame)[0]

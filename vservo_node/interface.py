@@ -59,6 +59,9 @@ STATUS_FIELDS = (
     "reason",        # str, '' or the halt/refusal reason
     "detail",        # str, '' or what the check that fired saw, with its figures
     "rms_px",        # float, RMS feature error in pixels
+    "pose_error_mm",   # float, camera translation from the taught pose estimated from this
+                       # frame's features (control.pose_error), mm; NaN when not estimated
+    "pose_error_deg",  # float, ... and rotation, deg
     "n_matched",     # int
     "gain",          # float, 1/s, the scheduled gain used
     "sigma_min",     # float, judged singular value of the image Jacobian
@@ -71,9 +74,18 @@ STATUS_FIELDS = (
 )
 
 # Result of a run on TOPIC_RUN_RESULT and in run records.
+# final_pose_error_*: the camera's true pose against the true taught pose, from a simulator's
+# ground truth (None on a real cell); estimated_pose_error_*: the servo's own estimate from the
+# features, averaged over the last control.dwell_s (the arrival criterion in mm / deg), with the
+# single-frame spread, the number of frames, the method (pnp or homography) and the
+# disagreement with the first-order estimate (pose_estimate_check_*).
 RESULT_FIELDS = (
     "run_id", "converged", "reason", "detail", "time_s", "final_rms_px",
     "final_pose_error_mm", "final_pose_error_deg",
+    "estimated_pose_error_mm", "estimated_pose_error_deg",
+    "estimated_pose_error_spread_mm", "estimated_pose_error_spread_deg",
+    "estimated_pose_error_frames", "pose_estimate", "pose_estimate_check_mm",
+    "pose_estimate_check_deg",
 )
 
 # Supervisor states, in the order a normal run visits them.

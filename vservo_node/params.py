@@ -97,8 +97,14 @@ SCHEMA: tuple[Param, ...] = (
     _p("control.max_damping", float, 0.003, "damping at a singularity", low=1e-6, high=10.0),
     _p("control.null_space_gain", float, 0.5, "gain of the joint-limit avoidance task in the "
        "null space (redundant arms; 0 = off)", unit="1/s", low=0.0, high=10.0),
-    _p("control.tolerance_px", float, 0.5, "RMS image error that counts as arrived", unit="px",
-       low=0.01, high=50.0),
+    _p("control.tolerance_px", float, 0.5, "RMS image error that counts as arrived (0 = not "
+       "used; with tolerance_mm/_deg both must hold)", unit="px", low=0.0, high=50.0),
+    _p("control.tolerance_mm", float, 0.0, "arrived when the camera's distance from the taught "
+       "pose, estimated from the features and averaged over control.dwell_s, is within this "
+       "(0 = not used)", unit="mm", low=0.0, high=100.0),
+    _p("control.tolerance_deg", float, 0.0, "arrived when the camera's rotation from the taught "
+       "pose, estimated likewise, is within this (0 = not used)", unit="deg", low=0.0,
+       high=45.0),
     _p("control.dwell_s", float, 0.3, "time the error must stay below tolerance", unit="s",
        low=0.0, high=10.0),
     _p("control.settled_joint_speed", float, 0.01, "joint speeds below this count as stopped",
@@ -313,6 +319,10 @@ def validate(values: dict[str, Any]) -> CheckResult:
         result.errors.append(
             f"control.scheme decoupled estimates a pose by PnP, which needs 4 points or more: "
             f"control.min_features = {merged['control.min_features']}; expected >= 4")
+    if (merged["control.tolerance_px"] <= 0 and merged["control.tolerance_mm"] <= 0
+            and merged["control.tolerance_deg"] <= 0):
+        result.errors.append("no arrival criterion: control.tolerance_px, tolerance_mm and "
+                             "tolerance_deg are all 0; set at least one above 0")
     if merged["control.gain_near"] < merged["control.gain_far"]:
         result.warnings.append("control.gain_near < control.gain_far: the gain falls near the goal,"
                                " which slows the final approach")

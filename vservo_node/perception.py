@@ -23,9 +23,10 @@ normalize, attach depth. No ROS and no clocks here (the caller passes each image
   The observation's keys are reference keys (e.g. ``('dot', 3)``), so they match the
   ``TaughtView`` the servo drives to. ``None`` when no reference is loaded or nothing matched.
 - ``capture(image, name)``: teach a reference from the current view (``vision.reference``).
-- ``taught_view(reference, camera)``: the servo's ``TaughtView`` of a reference as the current
-  camera sees it (normalized coordinates as taught; pixels re-projected through the current
-  camera, so a reference taught at another resolution works).
+- ``taught_view(reference, camera, target)``: the servo's ``TaughtView`` of a reference as the
+  current camera sees it (normalized coordinates as taught; pixels re-projected through the
+  current camera, so a reference taught at another resolution works; the target's model
+  points of the features, for the pose-error estimate).
 
 Conventions (DEVELOPERS.md): pixels ``(u, v)`` in OpenCV's convention; normalized
 ``(x, y) = (X/Z, Y/Z)`` in the camera optical frame; depths in metres along the optical axis.
@@ -42,7 +43,7 @@ from vservo_node.servo import Observation, TaughtView
 from vservo_node.vision import depth as depth_mod
 from vservo_node.vision.camera import CameraModel
 from vservo_node.vision.features import Tracker, make_detector
-from vservo_node.vision.reference import Reference, capture_reference
+from vservo_node.vision.reference import Reference, capture_reference, check_target
 from vservo_node.vision.targets import Target
 
 OBSERVED_DEPTH_SOURCES = ("target_model", "depth_image")
@@ -90,19 +91,26 @@ class PerceptionInfo:
     timings: dict = field(default_factory=dict)
 
 
-def taught_view(reference: Reference, camera: CameraModel) -> TaughtView:
+def taught_view(reference: Reference, camera: CameraModel,
+                target: Target | None = None) -> TaughtView:
     """The servo's TaughtView of ``reference`` for images of ``camera``.
 
     Normalized coordinates are the taught ones (or, for a reference taught without a camera
     model, those of its pixels through ``camera``, refused by ``Reference.points_for`` when the
-    resolution differs); pixels are re-projected through ``camera``.
+    resolution differs); pixels are re-projected through ``camera``. With ``target`` (the one
+    the reference was taught on) and its feature positions, the view carries the features'
+    model points, so the servo estimates its pose error by PnP.
     """
     uv = reference.points_for(camera)
     xy = reference.normalized if reference.normalized is not None else (
         camera.pixels_to_normalized(uv))
+    model = None
+    if target is not None and target.has_geometry:
+        check_target(reference, target)
+        model = target.model_points(reference.keys)
     return TaughtView(tuple(reference.keys), np.array(xy, dtype=float), np.array(uv, dtype=float),
                       None if reference.depths is None else np.array(reference.depths, float),
-                      image_size=(camera.width, camera.height))
+                      image_size=(camera.width, camera.height), model=model)
 
 
 class Perception:

@@ -31,6 +31,8 @@ import numpy as np
 from vservo_node.control import decoupled, frames
 from vservo_node.control.interaction import interaction_matrix, point_interaction_matrix
 from vservo_node.control.law import (ControlLaw, DampingSchedule, GainSchedule, LawConfig)
+from vservo_node.control.pose_error import (PoseErrorEstimator, PoseEstimate, PoseTolerance,
+                                            PoseWindow)
 from vservo_node.control.safety import LimitSet, Limiter
 
 # Halt reasons (published and logged once each).
@@ -69,7 +71,10 @@ class TaughtView:
     """What the camera saw when the pose was taught.
 
     ``keys``: feature identities in order; ``xy`` (N, 2) normalized coordinates; ``uv`` (N, 2)
-    pixels in the current camera model (for errors in px); ``depth`` (N,) metres, or None.
+    pixels in the current camera model (for errors in px); ``depth`` (N,) metres, or None;
+    ``model`` (N, 3) the features' positions in a frame fixed to the target (metres, e.g. the
+    target file's), or None: with it the pose error is estimated by PnP, without it from the
+    plane homography and the depths (``control.pose_error``).
     """
 
     keys: tuple[Hashable, ...]
@@ -77,6 +82,7 @@ class TaughtView:
     uv: np.ndarray
     depth: np.ndarray | None = None
     image_size: tuple[int, int] | None = None   # (width, height) px, for the border margin
+    model: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         n = len(self.keys)
@@ -88,6 +94,10 @@ class TaughtView:
         if self.depth is not None and (np.shape(self.depth) != (n,) or
                                        not np.all(np.asarray(self.depth) > 0)):
             raise ValueError(f"taught depths must be {n} positive values, got {self.depth}")
+        if self.model is not None and (np.shape(self.model) != (n, 3) or
+                                       not np.all(np.isfinite(self.model))):
+            raise ValueError(f"taught model points must be ({n}, 3) finite metres, got shape "
+                             f"{np.shape(self.model)}")
 
     def index(self) -> dict[Hashable, int]:
         return {k: i for i, k in enumerate(self.keys)}
@@ -123,7 +133,9 @@ class ServoSettings:
     singular_threshold: float = 0.003
     max_damping: float = 0.003
     null_space_gain: float = 0.5
-    tolerance_px: float = 0.5
+    tolerance_px: float = 0.5             # 0 = not used
+    tolerance_mm: float = 0.0             # estimated camera translation from the taught pose
+    tolerance_deg: float = 0.0            # ... and rotation; 0 = not used
     dwell_s: float = 0.3
     settled_joint_speed: float = 0.01
     min_features: int = 4
@@ -174,6 +186,8 @@ class ServoSettings:
             max_damping=get("control.max_damping", cls.max_damping),
             null_space_gain=get("control.null_space_gain", cls.null_space_gain),
             tolerance_px=get("control.tolerance_px", cls.tolerance_px),
+            tolerance_mm=get("control.tolerance_mm", cls.tolerance_mm),
+            tolerance_deg=get("control.tolerance_deg", cls.tolerance_deg),
             dwell_s=get("control.dwell_s", cls.dwell_s),
             settled_joint_speed=get("control.settled_joint_speed", cls.settled_joint_speed),
             min_features=get("control.min_features", cls.min_features),
@@ -191,6 +205,10 @@ class ServoSettings:
             min_camera_distance_m=get("limits.min_camera_distance_m", cls.min_camera_distance_m),
             observation_timeout_s=get("io.image_timeout_s", cls.observation_timeout_s),
         )
+
+    @property
+    def pose_tolerance(self) -> PoseTolerance:
+        return PoseTolerance(self.tolerance_mm, self.tolerance_deg)
 
     def law_config(self) -> LawConfig:
         return LawConfig(
@@ -218,6 +236,9 @@ class _RunState:
     last_obs_t: float | None = None        # time of the last observation the law used
     theta_u: np.ndarray | None = None      # decoupled scheme: the last turn, kept continuous
     singular_since: float | None = None
+    pose: PoseEstimate | None = None       # the last frame's pose-error estimate
+    pose_window: PoseWindow | None = None  # the estimates of the last dwell_s
+    pose_estimator: PoseErrorEstimator | None = None
 
 
 @dataclass
@@ -282,6 +303,9 @@ class Servo:
         ControlLaw(settings.law_config(), arm.lower, arm.upper)
         Limiter(limits)
         _check_scheme(settings)
+        if settings.tolerance_px <= 0 and not settings.pose_tolerance.active:
+            raise ValueError("no arrival criterion: set control.tolerance_px or "
+                             "control.tolerance_mm / control.tolerance_deg above 0")
         if limits.n != arm.n:
             raise ValueError(f"limits for {limits.n} joints; the arm has {arm.n}")
 
@@ -324,9 +348,15 @@ class Servo:
         outside = self.joints_outside_limits(q)
         if outside:
             return False, "joint(s) outside their limits: " + "; ".join(outside)
+        estimator, why = self._pose_estimator()
+        if estimator is None and self.settings.pose_tolerance.active:
+            return False, (f"control.tolerance_mm / tolerance_deg need the pose error, which "
+                           f"cannot be estimated for this reference: {why}")
         self._runs += 1
         self._run = _RunState(run_id or f"run{self._runs}", t,
-                              self.arm.fk(np.asarray(q, float)))
+                              self.arm.fk(np.asarray(q, float)),
+                              pose_window=PoseWindow(self.settings.dwell_s),
+                              pose_estimator=estimator)
         self._frame = None
         self._law_info = None
         self._desired = np.zeros(self.arm.n)
@@ -334,6 +364,22 @@ class Servo:
         self._last_cmd = np.zeros(self.arm.n)
         self.state, self.reason, self.detail, self.result = "servoing", "", "", None
         return True, f"run {self._run.run_id} started"
+
+    def _pose_estimator(self) -> tuple[PoseErrorEstimator | None, str]:
+        """The pose-error estimator of the taught view (PnP with its model points, else the
+        plane homography with its depths or the constant depth), or None and why not."""
+        view = self.reference
+        depth = view.depth if view.depth is not None else self.settings.constant_depth_m
+        try:
+            return PoseErrorEstimator(view.xy, model_points=view.model, taught_depths=depth), ""
+        except ValueError as exc:
+            return None, str(exc)
+
+    def pose_summary(self):
+        """The pose-error estimates of the current (or last) run's last dwell_s
+        (``control.pose_error.WindowSummary``), or None before any run."""
+        run = self._run
+        return run.pose_window.summary() if run is not None and run.pose_window else None
 
     def joints_outside_limits(self, q) -> list[str]:
         """One line per joint of q outside the arm's position limits (or not finite)."""
@@ -454,8 +500,25 @@ class Servo:
             self.law.restart(e_law, t)
             self._desired = nod
         self._margin_scale = self._margins(info, uv_now, q, envelope_used)
-        # arrival: below tolerance for the dwell time with the joints (nearly) stopped
-        if rms_px <= s.tolerance_px:
+        self._arrival(xy_now, ref_i, rms_px, t)
+
+    def _arrival(self, xy_now: np.ndarray, ref_i: np.ndarray, rms_px: float, t: float) -> None:
+        """Arrival: every criterion set holds for the dwell time with the joints (nearly)
+        stopped: the RMS image error within control.tolerance_px, and the camera's pose error,
+        estimated from the features each frame and averaged over the last dwell_s, within
+        control.tolerance_mm / tolerance_deg (``control.pose_error``)."""
+        s, run = self.settings, self._run
+        if run.pose_estimator is not None:
+            run.pose = run.pose_estimator.estimate(xy_now, ref_i)
+            # the first-order cross-check only where the result reports it: near the goal
+            check = (run.pose_estimator.first_order(xy_now, ref_i)
+                     if self.state == "settling" else None)
+            run.pose_window.add(t, run.pose, check)
+        tolerance = s.pose_tolerance
+        px_ok = s.tolerance_px <= 0 or rms_px <= s.tolerance_px
+        pose_ok = not tolerance.active or (px_ok and
+                                           run.pose_window.summary().within(tolerance))
+        if px_ok and pose_ok:
             if run.below_since is None:
                 run.below_since = t
             self.state = "settling"
@@ -745,8 +808,13 @@ class Servo:
         observation_timeout_s, the motion envelope, and the arm following its command."""
         s, run = self.settings, self._run
         if t - run.t_start > s.max_run_s:
-            self.halt("run_timeout", t, f"run lasted {t - run.t_start:.2f} s > "
-                      f"control.max_run_s = {s.max_run_s} s")
+            detail = f"run lasted {t - run.t_start:.2f} s > control.max_run_s = {s.max_run_s} s"
+            if s.pose_tolerance.active:   # say how far the arrival criterion in mm/deg was
+                detail += (f"; {run.pose_window.summary().describe()} against control."
+                           f"tolerance_mm = {s.tolerance_mm}, tolerance_deg = "
+                           f"{s.tolerance_deg} (a noisier estimate needs a longer "
+                           "control.dwell_s)")
+            self.halt("run_timeout", t, detail)
             return
         since = run.last_obs_t if run.last_obs_t is not None else run.t_start
         if t - since > s.observation_timeout_s:
@@ -861,15 +929,26 @@ class Servo:
         self._desired = np.zeros(self.arm.n)
         run = self._run
         run.end_t = t
+        pose = run.pose_window.summary() if run.pose_window is not None else None
         self.result = {
             "run_id": run.run_id, "converged": state == "converged", "reason": reason,
             "time_s": t - run.t_start, "final_rms_px": run.final_rms, "detail": self.detail,
             "final_pose_error_mm": None, "final_pose_error_deg": None,
+            "pose_estimate": (run.pose_estimator.method if run.pose_estimator is not None
+                              else ""),
+            "estimated_pose_error_mm": pose.mm if pose else math.nan,
+            "estimated_pose_error_deg": pose.deg if pose else math.nan,
+            "estimated_pose_error_spread_mm": pose.spread_mm if pose else math.nan,
+            "estimated_pose_error_spread_deg": pose.spread_deg if pose else math.nan,
+            "estimated_pose_error_frames": pose.n if pose else 0,
+            "pose_estimate_check_mm": pose.check_mm if pose else math.nan,
+            "pose_estimate_check_deg": pose.check_deg if pose else math.nan,
         }
 
     def _status(self, t: float, cmd: np.ndarray, acted: list[str]) -> dict:
         frame, info = self._frame, self._law_info
         dls = info.dls if info is not None else None
+        pose = self._run.pose if self._run is not None else None
         return {
             "t": t,
             "run_id": self._run.run_id if self._run else "",
@@ -877,6 +956,8 @@ class Servo:
             "reason": self.reason,
             "detail": self.detail,
             "rms_px": frame.rms_px if frame else math.nan,
+            "pose_error_mm": pose.translation_mm if pose is not None else math.nan,
+            "pose_error_deg": pose.rotation_deg if pose is not None else math.nan,
             "n_matched": len(frame.keys) if frame else 0,
             "gain": info.gain if info else 0.0,
             "sigma_min": dls.sigma_judge if dls else math.nan,

@@ -92,8 +92,12 @@ def test_hidden_occluded_and_behind_features_are_not_seen():
 
 @pytest.mark.parametrize("name", ["tray_offset", "tray_tags_offset", "tray_poster_offset"])
 def test_projected_episode_converges_like_the_image_path(name):
+    """Times within 8 %: the shipped stop (0.5 mm / 0.1 deg on the estimated pose error) ends
+    when that estimate settles, and the poster's servo points (a homography fit to ORB
+    matches) carry a small static bias projected sensing does not model: measured 6.13 s with
+    images against 5.80 s projected (with the 0.1 px stop both were within 5 %)."""
     image = run_scenario_episode(name)
     projected = run_scenario_episode(name, sensing="projected")
     assert image.converged and projected.converged, (image.reason, projected.reason)
-    assert projected.time_s == pytest.approx(image.time_s, rel=0.05)
+    assert projected.time_s == pytest.approx(image.time_s, rel=0.08)
     assert projected.pose_error_mm < 2.0 and projected.pose_error_deg < 0.5

@@ -149,11 +149,14 @@ def test_match_by_key():
     assert np.allclose(m.points, det.points[[4, 3, 2, 1]])
 
 
-def test_ransac_shortcut_only_claims_what_opencv_does():
+@pytest.mark.parametrize("unit", [1.0, 1.0 / 600.0])
+def test_ransac_shortcut_only_claims_what_opencv_does(unit):
     """``ransac_keeps_all`` may skip cv2.findHomography(RANSAC) only when OpenCV (the
     independent reference) keeps every point: random views of 5 and 6 points with noise from
     tiny to past the threshold, shifted outliers, swapped pairs and near-collinear triples.
-    It must also fire for clean views, or it saves nothing."""
+    It must also fire for clean views, or it saves nothing. ``unit``: the same views in pixels
+    and in normalized coordinates of a 600 px focal length (how the matcher calls it when the
+    camera is known)."""
     import cv2
 
     from vservo_node.vision.matching import ransac_keeps_all
@@ -172,8 +175,9 @@ def test_ransac_shortcut_only_claims_what_opencv_does():
             dst[0] += rng.uniform(0.0, 10.0, 2)
         if i % 11 == 0:
             dst[[0, 1]] = dst[[1, 0]]
-        says = ransac_keeps_all(src, dst, 3.0)
-        _, mask = cv2.findHomography(src, dst, cv2.RANSAC, 3.0)
+        src_u, dst_u = src * unit, dst * unit
+        says = ransac_keeps_all(src_u, dst_u, 3.0 * unit)
+        _, mask = cv2.findHomography(src_u, dst_u, cv2.RANSAC, 3.0 * unit)
         if says:
             claimed += 1
             assert mask is not None and mask.all(), (i, src, dst, mask)

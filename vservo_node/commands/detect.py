@@ -144,7 +144,7 @@ def run(args) -> int:
             match = reference.match(detection, camera)
             ref_px = match.ref_points
         else:
-            match, ref_px = identify(target, detection), None
+            match, ref_px = identify(target, detection, camera), None
     except (OSError, ValueError) as exc:
         print(f"vservo detect: {exc}", file=sys.stderr)
         return 2

@@ -714,7 +714,8 @@ class ControllerNode(Node):
             return
         try:
             perception = Perception(target, self._camera, reference, DepthSettings.from_params(v))
-            view = taught_view(reference, self._camera) if reference is not None else None
+            view = (taught_view(reference, self._camera, target) if reference is not None
+                    else None)
         except (ValueError, OSError) as exc:
             self._problems["vision"] = str(exc)
             self.get_logger().error(f"perception not ready: {exc}")

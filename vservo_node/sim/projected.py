@@ -144,4 +144,5 @@ class ProjectedSensor:
         depths = depth_mod.from_pnp(seen, self.points_target[visible], self.camera).z
         return TaughtView(tuple(k for k, v in zip(self.keys, visible) if v),
                           self.camera.pixels_to_normalized(seen), seen, depths,
-                          image_size=(self.camera.width, self.camera.height))
+                          image_size=(self.camera.width, self.camera.height),
+                          model=self.points_target[visible])

@@ -9,7 +9,11 @@
   assignments within each colour group are tried and the one whose points fit one homography
   to the reference best is kept (a plane's two views are related by a homography: Hartley &
   Zisserman 2003, sec. 13.1). With five or more matches a RANSAC homography rejects points
-  that do not fit (Fischler & Bolles, Comm. ACM 24(6), 1981).
+  that do not fit (Fischler & Bolles, Comm. ACM 24(6), 1981). That relation holds for an ideal
+  pinhole: given the camera, the geometric checks run on undistorted normalized coordinates
+  of the detections (and the reference's plane or normalized coordinates), with the pixel
+  thresholds divided by the focal length fx; without it, on pixels (a lens with little
+  distortion only).
 - Markers and textured targets: by key (marker id and corner; servo point index).
 
 The result lists what was matched (current pixels and reference points in the same order),
@@ -266,7 +270,8 @@ def _exposure_gain(ref_lab, colours_linear, extra, gate, max_delta_e):
 def match_dots(detection, ref_keys, ref_lab, ref_points=None, predicted=None, *,
                max_delta_e=30.0, max_jump_px=40.0, px_weight=1.0, compensate_exposure=True,
                ambiguity_delta_e=15.0, geometry_px=3.0, max_trials=5000,
-               min_matched=MIN_MATCHED, fit_rms=True) -> MatchResult:
+               min_matched=MIN_MATCHED, fit_rms=True, camera=None,
+               ref_geometry=None) -> MatchResult:
     """Match detected blobs to reference dots by colour, and by geometry where needed.
 
     Args:
@@ -280,10 +285,18 @@ def match_dots(detection, ref_keys, ref_lab, ref_points=None, predicted=None, *,
         max_delta_e: colour gate (Delta E*ab, after exposure compensation).
         compensate_exposure: fit one gain in linear light (0.25 .. 4) before the colour gate.
         ambiguity_delta_e: reference colours closer than this count as the same colour.
-        geometry_px: homography residual allowed, current-image pixels.
+        geometry_px: homography residual allowed, current-image pixels (divided by the focal
+            length fx when ``camera`` is given).
         fit_rms: fit the least-squares homography of the matches for the quality figure
             ``homography_rms_px`` (a diagnostic; False leaves it NaN and saves ~0.2 ms for
             callers that never read it, such as ``Perception``).
+        camera: the current image's CameraModel; with it the geometric checks (repeated
+            colours, outliers, the diagnostic fit) use the detections' undistorted normalized
+            coordinates, so a lens's distortion is not taken for a misfit.
+        ref_geometry: (N, 2) the reference dots' coordinates for the geometric checks, in
+            the same order as ``ref_keys``: positions on the target plane (any units) or
+            undistorted normalized coordinates of the taught view; default ``ref_points``.
+            With ``camera`` it must not be distorted pixels.
     The default thresholds are common practice, no source.
     """
     ref_keys = [tuple(k) for k in ref_keys]
@@ -291,6 +304,14 @@ def match_dots(detection, ref_keys, ref_lab, ref_points=None, predicted=None, *,
     n_ref, n_det = len(ref_keys), len(detection)
     ref_points = None if ref_points is None else np.asarray(ref_points, float).reshape(-1, 2)
     quality = {"gain": 1.0, "ambiguous": False, "homography_rms_px": float("nan")}
+    # the geometric checks' coordinates: reference (plane or normalized) and detections
+    # (normalized when the camera is known); px_per_unit turns their residuals into pixels
+    geo_ref = ref_points if ref_geometry is None else (
+        np.asarray(ref_geometry, float).reshape(-1, 2))
+    if geo_ref is not None and len(geo_ref) != n_ref:
+        raise ValueError(f"ref_geometry has {len(geo_ref)} points for {n_ref} reference dots")
+    px_per_unit = 1.0 if camera is None else float(camera.intrinsics[0, 0])
+    geo_threshold = geometry_px / px_per_unit
     if n_det == 0 or n_ref == 0:
         return _result(detection, ref_keys, ref_points if ref_points is not None else [], [],
                        {}, quality, min_matched)
@@ -313,28 +334,29 @@ def match_dots(detection, ref_keys, ref_lab, ref_points=None, predicted=None, *,
     reasons = {j: "colour" if not (de[:, j] <= max_delta_e).any() else "position"
                for j in range(n_det) if not allowed[:, j].any()}
 
-    if ref_points is not None:
+    if geo_ref is not None:
+        geo_det = (detection.points if camera is None
+                   else camera.pixels_to_normalized(detection.points))
         groups = [g for g in _colour_groups(ref_lab, ambiguity_delta_e)
                   if len(g) > 1 and not has_prediction[g].all()]
         if groups:
-            pairs, info = _disambiguate(pairs, groups, allowed, detection.points, ref_points,
-                                        geometry_px, max_trials)
+            pairs, info = _disambiguate(pairs, groups, allowed, geo_det, geo_ref,
+                                        geo_threshold, max_trials)
             quality.update(info)
         if len(pairs) >= 5:
             r, d = map(np.array, zip(*pairs))
             inl = None
-            if not ransac_keeps_all(ref_points[r], detection.points[d], geometry_px):
-                _, inl = cv2.findHomography(ref_points[r], detection.points[d], cv2.RANSAC,
-                                            geometry_px)
+            if not ransac_keeps_all(geo_ref[r], geo_det[d], geo_threshold):
+                _, inl = cv2.findHomography(geo_ref[r], geo_det[d], cv2.RANSAC, geo_threshold)
             if inl is not None:
                 keep = inl.ravel().astype(bool)
                 reasons.update({int(j): "geometry" for j in d[~keep]})
                 pairs = [p for p, k in zip(pairs, keep) if k]
         if fit_rms and len(pairs) >= 4:
             r, d = map(list, zip(*pairs))
-            fit = _homography_fit(ref_points[r], detection.points[d])
+            fit = _homography_fit(geo_ref[r], geo_det[d])
             if fit is not None:
-                quality["homography_rms_px"] = fit[0]
+                quality["homography_rms_px"] = fit[0] * px_per_unit
     quality["delta_e"] = np.array([de[r, d] for r, d in sorted(pairs)])
     return _result(detection, ref_keys, ref_points if ref_points is not None else [], pairs,
                    reasons, quality, min_matched)

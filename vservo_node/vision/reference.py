@@ -117,13 +117,20 @@ class Reference:
         ``ref_points`` of the result are the reference pixels as the current camera sees them:
         ``points_for(camera, detection.image_size)``, unless the caller passes them (a stream
         whose camera does not change computes them once).
-        ``options`` go to ``matching.match_dots``.
+        With ``camera``, the dots' geometric checks compare undistorted normalized coordinates
+        (the taught ones, or those of ``ref_points`` for a reference taught without a camera)
+        with the detections' (``matching.match_dots``). ``options`` go to ``match_dots``.
         """
         if ref_points is None:
             ref_points = self.points_for(camera, detection.image_size)
         if self.kind == "dots":
+            geometry = None
+            if camera is not None:
+                geometry = (self.normalized if self.normalized is not None
+                            else camera.pixels_to_normalized(ref_points))
             return match_dots(detection, self.keys, self.colours_lab, ref_points, predicted,
-                              min_matched=min_matched, **options)
+                              min_matched=min_matched, camera=camera, ref_geometry=geometry,
+                              **options)
         return match_by_key(detection, self.keys, ref_points, min_matched=min_matched)
 
 
@@ -140,16 +147,19 @@ def check_target(reference: Reference, target: Target):
                              f"target {target.name!r} does not have")
 
 
-def identify(target: Target, detection: Detection) -> MatchResult:
+def identify(target: Target, detection: Detection,
+             camera: CameraModel | None = None) -> MatchResult:
     """Which target feature each detection is, from the target file alone (no taught view):
     dots by their printed colours (and layout, if given), others by key. ``ref_points`` of
     the result are target-frame metres (x, y), or zeros where the target gives no positions.
+    With ``camera``, the dots' layout is checked against the detections' undistorted
+    normalized coordinates (the plane maps to them by a homography, to distorted pixels not).
     """
     geometry = (target.model_points()[:, :2] if target.has_geometry
                 else np.zeros((len(target.keys()), 2)))
     if target.kind == "dots":
         return match_dots(detection, target.keys(), target.nominal_lab(),
-                          geometry if target.has_geometry else None)
+                          geometry if target.has_geometry else None, camera=camera)
     return match_by_key(detection, target.keys(), geometry)
 
 
@@ -168,7 +178,7 @@ def capture_reference(name: str, target: Target, image: np.ndarray,
     """
     _check_name(name)
     detection = make_detector(target).detect(image)
-    match = identify(target, detection)
+    match = identify(target, detection, camera)
     if not match.ok or (require_all and match.missing):
         raise BadReferenceError(f"cannot teach {name!r}: {len(match)} of {len(target.keys())} "
                              f"features of {target.name!r} identified, missing "
