@@ -101,7 +101,9 @@ def test_target_occluded_below_the_minimum_halts_too_few_features(cell, figures)
     frame = 1.0 / cell.scenario.fps
     figures.append(f"occluded: braking {t_brake - t_first:.3f} s after the first occluded "
                    f"image ({(t_brake - t_first) / frame:.1f} frames)")
-    assert t_brake - t_first <= 3 * frame
+    # plus one output period per DDS delivery (relay -> controller -> here), as the
+    # camera-stop test allows (common practice, no source)
+    assert t_brake - t_first <= 3 * frame + 2.0 / cell.values["io.output_rate_hz"]
     node.relay_mode = "pass"
 
 

@@ -93,5 +93,13 @@ def run_node(program: str, make_node: Callable[[], N], stop: Callable[[N], None]
         stop(node)
         executor.shutdown(timeout_sec=1.0)
         node.destroy_node()
-        rclpy.try_shutdown()
+        # with our own handlers, rclpy must not "restore" any: Jazzy's rclpy put Python's
+        # default SIGINT handler back here, and launch's second SIGINT then ended the
+        # simulated cell with a KeyboardInterrupt (exit -2)
+        try:
+            rclpy.try_shutdown(uninstall_handlers=not own_signals)
+        except TypeError:         # an rclpy without the argument: shut down, then ours again
+            rclpy.try_shutdown()
+        if own_signals:
+            install_signal_handlers()
     return node
