@@ -27,16 +27,9 @@ DT = 0.008
 ACCEL = 0.3      # rad/s^2: low, so that braking takes many output periods
 
 
-@pytest.fixture(scope="module")
-def rig():
-    robot = load_robot("vs7_bench")
-    arm = robot.arm
-    camera = CameraModel.pinhole(640, 480, 600.0, 600.0, 319.5, 239.5)
-    T_goal = arm.camera_pose(robot.home)
-    square = np.array([[-0.05, -0.05, 0.4], [0.05, -0.05, 0.4], [0.05, 0.05, 0.4],
-                       [-0.05, 0.05, 0.4]])
-    scene = PointScene((T_goal[:3, :3] @ square.T).T + T_goal[:3, 3], camera, arm)
-    return robot, camera, scene
+@pytest.fixture
+def rig(square_rig):
+    return square_rig
 
 
 def _moving_servo(rig, **settings):

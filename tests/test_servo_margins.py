@@ -12,15 +12,8 @@ from vservo_node.vision.camera import CameraModel
 
 
 @pytest.fixture
-def rig():
-    robot = load_robot("vs7_bench")
-    arm = robot.arm
-    camera = CameraModel.pinhole(640, 480, 600.0, 600.0, 319.5, 239.5)
-    T_goal = arm.camera_pose(robot.home)
-    square = np.array([[-0.05, -0.05, 0.4], [0.05, -0.05, 0.4], [0.05, 0.05, 0.4],
-                       [-0.05, 0.05, 0.4]])
-    scene = PointScene((T_goal[:3, :3] @ square.T).T + T_goal[:3, 3], camera, arm)
-    return robot, camera, scene
+def rig(square_rig):
+    return square_rig
 
 
 def _speed_scale(robot, camera, scene, uv, q=None, **settings):

@@ -5,6 +5,8 @@ Topic names are relative so that users remap them; `~/` names live under the nod
 """
 from __future__ import annotations
 
+import math
+
 # --- controller node (executable `vservo_node`, default node name `vservo`) -----------------
 CONTROLLER_NODE = "vservo"
 # inputs
@@ -102,3 +104,17 @@ SUPERVISOR_STATES = (
 # How a headless episode senses the target: render and perceive each image, or project the
 # target's points with pixel noise (vservo_node/sim/projected.py).
 SENSING_MODES = ("image", "projected")
+
+
+def json_safe(value):
+    """JSON-ready copy of a status record or run result: numpy scalars and arrays to Python,
+    non-finite floats to None (JSON has no NaN), keys to text."""
+    if isinstance(value, dict):
+        return {str(k): json_safe(v) for k, v in value.items()}
+    if hasattr(value, "tolist") and not isinstance(value, (bool, int, float, str)):
+        value = value.tolist()       # numpy arrays and scalars
+    if isinstance(value, (list, tuple)):
+        return [json_safe(v) for v in value]
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    return value

@@ -31,18 +31,7 @@ from vservo_node.record.bag import COMPRESSED_IMAGE, RunRecorder
 T0_NS = 10**9   # log time of t = 0 (rosbag2 readers dislike a zero start)
 
 
-def _json_safe(value):
-    if isinstance(value, dict):
-        return {k: _json_safe(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json_safe(v) for v in value]
-    if isinstance(value, (np.floating, float)):
-        return float(value) if math.isfinite(value) else None
-    if isinstance(value, np.integer):
-        return int(value)
-    if isinstance(value, np.ndarray):
-        return _json_safe(value.tolist())
-    return value
+_json_safe = itf.json_safe
 
 
 def write_record(root: Path, name: str, scenario, values: dict, result, notes: dict | None = None

@@ -270,19 +270,7 @@ def plain(value):
     return list(value) if isinstance(value, (list, tuple)) or hasattr(value, "typecode") else value
 
 
-def json_safe(value):
-    """JSON-ready copy: numpy scalars and arrays to Python, non-finite floats to None."""
-    if isinstance(value, dict):
-        return {str(k): json_safe(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple, np.ndarray)):
-        return [json_safe(v) for v in value]
-    if isinstance(value, (np.floating, float)):
-        return float(value) if math.isfinite(value) else None
-    if isinstance(value, np.integer):
-        return int(value)
-    if isinstance(value, np.bool_):
-        return bool(value)
-    return value
+json_safe = itf.json_safe   # kept here for callers of the node module
 
 
 class JointHistory:
