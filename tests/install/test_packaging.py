@@ -92,7 +92,7 @@ def test_runtime_imports_are_declared():
     pip_only = {"rosbags", "distributed"}            # no rosdep key: README says pip install
     key_of = {"cv2": "python3-opencv", "yaml": "python3-yaml", "numpy": "python3-numpy",
               "scipy": "python3-scipy", "matplotlib": "python3-matplotlib",
-              "pinocchio": "pinocchio"}
+              "pinocchio": "pinocchio", "PIL": "python3-pil"}
     imported = set()
     for path in list((ROOT / "vservo_node").rglob("*.py")) + list((ROOT / "launch").glob("*.py")):
         for node in ast.walk(ast.parse(path.read_text())):
