@@ -162,7 +162,8 @@ def test_a_limit_is_reported_as_acting_only_when_it_changed_the_command():
     from its limits."""
     n = 3
     limits = LimitSet(velocity=np.full(n, 1.0), acceleration=np.full(n, 100.0),
-                      lower=np.full(n, -1.0), upper=np.full(n, 1.0))
+                      lower=np.full(n, -1.0), upper=np.full(n, 1.0), velocity_scale=1.0,
+                      angular_max=0.5)
     zero_jac = np.zeros((3, n))
     desired = np.array([100.0, 0.0, 0.0])          # 100 rad/s toward the upper limit
     q = np.array([0.5, 0.0, 0.0])                  # 0.5 rad from it: braking speed ~10 rad/s
@@ -194,7 +195,7 @@ def _in_range(param: params.Param):
     return None
 
 
-SERVO_SECTIONS = ("control", "limits", "depth", "io")
+SERVO_SECTIONS = ("control", "supervisor", "limits", "depth", "io")
 SWEPT = [p for p in params.SCHEMA if p.name.split(".")[0] in SERVO_SECTIONS and _in_range(p) is not None
          and p.name not in ("io.command_interface",)]
 

@@ -140,3 +140,87 @@ def test_readme_table_matches_the_schema():
     readme = (Path(__file__).resolve().parent.parent / "README.md").read_text()
     assert params.markdown_table() in readme, "README parameter table is stale: regenerate it " \
         "with `.venv/bin/python -c 'from vservo_node import params; print(params.markdown_table())'`"
+
+
+# ------------------------------------------------------------- one definition of each default
+def _core_defaults():
+    """(where, default, schema parameter) of every core dataclass default bound to the schema."""
+    import dataclasses
+
+    from vservo_node.control.law import DampingSchedule, GainSchedule, LawConfig
+    from vservo_node.control.safety import LimitSet
+    from vservo_node.perception import DepthSettings
+    from vservo_node.servo_settings import ServoSettings
+
+    def field_default(cls, name):
+        return {f.name: f for f in dataclasses.fields(cls)}[name].default
+
+    bound = [(GainSchedule, "gain_near", "control.gain_near"),
+             (GainSchedule, "gain_far", "control.gain_far"),
+             (GainSchedule, "half_error_px", "control.gain_half_error_px"),
+             (DampingSchedule, "epsilon", "control.singular_threshold"),
+             (DampingSchedule, "mu_max", "control.max_damping"),
+             (LawConfig, "soft_start_tau", "control.soft_start_s"),
+             (LawConfig, "null_space_gain", "control.null_space_gain"),
+             (LimitSet, "velocity_scale", "limits.joint_velocity_scale"),
+             (LimitSet, "tool_linear_max", "limits.tool_linear_speed"),
+             (LimitSet, "camera_linear_max", "limits.camera_linear_speed"),
+             (LimitSet, "angular_max", "limits.angular_speed"),
+             (DepthSettings, "source", "depth.source"),
+             (DepthSettings, "constant_m", "depth.constant_m")]
+    out = [(f"{cls.__name__}.{name}", field_default(cls, name), param)
+           for cls, name, param in bound]
+    for f in dataclasses.fields(ServoSettings):
+        if f.name != "depth_source":      # converted: checked below
+            out.append((f"ServoSettings.{f.name}", f.default, f.metadata["param"]))
+    return out
+
+
+@pytest.mark.parametrize("where,value,name", _core_defaults(), ids=lambda v: str(v))
+def test_every_core_default_is_the_schema_default(where, value, name):
+    assert value == params.BY_NAME[name].default, (where, value, name)
+    assert type(value) is params.BY_NAME[name].type, (where, type(value))
+
+
+def test_default_constructed_law_and_settings_agree_with_the_schema():
+    """The objects a caller gets without arguments are the schema's (the issue: GainSchedule()
+    0.8 / 0.3 / 30 against 1.0 / 0.5 / 60, DampingSchedule() 0.05 against 0.003,
+    LawConfig().null_space_gain 0.1 against 0.5, LimitSet.angular_max 0.5 against 0.6)."""
+    from vservo_node.control.law import LawConfig
+    from vservo_node.servo_settings import ServoSettings
+
+    assert ServoSettings().law_config() == LawConfig()
+    assert ServoSettings().depth_source == "taught" == params.default("depth.source")
+    every = params.defaults()
+    every["limits.joint_acceleration"] = [2.0]
+    assert ServoSettings.from_params(params.validate(every).values) == ServoSettings()
+
+
+def test_every_servo_setting_is_a_schema_parameter_and_every_supervisor_entry_is_used():
+    from vservo_node.servo_settings import PARAM_OF_FIELD
+
+    assert set(PARAM_OF_FIELD.values()) <= set(params.BY_NAME)
+    supervisor = {p.name for p in params.SCHEMA if p.name.startswith("supervisor.")}
+    assert supervisor and supervisor <= set(PARAM_OF_FIELD.values())
+    for name in supervisor:            # range, unit or a dimensionless ratio, and words
+        p = params.BY_NAME[name]
+        assert p.low is not None and p.high is not None and len(p.description) > 20, name
+
+
+def test_from_params_converts_the_observed_depth_sources():
+    from vservo_node.servo_settings import ServoSettings
+
+    for source, mode in (("constant", "constant"), ("taught", "taught"),
+                         ("target_model", "observed"), ("depth_image", "observed")):
+        assert ServoSettings.from_params({"depth.source": source}).depth_source == mode
+
+
+def test_core_modules_import_first_in_a_fresh_interpreter():
+    """control.law and control.safety read their defaults from params, which imports two
+    control modules: each must still import first (no import cycle through them)."""
+    import subprocess
+    import sys
+
+    for module in ("vservo_node.control.law", "vservo_node.control.safety",
+                   "vservo_node.servo", "vservo_node.params"):
+        subprocess.run([sys.executable, "-c", f"import {module}"], check=True)

@@ -18,6 +18,7 @@ import numpy as np
 from vservo_node.control import frames
 from vservo_node.control.safety import LimitSet
 from vservo_node.interface import SENSING_MODES
+from vservo_node.params import default
 from vservo_node.servo import Observation, Servo, ServoSettings, TaughtView
 
 
@@ -207,9 +208,14 @@ def run_episode(servo: Servo, sense, q0, T_base_camera_goal, arm_true, *, rate_h
     return meter.result(servo, status, t, arm_true.camera_pose(q))
 
 
-def limits_for(arm, *, velocity_scale: float = 0.5, acceleration=2.0, position_margin=0.03,
-               tool_linear_max=0.10, camera_linear_max=0.10, angular_max=0.6) -> LimitSet:
-    """A LimitSet for ``arm`` from URDF velocity/position limits and the given settings."""
+def limits_for(arm, *, velocity_scale: float = default("limits.joint_velocity_scale"),
+               acceleration=2.0, position_margin=default("limits.position_margin"),
+               tool_linear_max=default("limits.tool_linear_speed"),
+               camera_linear_max=default("limits.camera_linear_speed"),
+               angular_max=default("limits.angular_speed")) -> LimitSet:
+    """A LimitSet for ``arm`` from URDF velocity/position limits and the given settings
+    (defaults: the schema's; ``acceleration`` 2 rad/s^2 for the headless cases, as the schema
+    has no default for limits.joint_acceleration)."""
     accel = np.broadcast_to(np.asarray(acceleration, dtype=float), (arm.n,)).copy()
     return LimitSet(velocity=arm.velocity_limits.copy(), acceleration=accel,
                     lower=arm.lower + position_margin, upper=arm.upper - position_margin,

@@ -127,6 +127,38 @@ SCHEMA: tuple[Param, ...] = (
        "slow cameras"),
     _p("control.loop_delay_s", float, 0.03, "expected image-to-command delay (checked against "
        "the gain)", unit="s", low=0.0, high=2.0),
+    # --- supervisor checks (our design; thresholds are common practice, no source) -------------
+    _p("supervisor.wrong_direction_frames", int, 3, "consecutive opposed judgements of the image "
+       "direction check before a wrong_direction halt", low=1, high=30, tighten="down"),
+    _p("supervisor.wrong_direction_min_px", float, 2.0, "the image direction check judges once "
+       "the predicted feature motion (RMS) since its last judgement reaches this", unit="px",
+       low=0.1, high=50.0, tighten="down"),
+    _p("supervisor.diverge_factor", float, 1.5, "halt diverging when the RMS error exceeds this "
+       "factor times the run's best RMS error plus supervisor.diverge_margin_px", low=1.0,
+       high=10.0, tighten="down"),
+    _p("supervisor.diverge_margin_px", float, 20.0, "pixel margin of the divergence check",
+       unit="px", low=0.0, high=1000.0, tighten="down"),
+    _p("supervisor.follow_window_s", float, 0.5, "window over which the measured joint travel "
+       "is judged against the commanded travel (not_following, wrong_direction)", unit="s",
+       low=0.05, high=10.0, tighten="down"),
+    _p("supervisor.follow_min_ratio", float, 0.2, "halt not_following when the joints travel "
+       "less than this fraction of the commanded travel over a follow window", low=0.0,
+       high=1.0, tighten="up"),
+    _p("supervisor.singular_halt_fraction", float, 0.05, "halt image_jacobian_singular when the "
+       "judged singular value stays below this fraction of control.singular_threshold for "
+       "supervisor.singular_halt_s", low=1e-4, high=1.0, tighten="up"),
+    _p("supervisor.singular_halt_s", float, 1.0, "how long the image Jacobian may stay nearly "
+       "singular before a halt", unit="s", low=0.05, high=60.0, tighten="down"),
+    _p("supervisor.margin_floor", float, 0.2, "lowest speed scale the margins (singularity, "
+       "joint limits, image border, motion envelope) slow the motion to at their hazard",
+       low=0.01, high=1.0, tighten="down"),
+    _p("supervisor.border_margin_px", float, 20.0, "slow down when a feature comes this close "
+       "to the image border", unit="px", low=0.0, high=1000.0, tighten="up"),
+    _p("supervisor.joint_zone_rad", float, 0.15, "slow down when a joint comes this close to "
+       "its (margined) limit", unit="rad", low=0.0, high=3.0, tighten="up"),
+    _p("supervisor.envelope_zone", float, 0.2, "slow down in this last fraction of the motion "
+       "envelope (limits.max_translation_m, max_rotation_deg)", low=0.0, high=1.0,
+       tighten="up"),
     # --- limits --------------------------------------------------------------------------------
     _p("limits.joint_velocity_scale", float, 0.5, "fraction of the URDF joint velocity limits",
        low=0.01, high=1.0, tighten="down"),
@@ -180,6 +212,14 @@ SCHEMA: tuple[Param, ...] = (
 )
 
 BY_NAME = {p.name: p for p in SCHEMA}
+
+
+def default(name: str) -> Any:
+    """The schema's default of parameter ``name`` (a copy for lists): the one definition the
+    core's dataclasses (ServoSettings, LawConfig, GainSchedule, DampingSchedule, LimitSet)
+    take their defaults from. KeyError for an unknown name."""
+    value = BY_NAME[name].default
+    return list(value) if isinstance(value, list) else value
 
 
 @dataclass

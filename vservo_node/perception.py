@@ -39,6 +39,7 @@ from typing import Any
 
 import numpy as np
 
+from vservo_node.params import default
 from vservo_node.servo import Observation, TaughtView
 from vservo_node.vision import depth as depth_mod
 from vservo_node.vision.camera import CameraModel
@@ -52,8 +53,8 @@ OBSERVED_DEPTH_SOURCES = ("target_model", "depth_image")
 @dataclass(frozen=True)
 class DepthSettings:
     """``source``: one of ``vservo_node.params.DEPTH_SOURCES``; ``constant_m``: metres."""
-    source: str = "taught"
-    constant_m: float = 0.4
+    source: str = default("depth.source")
+    constant_m: float = default("depth.constant_m")
 
     @classmethod
     def from_params(cls, values: dict[str, Any]) -> "DepthSettings":

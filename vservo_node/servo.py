@@ -30,10 +30,10 @@ import numpy as np
 
 from vservo_node.control import decoupled, frames
 from vservo_node.control.interaction import interaction_matrix, point_interaction_matrix
-from vservo_node.control.law import (ControlLaw, DampingSchedule, GainSchedule, LawConfig)
-from vservo_node.control.pose_error import (PoseErrorEstimator, PoseEstimate, PoseTolerance,
-                                            PoseWindow)
+from vservo_node.control.law import ControlLaw
+from vservo_node.control.pose_error import PoseErrorEstimator, PoseEstimate, PoseWindow
 from vservo_node.control.safety import LimitSet, Limiter
+from vservo_node.servo_settings import ServoSettings
 
 # Halt reasons (published and logged once each).
 HALT_REASONS = {
@@ -119,102 +119,6 @@ class Observation:
     uv: np.ndarray
     xy: np.ndarray
     depth: np.ndarray | None = None
-
-
-@dataclass(frozen=True)
-class ServoSettings:
-    """The servo's tunables (names follow the parameter schema in vservo_node.params)."""
-
-    interaction_estimate: str = "blended"
-    gain_near: float = 1.0
-    gain_far: float = 0.5
-    gain_half_error_px: float = 60.0
-    soft_start_s: float = 0.5
-    singular_threshold: float = 0.003
-    max_damping: float = 0.003
-    null_space_gain: float = 0.5
-    tolerance_px: float = 0.5             # 0 = not used
-    tolerance_mm: float = 0.0             # estimated camera translation from the taught pose
-    tolerance_deg: float = 0.0            # ... and rotation; 0 = not used
-    dwell_s: float = 0.3
-    settled_joint_speed: float = 0.01
-    min_features: int = 4
-    max_run_s: float = 60.0
-    max_initial_error_px: float = 400.0
-    depth_source: str = "taught"          # constant | taught | observed
-    constant_depth_m: float = 0.4
-    max_translation_m: float = 0.30
-    max_rotation_deg: float = 180.0
-    min_camera_distance_m: float = 0.08
-    # supervisor checks (our design; thresholds are common practice, no source)
-    wrong_direction_frames: int = 3       # consecutive opposed judgements before a halt
-    wrong_direction_min_px: float = 2.0   # judge once the predicted motion (RMS) reaches this
-    direction_probe_px: float = 6.0       # start nod: peak feature shift (0 = no nod)
-    direction_probe_s: float = 0.3        # start nod: duration (one sine period)
-    predict_between_frames: bool = False  # re-run the law at each output tick on predicted features
-    scheme: str = "point"                 # control.scheme: decoupled.SCHEMES
-    diverge_factor: float = 1.5           # halt when rms > factor * best + diverge_margin_px
-    diverge_margin_px: float = 20.0
-    follow_window_s: float = 0.5          # judge following over this window
-    follow_min_ratio: float = 0.2         # measured / commanded joint travel below -> halt
-    # no observation for this long while a run moves -> image_stale (io.image_timeout_s);
-    # judged on the output tick, so a run halts even when no frame can be used at all
-    observation_timeout_s: float = 0.25
-    # the judged singular value below this fraction of singular_threshold for singular_halt_s
-    # -> image_jacobian_singular (our thresholds, common practice, no source)
-    singular_halt_fraction: float = 0.05
-    singular_halt_s: float = 1.0
-    # speed-scale margins (our design, common practice, no source): each is 1 away from its
-    # hazard and falls linearly to margin_floor at it; hard halts take over beyond
-    margin_floor: float = 0.2
-    border_margin_px: float = 20.0        # slow down when a feature is this close to the border
-    joint_zone_rad: float = 0.15          # ... when a joint is this close to its (margined) limit
-    envelope_zone: float = 0.2            # ... in the last fifth of the motion envelope
-
-    @classmethod
-    def from_params(cls, values: dict[str, Any]) -> "ServoSettings":
-        """Build from a validated parameter dict (vservo_node.params names)."""
-        get = values.get
-        depth = get("depth.source", "taught")
-        return cls(
-            interaction_estimate=get("control.interaction_estimate", cls.interaction_estimate),
-            gain_near=get("control.gain_near", cls.gain_near),
-            gain_far=get("control.gain_far", cls.gain_far),
-            gain_half_error_px=get("control.gain_half_error_px", cls.gain_half_error_px),
-            soft_start_s=get("control.soft_start_s", cls.soft_start_s),
-            singular_threshold=get("control.singular_threshold", cls.singular_threshold),
-            max_damping=get("control.max_damping", cls.max_damping),
-            null_space_gain=get("control.null_space_gain", cls.null_space_gain),
-            tolerance_px=get("control.tolerance_px", cls.tolerance_px),
-            tolerance_mm=get("control.tolerance_mm", cls.tolerance_mm),
-            tolerance_deg=get("control.tolerance_deg", cls.tolerance_deg),
-            dwell_s=get("control.dwell_s", cls.dwell_s),
-            settled_joint_speed=get("control.settled_joint_speed", cls.settled_joint_speed),
-            min_features=get("control.min_features", cls.min_features),
-            max_run_s=get("control.max_run_s", cls.max_run_s),
-            max_initial_error_px=get("control.max_initial_error_px", cls.max_initial_error_px),
-            direction_probe_px=get("control.direction_probe_px", cls.direction_probe_px),
-            direction_probe_s=get("control.direction_probe_s", cls.direction_probe_s),
-            predict_between_frames=get("control.predict_between_frames",
-                                       cls.predict_between_frames),
-            scheme=get("control.scheme", cls.scheme),
-            depth_source="observed" if depth in ("target_model", "depth_image") else depth,
-            constant_depth_m=get("depth.constant_m", cls.constant_depth_m),
-            max_translation_m=get("limits.max_translation_m", cls.max_translation_m),
-            max_rotation_deg=get("limits.max_rotation_deg", cls.max_rotation_deg),
-            min_camera_distance_m=get("limits.min_camera_distance_m", cls.min_camera_distance_m),
-            observation_timeout_s=get("io.image_timeout_s", cls.observation_timeout_s),
-        )
-
-    @property
-    def pose_tolerance(self) -> PoseTolerance:
-        return PoseTolerance(self.tolerance_mm, self.tolerance_deg)
-
-    def law_config(self) -> LawConfig:
-        return LawConfig(
-            gain=GainSchedule(self.gain_near, self.gain_far, self.gain_half_error_px),
-            damping=DampingSchedule(self.singular_threshold, self.max_damping),
-            soft_start_tau=self.soft_start_s, null_space_gain=self.null_space_gain)
 
 
 @dataclass

@@ -214,7 +214,7 @@ def test_limiter_output_meets_every_limit(case):
 
 def test_direction_of_the_desired_command_kept_when_speed_limits_cut_it():
     limits = LimitSet(velocity=[1.0, 1.0, 1.0], acceleration=[20.0, 20.0, 20.0],
-                      lower=[-3.0] * 3, upper=[3.0] * 3)
+                      lower=[-3.0] * 3, upper=[3.0] * 3, velocity_scale=1.0)
     # desired (3, 0.5, -2) breaks the velocity box: scaled by 1/3 (joint 0) it fits; from prev
     # the acceleration bound (2.0 per joint per cycle) allows the whole step to that target
     prev, desired = np.array([0.2, -0.1, 0.0]), np.array([3.0, 0.5, -2.0])

@@ -39,6 +39,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from vservo_node.params import default
+
 #: Rank bound of an image Jacobian: it maps joint rates through a 6-dof camera twist.
 CAMERA_TWIST_DOF = 6
 
@@ -68,8 +70,8 @@ class DampingSchedule:
     ``task_rank``: rank bound of the task (6 for an image Jacobian, see module docstring).
     """
 
-    epsilon: float = 0.05
-    mu_max: float = 0.05
+    epsilon: float = default("control.singular_threshold")
+    mu_max: float = default("control.max_damping")
     task_rank: int = CAMERA_TWIST_DOF
 
     def __post_init__(self) -> None:
@@ -165,9 +167,9 @@ class GainSchedule:
     far away keeps large errors from commanding large speeds.
     """
 
-    gain_near: float = 0.8
-    gain_far: float = 0.3
-    half_error_px: float = 30.0
+    gain_near: float = default("control.gain_near")
+    gain_far: float = default("control.gain_far")
+    half_error_px: float = default("control.gain_half_error_px")
 
     def __post_init__(self) -> None:
         _raise_if(self.problems(), "GainSchedule")
@@ -233,8 +235,8 @@ class LawConfig:
 
     gain: GainSchedule = field(default_factory=GainSchedule)
     damping: DampingSchedule = field(default_factory=DampingSchedule)
-    soft_start_tau: float = 0.5
-    null_space_gain: float = 0.1
+    soft_start_tau: float = default("control.soft_start_s")
+    null_space_gain: float = default("control.null_space_gain")
 
     def __post_init__(self) -> None:
         _raise_if(self.problems(), "LawConfig")

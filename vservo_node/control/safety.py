@@ -85,6 +85,8 @@ from typing import Mapping
 
 import numpy as np
 
+from vservo_node.params import default
+
 #: Limit names, in tie-break order.
 LIMITS = ("position_envelope", "joint_velocity", "tool_linear_speed", "camera_linear_speed",
           "angular_speed", "joint_acceleration")
@@ -105,20 +107,20 @@ class LimitSet:
     ``velocity`` (n,): URDF velocity limits (rad/s); ``velocity_scale`` in (0, 1] scales them.
     ``acceleration`` (n,): rad/s^2, required (URDF has none, so there is no default).
     ``lower``/``upper`` (n,): position limits (rad; +-inf for continuous joints).
-    ``tool_linear_max``, ``camera_linear_max`` (m/s): default 0.10; approach speeds of tens of
-    mm/s are common practice (no source). They may not exceed ISO_REDUCED_SPEED unless
-    ``allow_above_reduced_speed`` is set. ``angular_max`` (rad/s): default 0.5 (common
-    practice, no source).
+    ``tool_linear_max``, ``camera_linear_max`` (m/s); approach speeds of tens of mm/s are common
+    practice (no source). They may not exceed ISO_REDUCED_SPEED unless
+    ``allow_above_reduced_speed`` is set. ``angular_max`` (rad/s). Defaults: the schema's
+    ``limits.*`` entries (vservo_node.params).
     """
 
     velocity: np.ndarray
     acceleration: np.ndarray
     lower: np.ndarray
     upper: np.ndarray
-    velocity_scale: float = 1.0
-    tool_linear_max: float = 0.10
-    camera_linear_max: float = 0.10
-    angular_max: float = 0.5
+    velocity_scale: float = default("limits.joint_velocity_scale")
+    tool_linear_max: float = default("limits.tool_linear_speed")
+    camera_linear_max: float = default("limits.camera_linear_speed")
+    angular_max: float = default("limits.angular_speed")
     allow_above_reduced_speed: bool = False
 
     def __post_init__(self) -> None:
