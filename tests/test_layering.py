@@ -44,3 +44,22 @@ def test_vision_and_control_import_nothing_above_them():
                  for path in sorted((PACKAGE / sub).rglob("*.py"))
                  for name in _imports(path) if name.startswith(above)]
     assert not offenders, "imports must flow one way:\n" + "\n".join(offenders)
+
+
+def test_only_servo_reconfigure_replaces_the_law_config_and_the_limits():
+    """Servo.reconfigure is the one way to change a servo's settings: nothing else assigns
+    ``<x>.law.config`` or ``<x>.limiter.limits`` (a change must pass Servo.check_config)."""
+    offenders = []
+    for path in sorted(PACKAGE.rglob("*.py")):
+        tree = ast.parse(path.read_text(), filename=str(path))
+        for node in ast.walk(tree):
+            targets = node.targets if isinstance(node, ast.Assign) else (
+                [node.target] if isinstance(node, (ast.AugAssign, ast.AnnAssign)) else [])
+            for target in targets:
+                if (isinstance(target, ast.Attribute) and isinstance(target.value, ast.Attribute)
+                        and (target.value.attr, target.attr) in (("law", "config"),
+                                                                 ("limiter", "limits"))):
+                    offenders.append(f"{path.relative_to(PACKAGE)}:{node.lineno}")
+    allowed = {"servo.py"}
+    assert {o.split(":")[0] for o in offenders} <= allowed, offenders
+    assert offenders, "Servo.reconfigure no longer found: update this test"

@@ -17,7 +17,7 @@ import numpy as np
 
 from vservo_node.control import frames
 from vservo_node.control.safety import LimitSet
-from vservo_node.interface import SENSING_MODES
+from vservo_node.interface import ENDED_STATES, SENSING_MODES
 from vservo_node.params import default
 from vservo_node.servo import Observation, Servo, ServoSettings, TaughtView
 
@@ -202,7 +202,7 @@ def run_episode(servo: Servo, sense, q0, T_base_camera_goal, arm_true, *, rate_h
         obs = sense(q, t)
         cmd, status = servo.step(obs, q, t, dt)
         meter.add(q, cmd, status)
-        if servo.state in ("converged", "halted"):
+        if servo.state in ENDED_STATES:
             break
         q = q + cmd * dt
     return meter.result(servo, status, t, arm_true.camera_pose(q))
@@ -473,6 +473,6 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
         cmd, status = servo.command(cell.joint_state(t)[0], t, period)
         cell.command_velocity(cmd, t)
         meter.add(*cell.arm.true_state(t), status)
-        if servo.state in ("converged", "halted"):
+        if servo.state in ENDED_STATES:
             break
     return meter.result(servo, status, t, cell.camera_pose(t))

@@ -6,6 +6,7 @@ Topic names are relative so that users remap them; `~/` names live under the nod
 from __future__ import annotations
 
 import math
+from enum import StrEnum
 
 # --- controller node (executable `vservo_node`, default node name `vservo`) -----------------
 CONTROLLER_NODE = "vservo"
@@ -90,16 +91,87 @@ RESULT_FIELDS = (
     "pose_estimate_check_deg",
 )
 
-# Supervisor states, in the order a normal run visits them.
-SUPERVISOR_STATES = (
-    "disabled",   # motion not enabled: never commands anything but zero
-    "armed",      # motion enabled, waiting for start
-    "servoing",   # closing the loop
-    "settling",   # error below tolerance, waiting out the dwell time
-    "converged",  # run ended: goal reached, explicit zero sent
-    "braking",    # a halt reason arrived: ramping the command to zero
-    "halted",     # run ended on a halt reason: explicit zero sent
-)
+class State(StrEnum):
+    """Supervisor states, in the order a normal run visits them. str-valued: a member equals
+    its string and is published as it (``servo/status``, run results, bags)."""
+
+    DISABLED = "disabled"     # motion not enabled: never commands anything but zero
+    ARMED = "armed"           # motion enabled, waiting for start
+    SERVOING = "servoing"     # closing the loop
+    SETTLING = "settling"     # error below tolerance, waiting out the dwell time
+    CONVERGED = "converged"   # run ended: goal reached, explicit zero sent
+    BRAKING = "braking"       # a halt reason arrived: ramping the command to zero
+    HALTED = "halted"         # run ended on a halt reason: explicit zero sent
+
+
+#: The state names as plain strings, in the order a normal run visits them.
+SUPERVISOR_STATES = tuple(state.value for state in State)
+#: A run is in progress and its loop closed: stop and disable brake it.
+RUN_STATES = (State.SERVOING, State.SETTLING)
+#: The arm may move (a run in progress, or braking from one).
+MOVING_STATES = (State.SERVOING, State.SETTLING, State.BRAKING)
+#: A run ended (goal reached or halted, explicit zero sent).
+ENDED_STATES = (State.CONVERGED, State.HALTED)
+#: A run may start from these (motion enabled, no run moving).
+STARTABLE_STATES = (State.ARMED, State.CONVERGED, State.HALTED)
+
+
+class HaltReason(StrEnum):
+    """Why a run halted (published as the string in ``reason``); HALT_REASONS says each in
+    words, vservo_node.record.halts.GUIDANCE gives causes and checks."""
+
+    STOP_REQUESTED = "stop_requested"
+    TOO_FEW_FEATURES = "too_few_features"
+    IMAGE_STALE = "image_stale"
+    JOINTS_STALE = "joints_stale"
+    PERMIT_WITHDRAWN = "permit_withdrawn"
+    CAMERA_INFO_INVALID = "camera_info_invalid"
+    JOINT_LIMIT_ENVELOPE = "joint_limit_envelope"
+    MOTION_ENVELOPE = "motion_envelope"
+    TOO_CLOSE = "too_close"
+    WRONG_DIRECTION = "wrong_direction"
+    NOT_FOLLOWING = "not_following"
+    DIVERGING = "diverging"
+    INITIAL_ERROR_TOO_LARGE = "initial_error_too_large"
+    RUN_TIMEOUT = "run_timeout"
+    NUMERICAL_FAULT = "numerical_fault"
+    MOTION_DISABLED = "motion_disabled"
+    INTERNAL_ERROR = "internal_error"
+    FRAMES_UNPAIRED = "frames_unpaired"
+    IMAGE_JACOBIAN_SINGULAR = "image_jacobian_singular"
+    SHUTDOWN = "shutdown"
+    POSE_ESTIMATE_FAILED = "pose_estimate_failed"
+
+
+# Halt reasons in words (published and logged once each), in HaltReason's order.
+HALT_REASONS: dict[str, str] = {
+    HaltReason.STOP_REQUESTED: "stop was requested",
+    HaltReason.TOO_FEW_FEATURES: "fewer matched features than the minimum",
+    HaltReason.IMAGE_STALE: "no fresh image",
+    HaltReason.JOINTS_STALE: "no fresh joint state",
+    HaltReason.PERMIT_WITHDRAWN: "the cell withdrew the motion permit",
+    HaltReason.CAMERA_INFO_INVALID: "camera_info missing or inconsistent with the image",
+    HaltReason.JOINT_LIMIT_ENVELOPE: "a joint reached its braking envelope",
+    HaltReason.MOTION_ENVELOPE: "the tool left its motion envelope",
+    HaltReason.TOO_CLOSE: "a feature came closer than the minimum camera distance",
+    HaltReason.WRONG_DIRECTION: "features move against the motion the image Jacobian "
+                                "predicts, or the joints against their command",
+    HaltReason.NOT_FOLLOWING: "the arm is not following its command",
+    HaltReason.DIVERGING: "the image error grows",
+    HaltReason.INITIAL_ERROR_TOO_LARGE: "the first image error is above "
+                                        "control.max_initial_error_px",
+    HaltReason.RUN_TIMEOUT: "the run exceeded its maximum duration",
+    HaltReason.NUMERICAL_FAULT: "a non-finite value reached the control law or the limiter",
+    HaltReason.MOTION_DISABLED: "motion was disabled",
+    HaltReason.INTERNAL_ERROR: "an unexpected error in the node (see its log)",
+    HaltReason.FRAMES_UNPAIRED: "images arrive but none can be paired with a joint state "
+                                "(their stamps and the joint states' do not overlap)",
+    HaltReason.IMAGE_JACOBIAN_SINGULAR: "the image Jacobian stayed nearly singular: the "
+                                        "features no longer determine the camera motion",
+    HaltReason.SHUTDOWN: "the node was asked to shut down (signal or lifecycle) during a run",
+    HaltReason.POSE_ESTIMATE_FAILED: "the decoupled scheme found no pose of the taught points "
+                                     "in the current view",
+}
 
 # How a headless episode senses the target: render and perceive each image, or project the
 # target's points with pixel noise (vservo_node/sim/projected.py).

@@ -14,7 +14,7 @@ Two rates, one object:
   to zero while braking, and returns the command with the cycle's status record.
 ``step(obs, q, t, dt)`` does both, for loops that run at one rate.
 
-Supervisor (states in vservo_node.interface.SUPERVISOR_STATES):
+Supervisor (states: vservo_node.interface.State; halt reasons: interface.HaltReason):
   disabled --enable--> armed --start--> servoing <-> settling --dwell--> converged
   any moving state --halt reason--> braking --command at zero--> halted
 Halting ramps the command to zero at the deceleration limit, then reports an explicit zero.
@@ -33,37 +33,10 @@ from vservo_node.control.interaction import interaction_matrix, point_interactio
 from vservo_node.control.law import ControlLaw
 from vservo_node.control.pose_error import PoseErrorEstimator, PoseEstimate, PoseWindow
 from vservo_node.control.safety import LimitSet, Limiter
+from vservo_node.interface import (HALT_REASONS, MOVING_STATES, RUN_STATES, STARTABLE_STATES,
+                                   HaltReason, State)
 from vservo_node.servo_settings import ServoSettings
 
-# Halt reasons (published and logged once each).
-HALT_REASONS = {
-    "stop_requested": "stop was requested",
-    "too_few_features": "fewer matched features than the minimum",
-    "image_stale": "no fresh image",
-    "joints_stale": "no fresh joint state",
-    "permit_withdrawn": "the cell withdrew the motion permit",
-    "camera_info_invalid": "camera_info missing or inconsistent with the image",
-    "joint_limit_envelope": "a joint reached its braking envelope",
-    "motion_envelope": "the tool left its motion envelope",
-    "too_close": "a feature came closer than the minimum camera distance",
-    "wrong_direction": "features move against the motion the image Jacobian predicts, or the "
-                       "joints against their command",
-    "not_following": "the arm is not following its command",
-    "diverging": "the image error grows",
-    "initial_error_too_large": "the first image error is above control.max_initial_error_px",
-    "run_timeout": "the run exceeded its maximum duration",
-    "numerical_fault": "a non-finite value reached the control law or the limiter",
-    "motion_disabled": "motion was disabled",
-    "internal_error": "an unexpected error in the node (see its log)",
-    "frames_unpaired": "images arrive but none can be paired with a joint state (their stamps "
-                       "and the joint states' do not overlap)",
-    "image_jacobian_singular": "the image Jacobian stayed nearly singular: the features no "
-                               "longer determine the camera motion",
-    "shutdown": "the node was asked to shut down (signal or lifecycle) during a run",
-    "pose_estimate_failed": "the decoupled scheme found no pose of the taught points in the "
-                            "current view",
-}
-MOVING_STATES = ("servoing", "settling", "braking")
 
 
 @dataclass(frozen=True)
@@ -182,7 +155,7 @@ class Servo:
         self.law = ControlLaw(settings.law_config(), arm.lower, arm.upper)
         self.limiter = Limiter(limits)
         self.reference: TaughtView | None = None
-        self.state = "disabled"
+        self.state = State.DISABLED
         self.enabled = False
         self.reason = ""
         self.detail = ""          # what the check that fired saw, with its figures
@@ -232,20 +205,20 @@ class Servo:
         """Enable or disable motion. Disabling while moving brakes to zero first."""
         self.enabled = bool(on)
         if on:
-            if self.state == "disabled":
-                self.state = "armed"
+            if self.state == State.DISABLED:
+                self.state = State.ARMED
             return True, "motion enabled"
-        if self.state in ("servoing", "settling"):
-            self.halt("motion_disabled", t)
-        elif self.state != "braking":
-            self.state = "disabled"
+        if self.state in RUN_STATES:
+            self.halt(HaltReason.MOTION_DISABLED, t)
+        elif self.state != State.BRAKING:
+            self.state = State.DISABLED
         return True, "motion disabled"
 
     def start(self, q: np.ndarray, t: float, run_id: str | None = None) -> tuple[bool, str]:
         """Begin a run from joint positions q. Allowed when motion is enabled and no run moves."""
         if not self.enabled:
             return False, "motion is not enabled (call enable first)"
-        if self.state not in ("armed", "converged", "halted"):
+        if self.state not in STARTABLE_STATES:
             return False, f"cannot start in state '{self.state}' (a run is in progress)"
         if self.reference is None:
             return False, "no taught reference loaded"
@@ -266,7 +239,7 @@ class Servo:
         self._desired = np.zeros(self.arm.n)
         self.limiter = Limiter(self.limits)  # counts are per run
         self._last_cmd = np.zeros(self.arm.n)
-        self.state, self.reason, self.detail, self.result = "servoing", "", "", None
+        self.state, self.reason, self.detail, self.result = State.SERVOING, "", "", None
         return True, f"run {self._run.run_id} started"
 
     def _pose_estimator(self) -> tuple[PoseErrorEstimator | None, str]:
@@ -300,30 +273,30 @@ class Servo:
         return out
 
     def stop(self, t: float) -> tuple[bool, str]:
-        if self.state in ("servoing", "settling"):
-            self.halt("stop_requested", t)
+        if self.state in RUN_STATES:
+            self.halt(HaltReason.STOP_REQUESTED, t)
             return True, "stopping: braking to zero"
         return True, f"nothing to stop in state '{self.state}'"
 
     def halt(self, reason: str, t: float, detail: str = "") -> None:
         """Begin braking for reason (a key of HALT_REASONS), ``detail`` saying what the check
         saw. Only the first reason counts."""
-        if self.state not in ("servoing", "settling"):
+        if self.state not in RUN_STATES:
             return
-        self.state, self.reason, self.detail = "braking", reason, detail
+        self.state, self.reason, self.detail = State.BRAKING, reason, detail
         self._desired = np.zeros(self.arm.n)
 
     # --- the vision cycle ------------------------------------------------------------------
     def observe(self, obs: Observation, q: np.ndarray, t: float) -> None:
         """Run the law for one image (time t = image time, q = joints at that time)."""
-        if self.state not in ("servoing", "settling") or self.reference is None:
+        if self.state not in RUN_STATES or self.reference is None:
             return
         s, run = self.settings, self._run
         q = np.asarray(q, dtype=float)
         ref_index = self.reference.index()
         pairs = [(i, ref_index[k]) for i, k in enumerate(obs.keys) if k in ref_index]
         if len(pairs) < s.min_features:
-            self.halt("too_few_features", t, f"{len(pairs)} of {len(self.reference.keys)} "
+            self.halt(HaltReason.TOO_FEW_FEATURES, t, f"{len(pairs)} of {len(self.reference.keys)} "
                       f"taught features matched; control.min_features = {s.min_features}")
             return
         now_i, ref_i = (np.array(ix) for ix in zip(*pairs))
@@ -337,10 +310,10 @@ class Servo:
                 np.all(np.isfinite(q))):
             bad = [name for name, v in (("features", xy_now), ("depths", z_now), ("joints", q))
                    if not np.all(np.isfinite(v))]
-            self.halt("numerical_fault", t, "non-finite " + ", ".join(bad) + " in an image cycle")
+            self.halt(HaltReason.NUMERICAL_FAULT, t, "non-finite " + ", ".join(bad) + " in an image cycle")
             return
         if np.min(z_now) < s.min_camera_distance_m:
-            self.halt("too_close", t, f"nearest feature at {np.min(z_now):.3f} m < "
+            self.halt(HaltReason.TOO_CLOSE, t, f"nearest feature at {np.min(z_now):.3f} m < "
                       f"limits.min_camera_distance_m = {s.min_camera_distance_m} m")
             return
         e = (xy_now - xy_ref).ravel()
@@ -354,7 +327,7 @@ class Servo:
         J_move = np.stack([L_local[:, :3] @ camera_jac[:3], L_local[:, 3:] @ camera_jac[3:]])
         prev = self._frame
         if prev is None and rms_px > s.max_initial_error_px:
-            self.halt("initial_error_too_large", t, f"first RMS error {rms_px:.1f} px > "
+            self.halt(HaltReason.INITIAL_ERROR_TOO_LARGE, t, f"first RMS error {rms_px:.1f} px > "
                       f"control.max_initial_error_px = {s.max_initial_error_px}")
             return
         J_law, e_law, task = J_img, e, None
@@ -362,7 +335,7 @@ class Servo:
             try:
                 task = decoupled.task(xy_now, xy_ref, z_ref, run.theta_u)
             except ValueError as exc:
-                self.halt("pose_estimate_failed", t, f"{exc} (control.scheme decoupled needs the "
+                self.halt(HaltReason.POSE_ESTIMATE_FAILED, t, f"{exc} (control.scheme decoupled needs the "
                           "taught depths and >= 4 matched points on a spread-out target)")
                 return
             run.theta_u = task.theta_u
@@ -378,22 +351,22 @@ class Servo:
             if verdict is not None:          # judged: the next judgement starts here
                 run.direction_anchor = frame
             if verdict:
-                self.halt("wrong_direction", t, "image check: " + self._direction_detail)
+                self.halt(HaltReason.WRONG_DIRECTION, t, "image check: " + self._direction_detail)
                 return
         self._frame = frame
         run.last_obs_t = t
         run.best_rms = min(run.best_rms, rms_px)
         run.final_rms = rms_px
         if rms_px > s.diverge_factor * run.best_rms + s.diverge_margin_px:
-            self.halt("diverging", t, f"RMS error {rms_px:.1f} px > {s.diverge_factor} x best "
+            self.halt(HaltReason.DIVERGING, t, f"RMS error {rms_px:.1f} px > {s.diverge_factor} x best "
                       f"{run.best_rms:.1f} px + {s.diverge_margin_px} px")
             return
         envelope_used = self._envelope_fraction(q)   # for the margins; the tick halts on it
         dq, info = self.law.compute(J_law, e_law, rms_px, q, t,
-                                    null_space_enabled=self.state == "servoing")
+                                    null_space_enabled=self.state == State.SERVOING)
         self._law_info = info
         if info.fault:
-            self.halt("numerical_fault", t, "the control law got non-finite values")
+            self.halt(HaltReason.NUMERICAL_FAULT, t, "the control law got non-finite values")
             return
         if self._singular_too_long(info, t):
             return
@@ -416,7 +389,7 @@ class Servo:
             run.pose = run.pose_estimator.estimate(xy_now, ref_i)
             # the first-order cross-check only where the result reports it: near the goal
             check = (run.pose_estimator.first_order(xy_now, ref_i)
-                     if self.state == "settling" else None)
+                     if self.state == State.SETTLING else None)
             run.pose_window.add(t, run.pose, check)
         tolerance = s.pose_tolerance
         px_ok = s.tolerance_px <= 0 or rms_px <= s.tolerance_px
@@ -425,13 +398,13 @@ class Servo:
         if px_ok and pose_ok:
             if run.below_since is None:
                 run.below_since = t
-            self.state = "settling"
+            self.state = State.SETTLING
             stopped = np.max(np.abs(self._last_cmd)) <= s.settled_joint_speed
             if t - run.below_since >= s.dwell_s and stopped:
-                self._end("converged", "", t)
+                self._end(State.CONVERGED, "", t)
         else:
             run.below_since = None
-            self.state = "servoing"
+            self.state = State.SERVOING
 
     def _current_depth(self, obs: Observation, now_i: np.ndarray, z_ref: np.ndarray):
         s = self.settings
@@ -602,7 +575,7 @@ class Servo:
                 f"follow check: joints travelled {measured:.4f} rad of the {commanded:.4f} rad "
                 f"commanded (< {s.follow_min_ratio} of it): is the arm's controller active and "
                 "listening to this node's command topic?")
-            return "not_following" if judge_travel else ""
+            return HaltReason.NOT_FOLLOWING if judge_travel else ""
         if float(moved @ asked) < self.FOLLOW_COSINE * measured * commanded:
             worst = int(np.argmin(moved * asked))
             self._follow_detail = (
@@ -610,7 +583,7 @@ class Servo:
                 f" deg away from their command (joint {self.arm.joint_names[worst]} moved "
                 f"{moved[worst]:+.4f} rad, commanded {asked[worst]:+.4f} rad): check "
                 "io.command_joint_order and the signs of the arm's controller")
-            return "wrong_direction"
+            return HaltReason.WRONG_DIRECTION
         return ""
 
     def _singular_too_long(self, info, t: float) -> bool:
@@ -632,7 +605,7 @@ class Servo:
                "control.scheme: decoupled" if s.scheme == "point" else
                "the arm (nearly) cannot make some camera motions here (a kinematic "
                "singularity of the camera Jacobian)")
-        self.halt("image_jacobian_singular", t,
+        self.halt(HaltReason.IMAGE_JACOBIAN_SINGULAR, t,
                   f"judged singular value {sigma:.2e} < {floor:.2e} for {t - run.singular_since:.2f}"
                   f" s: {why}")
         return True
@@ -672,7 +645,7 @@ class Servo:
         try:
             return self._command(q, t, dt)
         except Exception as exc:  # noqa: BLE001 - the last-resort guard of the output tick
-            self.halt("internal_error", t, f"{type(exc).__name__} in the output cycle: {exc}")
+            self.halt(HaltReason.INTERNAL_ERROR, t, f"{type(exc).__name__} in the output cycle: {exc}")
             return self.brake_blind(t, dt)
 
     def _command(self, q, t: float, dt: float) -> tuple[np.ndarray, dict]:
@@ -683,25 +656,25 @@ class Servo:
             return cmd, self._status(t, cmd, [])
         if q.shape != (self.arm.n,) or not np.all(np.isfinite(q)):
             bad = [n for n, v in zip(self.arm.joint_names, np.ravel(q)) if not math.isfinite(v)]
-            self.halt("numerical_fault", t, "non-finite joint position(s): " + ", ".join(bad)
+            self.halt(HaltReason.NUMERICAL_FAULT, t, "non-finite joint position(s): " + ", ".join(bad)
                       if bad else f"joint positions of shape {q.shape}")
             return self.brake_blind(t, dt)
-        if self.state != "braking":
+        if self.state != State.BRAKING:
             self._supervise(q, t)
-        if self.state != "braking" and self.settings.predict_between_frames:
+        if self.state != State.BRAKING and self.settings.predict_between_frames:
             self._predict(q, t)
-        desired = self._desired if self.state != "braking" else np.zeros(self.arm.n)
+        desired = self._desired if self.state != State.BRAKING else np.zeros(self.arm.n)
         scale = min(self.external_scale, self._margin_scale)
         J_tool_pt, J_cam_pt, J_ang = self._cartesian_jacobians(q)
         cmd, report = self.limiter.step(desired, q, dt, J_tool_pt, J_cam_pt, J_ang,
                                         speed_scale=scale)
-        if report.fault and self.state != "braking":
-            self.halt("numerical_fault", t, f"limiter: {report.fault}")
-        if "position_envelope" in report.acted and self.state != "braking":
+        if report.fault and self.state != State.BRAKING:
+            self.halt(HaltReason.NUMERICAL_FAULT, t, f"limiter: {report.fault}")
+        if "position_envelope" in report.acted and self.state != State.BRAKING:
             joint = (self.arm.joint_names[report.winner_joint]
                      if report.winner == "position_envelope" and report.winner_joint is not None
                      else "a joint")
-            self.halt("joint_limit_envelope", t, f"{joint} is within its braking distance of "
+            self.halt(HaltReason.JOINT_LIMIT_ENVELOPE, t, f"{joint} is within its braking distance of "
                       f"its limit (limits.position_margin included)")
         self._run.follow_cmd = self._run.follow_cmd + cmd * dt
         return self._finish_tick(cmd, t, list(report.acted))
@@ -718,16 +691,16 @@ class Servo:
                            f"tolerance_mm = {s.tolerance_mm}, tolerance_deg = "
                            f"{s.tolerance_deg} (a noisier estimate needs a longer "
                            "control.dwell_s)")
-            self.halt("run_timeout", t, detail)
+            self.halt(HaltReason.RUN_TIMEOUT, t, detail)
             return
         since = run.last_obs_t if run.last_obs_t is not None else run.t_start
         if t - since > s.observation_timeout_s:
-            self.halt("image_stale", t, f"no image used by the servo for {t - since:.2f} s "
+            self.halt(HaltReason.IMAGE_STALE, t, f"no image used by the servo for {t - since:.2f} s "
                       f"(io.image_timeout_s = {s.observation_timeout_s} s)")
             return
         if self._envelope_fraction(q) > 1.0:
             moved_m, turned = frames.pose_error(run.T_base_tool_start, self.arm.fk(q))
-            self.halt("motion_envelope", t, f"tool moved {1e3 * moved_m:.1f} mm / turned "
+            self.halt(HaltReason.MOTION_ENVELOPE, t, f"tool moved {1e3 * moved_m:.1f} mm / turned "
                       f"{math.degrees(turned):.1f} deg from its start pose (limits."
                       f"max_translation_m = {s.max_translation_m}, max_rotation_deg = "
                       f"{s.max_rotation_deg})")
@@ -757,14 +730,14 @@ class Servo:
             self.limiter.previous = cmd.copy()
         except Exception:  # noqa: BLE001 - a broken limiter must not stop the braking
             pass
-        if self.state == "servoing" or self.state == "settling":
-            self.state = "braking"
+        if self.state in RUN_STATES:
+            self.state = State.BRAKING
         return self._finish_tick(cmd, t, ["blind_brake"])
 
     def _finish_tick(self, cmd: np.ndarray, t: float, acted: list) -> tuple[np.ndarray, dict]:
-        if self.state == "braking" and np.max(np.abs(cmd)) <= 1e-9:
+        if self.state == State.BRAKING and np.max(np.abs(cmd)) <= 1e-9:
             cmd = np.zeros(self.arm.n)
-            self._end("halted", self.reason, t)
+            self._end(State.HALTED, self.reason, t)
         self._last_cmd = cmd
         return cmd, self._status(t, cmd, acted)
 
@@ -807,7 +780,7 @@ class Servo:
             J_law = interaction_matrix(self.settings.interaction_estimate, xy_now, z_now,
                                        xy_ref, z_ref) @ camera_jac
         dq, info = self.law.compute(J_law, e_law, rms_px, q, t,
-                                    null_space_enabled=self.state == "servoing")
+                                    null_space_enabled=self.state == State.SERVOING)
         if info.fault:
             return
         self._law_info = info
@@ -835,7 +808,7 @@ class Servo:
         run.end_t = t
         pose = run.pose_window.summary() if run.pose_window is not None else None
         self.result = {
-            "run_id": run.run_id, "converged": state == "converged", "reason": reason,
+            "run_id": run.run_id, "converged": state == State.CONVERGED, "reason": str(reason),
             "time_s": t - run.t_start, "final_rms_px": run.final_rms, "detail": self.detail,
             "final_pose_error_mm": None, "final_pose_error_deg": None,
             "pose_estimate": (run.pose_estimator.method if run.pose_estimator is not None
@@ -856,8 +829,8 @@ class Servo:
         return {
             "t": t,
             "run_id": self._run.run_id if self._run else "",
-            "state": self.state,
-            "reason": self.reason,
+            "state": str(self.state),       # the plain string (interface.State's value)
+            "reason": str(self.reason),
             "detail": self.detail,
             "rms_px": frame.rms_px if frame else math.nan,
             "pose_error_mm": pose.translation_mm if pose is not None else math.nan,

@@ -95,7 +95,7 @@ def result_line(result: dict) -> str:
         head = "converged"
     else:
         reason = result.get("reason") or "unknown reason"
-        from vservo_node.servo import HALT_REASONS   # no rclpy: the core's table of reasons
+        from vservo_node.interface import HALT_REASONS   # no rclpy: the table of reasons
         head = f"halted: {reason}" + (f" ({HALT_REASONS[reason]})" if reason in HALT_REASONS
                                       else "")
     line = (f"{head} after {_number(result.get('time_s'), '.2f')} s, final RMS error "

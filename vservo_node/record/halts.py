@@ -2,7 +2,7 @@
 report's verdict, the sweep's failure summary and the README (``## Halt reasons``, generated
 from :data:`GUIDANCE` by :func:`markdown_table`; a test keeps them in step).
 
-Every reason the supervisor can give (``vservo_node.servo.HALT_REASONS``) has an entry; a few
+Every reason the supervisor can give (``vservo_node.interface.HALT_REASONS``) has an entry; a few
 more cover reasons the node is about to gain and the headless episodes' own end. The causes and
 checks are what we met in the simulated cell and common practice, no source.
 """
@@ -129,15 +129,15 @@ def guidance(reason: str) -> Guidance | None:
 
 
 def describe(reason: str) -> str:
-    """What the reason means, as the supervisor defines it (servo.HALT_REASONS), else ''."""
-    from vservo_node.servo import HALT_REASONS
+    """What the reason means, as the supervisor defines it (interface.HALT_REASONS), else ''."""
+    from vservo_node.interface import HALT_REASONS
 
     return HALT_REASONS.get(reason, "")
 
 
 def markdown_table() -> str:
-    """The README's halt table: every reason of servo.HALT_REASONS, in its order."""
-    from vservo_node.servo import HALT_REASONS
+    """The README's halt table: every reason of interface.HALT_REASONS, in its order."""
+    from vservo_node.interface import HALT_REASONS
 
     rows = ["| reason | what happened | likely causes | what to check |", "|---|---|---|---|"]
     for reason, meaning in HALT_REASONS.items():
