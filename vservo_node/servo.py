@@ -21,114 +21,26 @@ Halting ramps the command to zero at the deceleration limit, then reports an exp
 """
 from __future__ import annotations
 
-import functools
 import math
-from dataclasses import dataclass, field
-from typing import Any, Hashable, Sequence
+from typing import Any, Sequence
 
 import numpy as np
 
 from vservo_node.control import decoupled, frames
 from vservo_node.control.interaction import interaction_matrix, point_interaction_matrix
-from vservo_node.control.law import ControlLaw
-from vservo_node.control.pose_error import PoseErrorEstimator, PoseEstimate, PoseWindow
+from vservo_node.control.law import ControlLaw, LawInfo
+from vservo_node.control.pose_error import PoseErrorEstimator, PoseWindow
 from vservo_node.control.safety import LimitSet, Limiter
 from vservo_node.interface import (HALT_REASONS, MOVING_STATES, RUN_STATES, STARTABLE_STATES,
                                    HaltReason, State)
-from vservo_node.servo_settings import ServoSettings
+from vservo_node.servo_checks import SupervisorChecks
+from vservo_node.servo_inputs import Observation, TaughtView
+from vservo_node.servo_run import Frame, Matched, RunState, run_result
+from vservo_node.servo_settings import PARAM_OF_FIELD, ServoSettings
 
-
-
-@dataclass(frozen=True)
-class TaughtView:
-    """What the camera saw when the pose was taught.
-
-    ``keys``: feature identities in order; ``xy`` (N, 2) normalized coordinates; ``uv`` (N, 2)
-    pixels in the current camera model (for errors in px); ``depth`` (N,) metres, or None;
-    ``model`` (N, 3) the features' positions in a frame fixed to the target (metres, e.g. the
-    target file's), or None: with it the pose error is estimated by PnP, without it from the
-    plane homography and the depths (``control.pose_error``).
-    """
-
-    keys: tuple[Hashable, ...]
-    xy: np.ndarray
-    uv: np.ndarray
-    depth: np.ndarray | None = None
-    image_size: tuple[int, int] | None = None   # (width, height) px, for the border margin
-    model: np.ndarray | None = None
-
-    def __post_init__(self) -> None:
-        n = len(self.keys)
-        if n == 0 or len(set(self.keys)) != n:
-            raise ValueError(f"taught view needs distinct feature keys, got {list(self.keys)}")
-        for name, arr in (("xy", self.xy), ("uv", self.uv)):
-            if np.shape(arr) != (n, 2):
-                raise ValueError(f"taught view {name} has shape {np.shape(arr)}; expected ({n}, 2)")
-        if self.depth is not None and (np.shape(self.depth) != (n,) or
-                                       not np.all(np.asarray(self.depth) > 0)):
-            raise ValueError(f"taught depths must be {n} positive values, got {self.depth}")
-        if self.model is not None and (np.shape(self.model) != (n, 3) or
-                                       not np.all(np.isfinite(self.model))):
-            raise ValueError(f"taught model points must be ({n}, 3) finite metres, got shape "
-                             f"{np.shape(self.model)}")
-
-    def index(self) -> dict[Hashable, int]:
-        return {k: i for i, k in enumerate(self.keys)}
-
-    @functools.cached_property
-    def px_per_unit(self) -> float:
-        """Pixels per normalized unit, from the view itself (spread of uv over spread of xy)."""
-        d_uv = np.linalg.norm(self.uv - self.uv.mean(axis=0), axis=1).sum()
-        d_xy = np.linalg.norm(self.xy - self.xy.mean(axis=0), axis=1).sum()
-        return float(d_uv / d_xy) if d_xy > 0 else 1.0
-
-
-@dataclass(frozen=True)
-class Observation:
-    """Matched features of one image: ``keys`` (M,), ``uv`` (M, 2) px, ``xy`` (M, 2)
-    normalized, ``depth`` (M,) metres or None (then the configured depth source applies)."""
-
-    keys: tuple[Hashable, ...]
-    uv: np.ndarray
-    xy: np.ndarray
-    depth: np.ndarray | None = None
-
-
-@dataclass
-class _RunState:
-    run_id: str
-    t_start: float
-    T_base_tool_start: np.ndarray
-    best_rms: float = math.inf
-    below_since: float | None = None
-    wrong_frames: int = 0
-    direction_anchor: "_Frame | None" = None
-    probe_t0: float | None = None
-    follow_cmd: np.ndarray | float = 0.0   # commanded joint travel (rad) in the window
-    follow_phase: str = "run"              # nod_out, nod_back or run (Servo._following)
-    follow_t0: float = 0.0
-    follow_q0: np.ndarray | None = None
-    final_rms: float = math.nan
-    end_t: float | None = None
-    last_obs_t: float | None = None        # time of the last observation the law used
-    theta_u: np.ndarray | None = None      # decoupled scheme: the last turn, kept continuous
-    singular_since: float | None = None
-    pose: PoseEstimate | None = None       # the last frame's pose-error estimate
-    pose_window: PoseWindow | None = None  # the estimates of the last dwell_s
-    pose_estimator: PoseErrorEstimator | None = None
-
-
-@dataclass
-class _Frame:
-    """What observe() keeps for the next frame and for command()."""
-    t: float
-    q: np.ndarray
-    keys: tuple
-    e: np.ndarray
-    J_move: np.ndarray   # (2, 2N, n): feature motion from camera translation, from rotation
-    rms_px: float
-    law_inputs: tuple | None = None   # (z_now, xy_ref, z_ref) for the law between frames
-    task: decoupled.Task | None = None   # decoupled scheme: its task at this frame
+# Public names of the servo, re-exported from the modules it is split into (import paths kept).
+__all__ = ["HALT_REASONS", "MOVING_STATES", "PARAM_OF_FIELD", "Observation", "Servo",
+           "ServoSettings", "TaughtView"]
 
 
 def _check_scheme(settings: ServoSettings) -> None:
@@ -137,7 +49,7 @@ def _check_scheme(settings: ServoSettings) -> None:
                          f"{', '.join(decoupled.SCHEMES)}")
 
 
-class Servo:
+class Servo(SupervisorChecks):
     """Composes the interaction matrix, the arm model, the law, the limiter and the supervisor.
 
     ``arm``: a vservo_node.control.kinematics.ArmModel (its T_tool_camera is the hand-eye the
@@ -162,8 +74,8 @@ class Servo:
         self._direction_detail = ""
         self._follow_detail = ""
         self.external_scale = 1.0
-        self._run: _RunState | None = None
-        self._frame: _Frame | None = None
+        self._run: RunState | None = None
+        self._frame: Frame | None = None
         self._desired = np.zeros(arm.n)
         self._last_cmd = np.zeros(arm.n)
         self._law_info = None
@@ -230,7 +142,7 @@ class Servo:
             return False, (f"control.tolerance_mm / tolerance_deg need the pose error, which "
                            f"cannot be estimated for this reference: {why}")
         self._runs += 1
-        self._run = _RunState(run_id or f"run{self._runs}", t,
+        self._run = RunState(run_id or f"run{self._runs}", t,
                               self.arm.fk(np.asarray(q, float)),
                               pose_window=PoseWindow(self.settings.dwell_s),
                               pose_estimator=estimator)
@@ -288,81 +200,146 @@ class Servo:
 
     # --- the vision cycle ------------------------------------------------------------------
     def observe(self, obs: Observation, q: np.ndarray, t: float) -> None:
-        """Run the law for one image (time t = image time, q = joints at that time)."""
+        """Run the law for one image (time t = image time, q = joints at that time), in named
+        steps: match the taught features, check the inputs, the first error, the law's task,
+        the image checks (direction, divergence), then the law, the nod and arrival. A step
+        whose check fails halts and ends the cycle."""
         if self.state not in RUN_STATES or self.reference is None:
             return
-        s, run = self.settings, self._run
         q = np.asarray(q, dtype=float)
-        ref_index = self.reference.index()
+        m = self._match(obs, t)
+        if m is None or not self._inputs_usable(m, q, t):
+            return
+        e = (m.xy_now - m.xy_ref).ravel()
+        rms_px = float(np.sqrt(np.mean(np.sum((m.uv_now - m.uv_ref) ** 2, axis=1))))
+        camera_jac = self._camera_jacobian(q)
+        if self._frame is None and self._initial_error_too_large(rms_px, t):
+            return
+        law_task = self._law_task(m, e, camera_jac, t)
+        if law_task is None:
+            return
+        J_law, e_law, task = law_task
+        prev = self._frame
+        if prev is None or prev.keys != m.keys or (prev.task is None) != (task is None):
+            self.law.restart(e_law, t)
+        frame = Frame(t, q, m.keys, e, self._motion_jacobian(m, camera_jac), rms_px,
+                      (m.z_now, m.xy_ref, m.z_ref), task)
+        if self._judged_wrong_direction(frame, t):
+            return
+        self._accept(frame, t)
+        if self._diverging(rms_px, t):
+            return
+        self._apply_law(J_law, e_law, frame, m, camera_jac, t)
+
+    def _match(self, obs: Observation, t: float) -> Matched | None:
+        """The observation's features matched to the taught view (their depths now and as
+        taught), or None after halting too_few_features."""
+        s, ref = self.settings, self.reference
+        ref_index = ref.index()
         pairs = [(i, ref_index[k]) for i, k in enumerate(obs.keys) if k in ref_index]
         if len(pairs) < s.min_features:
-            self.halt(HaltReason.TOO_FEW_FEATURES, t, f"{len(pairs)} of {len(self.reference.keys)} "
-                      f"taught features matched; control.min_features = {s.min_features}")
-            return
+            self.halt(HaltReason.TOO_FEW_FEATURES, t,
+                      f"{len(pairs)} of {len(ref.keys)} taught features matched; "
+                      f"control.min_features = {s.min_features}")
+            return None
         now_i, ref_i = (np.array(ix) for ix in zip(*pairs))
-        keys = tuple(obs.keys[i] for i in now_i)
-        xy_now, xy_ref = np.asarray(obs.xy, float)[now_i], self.reference.xy[ref_i]
-        uv_now, uv_ref = np.asarray(obs.uv, float)[now_i], self.reference.uv[ref_i]
-        z_ref = (self.reference.depth[ref_i] if self.reference.depth is not None
+        z_ref = (ref.depth[ref_i] if ref.depth is not None
                  else np.full(len(ref_i), s.constant_depth_m))
-        z_now = self._current_depth(obs, now_i, z_ref)
-        if not (np.all(np.isfinite(xy_now)) and np.all(np.isfinite(z_now)) and
+        return Matched(tuple(obs.keys[i] for i in now_i), now_i, ref_i,
+                       np.asarray(obs.xy, float)[now_i], ref.xy[ref_i],
+                       np.asarray(obs.uv, float)[now_i], ref.uv[ref_i],
+                       self._current_depth(obs, now_i, z_ref), z_ref)
+
+    def _inputs_usable(self, m: Matched, q: np.ndarray, t: float) -> bool:
+        """Finite features, depths and joints, no feature too close; else halt."""
+        s = self.settings
+        if not (np.all(np.isfinite(m.xy_now)) and np.all(np.isfinite(m.z_now)) and
                 np.all(np.isfinite(q))):
-            bad = [name for name, v in (("features", xy_now), ("depths", z_now), ("joints", q))
-                   if not np.all(np.isfinite(v))]
-            self.halt(HaltReason.NUMERICAL_FAULT, t, "non-finite " + ", ".join(bad) + " in an image cycle")
-            return
-        if np.min(z_now) < s.min_camera_distance_m:
-            self.halt(HaltReason.TOO_CLOSE, t, f"nearest feature at {np.min(z_now):.3f} m < "
+            bad = [name for name, v in (("features", m.xy_now), ("depths", m.z_now),
+                                        ("joints", q)) if not np.all(np.isfinite(v))]
+            self.halt(HaltReason.NUMERICAL_FAULT, t,
+                      "non-finite " + ", ".join(bad) + " in an image cycle")
+            return False
+        if np.min(m.z_now) < s.min_camera_distance_m:
+            self.halt(HaltReason.TOO_CLOSE, t, f"nearest feature at {np.min(m.z_now):.3f} m < "
                       f"limits.min_camera_distance_m = {s.min_camera_distance_m} m")
-            return
-        e = (xy_now - xy_ref).ravel()
-        error_px = uv_now - uv_ref
-        rms_px = float(np.sqrt(np.mean(np.sum(error_px ** 2, axis=1))))
-        camera_jac = self._camera_jacobian(q)
-        J_img = interaction_matrix(s.interaction_estimate, xy_now, z_now, xy_ref, z_ref) @ camera_jac
-        # the local image Jacobian (current features) predicts how features move; the law's
-        # estimate may be taught or blended, which only approximates it far from the goal
-        L_local = point_interaction_matrix(xy_now, z_now)
-        J_move = np.stack([L_local[:, :3] @ camera_jac[:3], L_local[:, 3:] @ camera_jac[3:]])
-        prev = self._frame
-        if prev is None and rms_px > s.max_initial_error_px:
-            self.halt(HaltReason.INITIAL_ERROR_TOO_LARGE, t, f"first RMS error {rms_px:.1f} px > "
-                      f"control.max_initial_error_px = {s.max_initial_error_px}")
-            return
-        J_law, e_law, task = J_img, e, None
-        if s.scheme == "decoupled":
-            try:
-                task = decoupled.task(xy_now, xy_ref, z_ref, run.theta_u)
-            except ValueError as exc:
-                self.halt(HaltReason.POSE_ESTIMATE_FAILED, t, f"{exc} (control.scheme decoupled needs the "
-                          "taught depths and >= 4 matched points on a spread-out target)")
-                return
-            run.theta_u = task.theta_u
-            J_law, e_law = task.L @ camera_jac, task.error
-        if prev is None or prev.keys != keys or (prev.task is None) != (task is None):
-            self.law.restart(e_law, t)
-        frame = _Frame(t, q, keys, e, J_move, rms_px, (z_now, xy_ref, z_ref), task)
+            return False
+        return True
+
+    def _initial_error_too_large(self, rms_px: float, t: float) -> bool:
+        s = self.settings
+        if rms_px > s.max_initial_error_px:
+            self.halt(HaltReason.INITIAL_ERROR_TOO_LARGE, t, f"first RMS error {rms_px:.1f} px "
+                      f"> control.max_initial_error_px = {s.max_initial_error_px}")
+            return True
+        return False
+
+    @staticmethod
+    def _motion_jacobian(m: Matched, camera_jac: np.ndarray) -> np.ndarray:
+        """(2, 2N, n): feature motion per joint rate from the camera's translation and from
+        its rotation. The local image Jacobian (current features) predicts how features move;
+        the law's estimate may be taught or blended, which only approximates it far from the
+        goal."""
+        L_local = point_interaction_matrix(m.xy_now, m.z_now)
+        return np.stack([L_local[:, :3] @ camera_jac[:3], L_local[:, 3:] @ camera_jac[3:]])
+
+    def _law_task(self, m: Matched, e: np.ndarray, camera_jac: np.ndarray, t: float
+                  ) -> tuple[np.ndarray, np.ndarray, decoupled.Task | None] | None:
+        """(J_law, e_law, task) the law solves: the image Jacobian and the feature error, or
+        with the decoupled scheme that scheme's task; None after halting
+        pose_estimate_failed."""
+        s, run = self.settings, self._run
+        if s.scheme != "decoupled":
+            L = interaction_matrix(s.interaction_estimate, m.xy_now, m.z_now, m.xy_ref, m.z_ref)
+            return L @ camera_jac, e, None
+        try:
+            task = decoupled.task(m.xy_now, m.xy_ref, m.z_ref, run.theta_u)
+        except ValueError as exc:
+            self.halt(HaltReason.POSE_ESTIMATE_FAILED, t, f"{exc} (control.scheme decoupled "
+                      "needs the taught depths and >= 4 matched points on a spread-out target)")
+            return None
+        run.theta_u = task.theta_u
+        return task.L @ camera_jac, task.error, task
+
+    def _judged_wrong_direction(self, frame: Frame, t: float) -> bool:
+        """The image direction check against the run's anchor frame (:meth:`_wrong_direction`);
+        True after halting wrong_direction."""
+        run = self._run
         anchor = run.direction_anchor
-        if anchor is None or anchor.keys != keys:
+        if anchor is None or anchor.keys != frame.keys:
             run.direction_anchor = frame
-        else:
-            verdict = self._wrong_direction(anchor, e, q)
-            if verdict is not None:          # judged: the next judgement starts here
-                run.direction_anchor = frame
-            if verdict:
-                self.halt(HaltReason.WRONG_DIRECTION, t, "image check: " + self._direction_detail)
-                return
+            return False
+        verdict = self._wrong_direction(anchor, frame.e, frame.q)
+        if verdict is not None:          # judged: the next judgement starts here
+            run.direction_anchor = frame
+        if verdict:
+            self.halt(HaltReason.WRONG_DIRECTION, t, "image check: " + self._direction_detail)
+            return True
+        return False
+
+    def _accept(self, frame: Frame, t: float) -> None:
+        """The frame becomes the last one the law used."""
+        run = self._run
         self._frame = frame
         run.last_obs_t = t
-        run.best_rms = min(run.best_rms, rms_px)
-        run.final_rms = rms_px
+        run.best_rms = min(run.best_rms, frame.rms_px)
+        run.final_rms = frame.rms_px
+
+    def _diverging(self, rms_px: float, t: float) -> bool:
+        s, run = self.settings, self._run
         if rms_px > s.diverge_factor * run.best_rms + s.diverge_margin_px:
-            self.halt(HaltReason.DIVERGING, t, f"RMS error {rms_px:.1f} px > {s.diverge_factor} x best "
-                      f"{run.best_rms:.1f} px + {s.diverge_margin_px} px")
-            return
+            self.halt(HaltReason.DIVERGING, t, f"RMS error {rms_px:.1f} px > {s.diverge_factor}"
+                      f" x best {run.best_rms:.1f} px + {s.diverge_margin_px} px")
+            return True
+        return False
+
+    def _apply_law(self, J_law: np.ndarray, e_law: np.ndarray, frame: Frame, m: Matched,
+                   camera_jac: np.ndarray, t: float) -> None:
+        """The law's command for this frame (or the nod's while it runs), the margins' speed
+        scale, then arrival."""
+        q = frame.q
         envelope_used = self._envelope_fraction(q)   # for the margins; the tick halts on it
-        dq, info = self.law.compute(J_law, e_law, rms_px, q, t,
+        dq, info = self.law.compute(J_law, e_law, frame.rms_px, q, t,
                                     null_space_enabled=self.state == State.SERVOING)
         self._law_info = info
         if info.fault:
@@ -376,35 +353,8 @@ class Servo:
         else:                  # the law waits for the nod; its soft start begins after it
             self.law.restart(e_law, t)
             self._desired = nod
-        self._margin_scale = self._margins(info, uv_now, q, envelope_used)
-        self._arrival(xy_now, ref_i, rms_px, t)
-
-    def _arrival(self, xy_now: np.ndarray, ref_i: np.ndarray, rms_px: float, t: float) -> None:
-        """Arrival: every criterion set holds for the dwell time with the joints (nearly)
-        stopped: the RMS image error within control.tolerance_px, and the camera's pose error,
-        estimated from the features each frame and averaged over the last dwell_s, within
-        control.tolerance_mm / tolerance_deg (``control.pose_error``)."""
-        s, run = self.settings, self._run
-        if run.pose_estimator is not None:
-            run.pose = run.pose_estimator.estimate(xy_now, ref_i)
-            # the first-order cross-check only where the result reports it: near the goal
-            check = (run.pose_estimator.first_order(xy_now, ref_i)
-                     if self.state == State.SETTLING else None)
-            run.pose_window.add(t, run.pose, check)
-        tolerance = s.pose_tolerance
-        px_ok = s.tolerance_px <= 0 or rms_px <= s.tolerance_px
-        pose_ok = not tolerance.active or (px_ok and
-                                           run.pose_window.summary().within(tolerance))
-        if px_ok and pose_ok:
-            if run.below_since is None:
-                run.below_since = t
-            self.state = State.SETTLING
-            stopped = np.max(np.abs(self._last_cmd)) <= s.settled_joint_speed
-            if t - run.below_since >= s.dwell_s and stopped:
-                self._end(State.CONVERGED, "", t)
-        else:
-            run.below_since = None
-            self.state = State.SERVOING
+        self._margin_scale = self._margins(info, m.uv_now, q, envelope_used)
+        self._arrival(m.xy_now, m.ref_i, frame.rms_px, t)
 
     def _current_depth(self, obs: Observation, now_i: np.ndarray, z_ref: np.ndarray):
         s = self.settings
@@ -413,227 +363,6 @@ class Servo:
         if s.depth_source == "constant":
             return np.full(len(now_i), s.constant_depth_m)
         return z_ref  # taught depth: the depth at the goal stands in for the current one
-
-    # The wrong-direction check fits seen = a * (translational flow) + (rotational flow); the
-    # fitted a is believed depth / true depth. Plausible: a in this range (depths within a
-    # factor of ~3), and the fit explaining the seen motion (residual below this fraction).
-    WRONG_DIRECTION_DEPTH_RATIO = (0.3, 3.0)
-    WRONG_DIRECTION_RESIDUAL = 0.6
-    # ... and, besides, the seen motion more than 60 deg away from the predicted one: a tilted
-    # hand-eye (5 deg) under a turn about the optical axis leaves a large residual (the turn's
-    # small flow picks up the uniform flow of the tilt's share) while the features still go
-    # where predicted, ~40 deg off (measured on tray_combined).
-    WRONG_DIRECTION_COSINE = 0.5
-
-    def _wrong_direction(self, prev: _Frame, e: np.ndarray, q: np.ndarray) -> bool | None:
-        """Is the feature motion seen since frame ``prev`` explained by the local image
-        Jacobian for the joint motion in between? None: too little motion to judge yet (the
-        caller keeps ``prev`` as its anchor until the predicted motion reaches
-        wrong_direction_min_px RMS, so feature noise, ~1 px on textured targets, cannot
-        dominate the judgement).
-
-        The prediction splits into the flow from the camera's translation, which scales with
-        1/depth, and the flow from its rotation, which does not (Chaumette & Hutchinson 2006,
-        eq. 11). Believed depths may be off, so the seen motion is fitted as
-        ``a * translational + rotational`` by least squares, with ``a`` (believed over true
-        depth) held to a plausible range: with the right hand-eye, optical frame and joint order
-        the fit is close; a mirrored or turned hand-eye leaves a large residual. A judgement is
-        opposed when the residual is large *and* the seen motion points more than 60 deg away
-        from the predicted one; several opposed judgements in a row (wrong_direction_frames)
-        -> True. Neither test alone will do: the cosine flips sign with 40 % short depths where
-        the two flows nearly cancel (tray_offset's start), the residual grows large under a
-        5 deg hand-eye tilt during a turn (tray_combined). Where the flows cancel, a mirrored
-        hand-eye also looks like a depth error; the start nod (:meth:`_probe`) breaks that tie.
-        """
-        s = self.settings
-        moved_by_translation, moved_by_rotation = prev.J_move @ (q - prev.q)
-        seen = e - prev.e
-        predicted = moved_by_translation + moved_by_rotation
-        norm_px = self.reference.px_per_unit / math.sqrt(len(e) / 2)
-        if np.linalg.norm(predicted) * norm_px < s.wrong_direction_min_px:
-            return None
-        left = seen - moved_by_rotation
-        tt = float(moved_by_translation @ moved_by_translation)
-        # the best plausible depth ratio (an implausible one would explain nothing real; when
-        # the translational flow is small the ratio is ill-determined and the clip holds it)
-        ratio = float(np.clip(float(moved_by_translation @ left) / tt if tt > 0 else 1.0,
-                              *self.WRONG_DIRECTION_DEPTH_RATIO))
-        residual = np.linalg.norm(left - ratio * moved_by_translation)
-        seen_norm = np.linalg.norm(seen)
-        cosine = float(seen @ predicted) / max(seen_norm * np.linalg.norm(predicted), 1e-300)
-        opposed = (residual > self.WRONG_DIRECTION_RESIDUAL * seen_norm
-                   and cosine < self.WRONG_DIRECTION_COSINE)
-        self._direction_detail = (
-            f"features moved {math.degrees(math.acos(max(-1.0, min(1.0, cosine)))):.0f} deg away "
-            f"from the predicted motion (fit residual {residual / max(seen_norm, 1e-300):.2f} of "
-            "the seen motion) for several frames: check the hand-eye (robot.hand_eye), the "
-            "camera's optical frame and the depth source")
-        run = self._run
-        run.wrong_frames = run.wrong_frames + 1 if opposed else 0
-        return run.wrong_frames >= s.wrong_direction_frames
-
-    def _probe(self, camera_jac: np.ndarray, t: float) -> np.ndarray | None:
-        """Joint velocity of the start nod at image time t, None outside it. For
-        direction_probe_s from the run's first image the law waits and the camera turns about
-        its own centre, about the image diagonal, by one sine period of angular speed: it
-        tilts by up to direction_probe_px / focal length and comes back (net rotation zero, as
-        far as the limiter lets the command follow; the servo removes any rest).
-
-        Why: where the features' translational and rotational flows nearly cancel (a lateral
-        offset seen through a narrow field of view), a mirrored hand-eye moves the features in a
-        way a plausible depth error would also explain, and the servo's own motion cannot tell
-        the two apart for many frames. The flow of a rotation about the camera centre does not
-        depend on depth (Chaumette & Hutchinson 2006, Part I, eq. 11, the columns of w), so
-        the nod makes the first judgements of :meth:`_wrong_direction` decisive: seen against
-        predicted, a turned or mirrored optical frame or hand-eye shows up as a reversed or
-        turned flow within the nod. About the diagonal, a half turn about the optical axis, x
-        or y all reverse or turn the seen flow. (A command sent in the wrong joint order is
-        not seen here, since the prediction uses the measured joints; :meth:`_following`
-        judges the nod's way out for it.) The law waits because its own
-        early motion can swamp the nod's flow (a turn about the optical axis, which a half
-        turn of the hand-eye about that axis leaves correct). 0 px disables the nod.
-        """
-        s, run = self.settings, self._run
-        if run.probe_t0 is None:
-            run.probe_t0 = t
-        if not self._nodding(t):
-            return None
-        tau = t - run.probe_t0
-        # peak angle = peak speed * period / pi; shift (px) = focal (px per unit) * angle
-        peak = math.pi * s.direction_probe_px / (s.direction_probe_s * self.reference.px_per_unit)
-        w = peak * math.sin(2.0 * math.pi * tau / s.direction_probe_s) / math.sqrt(2.0)
-        twist = np.array([0.0, 0.0, 0.0, w, w, 0.0])
-        return np.linalg.pinv(camera_jac, rcond=1e-3) @ twist
-
-    def _envelope_fraction(self, q: np.ndarray) -> float:
-        """Fraction of the motion envelope used: the larger of tool translation and rotation
-        from the start pose over their maxima (> 1: outside)."""
-        s, run = self.settings, self._run
-        moved_m, turned_rad = frames.pose_error(run.T_base_tool_start, self.arm.fk(q))
-        return max(moved_m / s.max_translation_m if s.max_translation_m > 0 else math.inf,
-                   math.degrees(turned_rad) / s.max_rotation_deg if s.max_rotation_deg > 0
-                   else math.inf)
-
-    # The joints count as moving against their command when their net travel over a follow
-    # window points more than 60 deg away from the commanded net travel (our threshold, common
-    # practice, no source; the drives' lag shifts the two in time, not in direction, unless the
-    # motion turns within the window).
-    FOLLOW_COSINE = 0.5
-
-    def _following(self, q: np.ndarray, t: float) -> str:
-        """Judge the arm against its command over each follow window: "" (fine or not judged),
-        "not_following" (it travelled less than follow_min_ratio of the commanded net travel)
-        or "wrong_direction" (it travelled the wrong way: the command's joint order or signs
-        do not match the joints it moves). Judged only when the command asked for real net
-        travel (FOLLOW_MIN_TRAVEL over the window). Windows: the start nod's way out (from
-        the first image to its turning point, where its net travel is largest), then none
-        until the nod is back (its return leaves ~0 net travel, whose direction is noise),
-        then every follow_window_s."""
-        s, run = self.settings, self._run
-        nodding = self._nodding(t)
-        if run.follow_q0 is None:
-            if nodding and run.probe_t0 is None:
-                return ""         # no image yet: nothing commanded, the nod starts with one
-            self._open_follow_window(q, t, "nod_out" if nodding else "run")
-            return ""
-        if run.follow_phase == "nod_out":
-            if nodding and t - run.probe_t0 < 0.5 * s.direction_probe_s:
-                return ""
-            # direction only: a laggy arm may not have come far yet (judged later, over whole
-            # windows), and a direction from too little travel is not judged at all
-            verdict = self._judge_following(q, judge_travel=False)
-            self._open_follow_window(q, t, "nod_back" if nodding else "run")
-            return verdict
-        if run.follow_phase == "nod_back":
-            if nodding:
-                return ""
-            self._open_follow_window(q, t, "run")
-            return ""
-        if t - run.follow_t0 < s.follow_window_s:
-            return ""
-        verdict = self._judge_following(q)
-        self._open_follow_window(q, t, "run")
-        return verdict
-
-    # net commanded joint travel (rad) below which a follow window is not judged (our
-    # threshold, common practice, no source: well above the reported joints' noise)
-    FOLLOW_MIN_TRAVEL = 5e-3
-
-    def _open_follow_window(self, q: np.ndarray, t: float, phase: str) -> None:
-        run = self._run
-        run.follow_q0, run.follow_t0, run.follow_cmd, run.follow_phase = q.copy(), t, 0.0, phase
-
-    def _judge_following(self, q: np.ndarray, judge_travel: bool = True) -> str:
-        s, run = self.settings, self._run
-        moved = q - run.follow_q0
-        asked = np.asarray(run.follow_cmd, dtype=float)
-        measured, commanded = float(np.linalg.norm(moved)), float(np.linalg.norm(asked))
-        if commanded <= self.FOLLOW_MIN_TRAVEL:
-            return ""
-        if measured < s.follow_min_ratio * commanded:
-            self._follow_detail = (
-                f"follow check: joints travelled {measured:.4f} rad of the {commanded:.4f} rad "
-                f"commanded (< {s.follow_min_ratio} of it): is the arm's controller active and "
-                "listening to this node's command topic?")
-            return HaltReason.NOT_FOLLOWING if judge_travel else ""
-        if float(moved @ asked) < self.FOLLOW_COSINE * measured * commanded:
-            worst = int(np.argmin(moved * asked))
-            self._follow_detail = (
-                f"follow check: joints travelled {math.degrees(math.acos(max(-1.0, min(1.0, float(moved @ asked) / (measured * commanded))))):.0f}"
-                f" deg away from their command (joint {self.arm.joint_names[worst]} moved "
-                f"{moved[worst]:+.4f} rad, commanded {asked[worst]:+.4f} rad): check "
-                "io.command_joint_order and the signs of the arm's controller")
-            return HaltReason.WRONG_DIRECTION
-        return ""
-
-    def _singular_too_long(self, info, t: float) -> bool:
-        """Halt image_jacobian_singular when the judged singular value stayed below
-        singular_halt_fraction x singular_threshold for singular_halt_s: the damped solve then
-        barely moves the arm, and the run would only end at its timeout."""
-        s, run = self.settings, self._run
-        sigma = info.dls.sigma_judge if info.dls is not None else math.inf
-        floor = s.singular_halt_fraction * s.singular_threshold
-        if not sigma < floor:
-            run.singular_since = None
-            return False
-        if run.singular_since is None:
-            run.singular_since = t
-        if t - run.singular_since < s.singular_halt_s:
-            return False
-        why = ("the features (nearly) cannot tell some camera motions apart, e.g. a turn near "
-               "180 deg about the optical axis; teach closer to the start view or set "
-               "control.scheme: decoupled" if s.scheme == "point" else
-               "the arm (nearly) cannot make some camera motions here (a kinematic "
-               "singularity of the camera Jacobian)")
-        self.halt(HaltReason.IMAGE_JACOBIAN_SINGULAR, t,
-                  f"judged singular value {sigma:.2e} < {floor:.2e} for {t - run.singular_since:.2f}"
-                  f" s: {why}")
-        return True
-
-    def _margins(self, info, uv: np.ndarray, q: np.ndarray, envelope_used: float) -> float:
-        """Speed scale in [margin_floor, 1]: the smallest of the singularity, joint-limit,
-        image-border and motion-envelope margins (our design; common practice, no source).
-        Each slows the motion smoothly as its hazard nears; hard halts act beyond."""
-        s = self.settings
-
-        def ramp(room: float, zone: float) -> float:
-            return float(np.clip(room / zone, s.margin_floor, 1.0)) if zone > 0 else 1.0
-
-        scales = [1.0]
-        if info.dls is not None:
-            scales.append(ramp(info.dls.sigma_judge, s.singular_threshold))
-        bounded = np.isfinite(self.limits.lower) & np.isfinite(self.limits.upper)
-        if np.any(bounded):
-            room = np.minimum(q - self.limits.lower, self.limits.upper - q)[bounded]
-            scales.append(ramp(float(np.min(room)), s.joint_zone_rad))
-        size = self.reference.image_size
-        if size is not None and len(uv):
-            width, height = size
-            room_px = np.min(np.minimum.reduce([uv[:, 0], uv[:, 1], width - 1 - uv[:, 0],
-                                                height - 1 - uv[:, 1]]))
-            scales.append(ramp(float(room_px), s.border_margin_px))
-        scales.append(ramp(1.0 - envelope_used, s.envelope_zone))
-        return min(scales)
 
     # --- the output cycle ------------------------------------------------------------------
     def command(self, q: np.ndarray, t: float, dt: float) -> tuple[np.ndarray, dict]:
@@ -678,39 +407,6 @@ class Servo:
                       f"its limit (limits.position_margin included)")
         self._run.follow_cmd = self._run.follow_cmd + cmd * dt
         return self._finish_tick(cmd, t, list(report.acted))
-
-    def _supervise(self, q: np.ndarray, t: float) -> None:
-        """The checks that bound motion, judged on every output tick from the latest joints,
-        whether or not a frame could be used: run timeout, no observation for
-        observation_timeout_s, the motion envelope, and the arm following its command."""
-        s, run = self.settings, self._run
-        if t - run.t_start > s.max_run_s:
-            detail = f"run lasted {t - run.t_start:.2f} s > control.max_run_s = {s.max_run_s} s"
-            if s.pose_tolerance.active:   # say how far the arrival criterion in mm/deg was
-                detail += (f"; {run.pose_window.summary().describe()} against control."
-                           f"tolerance_mm = {s.tolerance_mm}, tolerance_deg = "
-                           f"{s.tolerance_deg} (a noisier estimate needs a longer "
-                           "control.dwell_s)")
-            self.halt(HaltReason.RUN_TIMEOUT, t, detail)
-            return
-        since = run.last_obs_t if run.last_obs_t is not None else run.t_start
-        if t - since > s.observation_timeout_s:
-            self.halt(HaltReason.IMAGE_STALE, t, f"no image used by the servo for {t - since:.2f} s "
-                      f"(io.image_timeout_s = {s.observation_timeout_s} s)")
-            return
-        if self._envelope_fraction(q) > 1.0:
-            moved_m, turned = frames.pose_error(run.T_base_tool_start, self.arm.fk(q))
-            self.halt(HaltReason.MOTION_ENVELOPE, t, f"tool moved {1e3 * moved_m:.1f} mm / turned "
-                      f"{math.degrees(turned):.1f} deg from its start pose (limits."
-                      f"max_translation_m = {s.max_translation_m}, max_rotation_deg = "
-                      f"{s.max_rotation_deg})")
-            return
-        # the arm against its command (before the image error's growth, judged per frame in
-        # observe: when the arm moves wrongly the error also grows, and the more specific
-        # reason is the more useful one)
-        following = self._following(q, t)
-        if following:
-            self.halt(following, t, self._follow_detail)
 
     def brake_blind(self, t: float, dt: float) -> tuple[np.ndarray, dict]:
         """Ramp the last command to zero at the deceleration limit, every joint scaled alike
@@ -786,13 +482,6 @@ class Servo:
         self._law_info = info
         self._desired = dq
 
-    def _nodding(self, t: float) -> bool:
-        """Is the start nod running at time t (or still to start: no image yet)?"""
-        s, run = self.settings, self._run
-        if s.direction_probe_px <= 0 or s.direction_probe_s <= 0:
-            return False
-        return run.probe_t0 is None or 0.0 <= t - run.probe_t0 < s.direction_probe_s
-
     def _camera_jacobian(self, q: np.ndarray) -> np.ndarray:
         """(6, n) camera twist [v; w] in the camera optical frame per joint velocity."""
         return self.arm.camera_from_tool() @ self.arm.jacobian_tool(q)
@@ -806,21 +495,7 @@ class Servo:
         self._desired = np.zeros(self.arm.n)
         run = self._run
         run.end_t = t
-        pose = run.pose_window.summary() if run.pose_window is not None else None
-        self.result = {
-            "run_id": run.run_id, "converged": state == State.CONVERGED, "reason": str(reason),
-            "time_s": t - run.t_start, "final_rms_px": run.final_rms, "detail": self.detail,
-            "final_pose_error_mm": None, "final_pose_error_deg": None,
-            "pose_estimate": (run.pose_estimator.method if run.pose_estimator is not None
-                              else ""),
-            "estimated_pose_error_mm": pose.mm if pose else math.nan,
-            "estimated_pose_error_deg": pose.deg if pose else math.nan,
-            "estimated_pose_error_spread_mm": pose.spread_mm if pose else math.nan,
-            "estimated_pose_error_spread_deg": pose.spread_deg if pose else math.nan,
-            "estimated_pose_error_frames": pose.n if pose else 0,
-            "pose_estimate_check_mm": pose.check_mm if pose else math.nan,
-            "pose_estimate_check_deg": pose.check_deg if pose else math.nan,
-        }
+        self.result = run_result(run, state, reason, self.detail, t)
 
     def _status(self, t: float, cmd: np.ndarray, acted: list[str]) -> dict:
         frame, info = self._frame, self._law_info
