@@ -367,8 +367,8 @@ SENSING = SENSING_MODES
 
 def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
                          record: bool = False, *, focal_scale: float = 1.0,
-                         sensing: str = "image", noise_px: float | None = None
-                         ) -> EpisodeResult:
+                         sensing: str = "image", noise_px: float | None = None,
+                         trace=None) -> EpisodeResult:
     """One run of a scenario through the node's code path, without ROS or clocks.
 
     ``scenario``: a shipped name, a path or a loaded ``sim.Scenario``. ``overrides``: controller
@@ -379,6 +379,9 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     ``seed``: mixed with the scenario's seed for the image and joint-state noise.
     ``focal_scale``: the controller believes focal lengths ``focal_scale`` times the true ones
     (the scenario format has no entry for it).
+    ``trace``: called as ``trace("frame", t, observation, reported q)`` after each frame and
+    ``trace("command", t, command, reported q)`` after each output period (e.g.
+    ``calib.trace.TraceRecorder``, for the hand-eye check and the delay estimate).
     ``sensing``: ``image`` (render each frame and perceive it, as below) or ``projected``
     (``sim.projected.ProjectedSensor``: the features projected through the true camera with
     ``noise_px`` of pixel noise, default by target kind; no images, no detection; teaching
@@ -460,12 +463,18 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
             t_frame = frame * frame_period
             cell.step(max(t_frame - cell.t, 0.0))   # frame and tick times may differ by rounding
             obs = observe(t_frame)
+            q_frame = cell.joint_state(t_frame)[0]
             servo.observe(_depth_scaled(obs, sc.depth_scale_belief) or no_features,
-                          cell.joint_state(t_frame)[0], t_frame)
+                          q_frame, t_frame)
+            if trace is not None:
+                trace("frame", t_frame, obs, q_frame)
             frame += 1
         cell.step(max(t - cell.t, 0.0))
-        cmd, status = servo.command(cell.joint_state(t)[0], t, period)
+        q_tick = cell.joint_state(t)[0]
+        cmd, status = servo.command(q_tick, t, period)
         cell.command_velocity(cmd, t)
+        if trace is not None:
+            trace("command", t, cmd, q_tick)
         meter.add(*cell.arm.true_state(t), status)
         if servo.state in ("converged", "halted"):
             break
