@@ -265,3 +265,20 @@ def load_samples(path) -> tuple[list, dict]:
             raise YamlFileError(f"hand-eye samples {path}: samples[{i}]: {exc}") from None
     header = {k: v for k, v in data.items() if k != "samples"}
     return out, header
+
+
+def urdf_from_bag(bag) -> str | None:
+    """The URDF text of a bag's robot_description topic (the last message), or None."""
+    from rosbags.highlevel import AnyReader
+
+    from vservo_node import interface as itf
+    from vservo_node.record.bag import default_typestore, match_topic
+
+    with AnyReader([Path(bag)], default_typestore=default_typestore()) as reader:
+        types = {c.topic: c.msgtype for c in reader.connections}
+        topic = match_topic(types, itf.TOPIC_ROBOT_DESCRIPTION, "std_msgs/msg/String")
+        text = None
+        for conn, _, raw in reader.messages(
+                connections=[c for c in reader.connections if c.topic == topic]):
+            text = reader.deserialize(raw, conn.msgtype).data
+    return text
