@@ -206,8 +206,9 @@ def scenario_trace(name: str, error_deg=None, error_mm=None, sensing: str = "ima
     sc = load_scenario(name)
     if error_deg is not None or error_mm is not None:
         E = frames.transform(
-            Rotation.from_rotvec(np.radians(error_deg or (0, 0, 0))).as_matrix(),
-            np.asarray(error_mm or (0, 0, 0), float) / 1e3)
+            Rotation.from_rotvec(np.radians(np.zeros(3) if error_deg is None else
+                                            np.asarray(error_deg, float))).as_matrix(),
+            (np.zeros(3) if error_mm is None else np.asarray(error_mm, float)) / 1e3)
         sc = dataclasses.replace(sc, T_tool_camera_belief=sc.T_tool_camera_true @ E)
     if lag is not None or latency is not None:
         dyn = sc.arm_dynamics
