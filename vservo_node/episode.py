@@ -411,8 +411,8 @@ def teach_reference(scenario, cell, camera, depth, folder, name: str = "episode"
 
 def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
                          record: bool = False, *, focal_scale: float = 1.0,
-                         sensing: str = "image", noise_px: float | None = None
-                         ) -> EpisodeResult:
+                         sensing: str = "image", noise_px: float | None = None,
+                         trace=None) -> EpisodeResult:
     """One run of a scenario through the node's code path, without ROS or clocks.
 
     ``scenario``: a shipped name, a path or a loaded ``sim.Scenario``. ``overrides``: controller
@@ -423,6 +423,9 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     ``seed``: mixed with the scenario's seed for the image and joint-state noise.
     ``focal_scale``: the controller believes focal lengths ``focal_scale`` times the true ones
     (the scenario format has no entry for it).
+    ``trace``: called as ``trace("frame", t, observation, reported q)`` after each frame and
+    ``trace("command", t, command, reported q)`` after each output period (e.g.
+    ``calib.trace.TraceRecorder``, for the hand-eye check and the delay estimate).
     ``sensing``: ``image`` (render each frame and perceive it, as below) or ``projected``
     (``sim.projected.ProjectedSensor``: the features projected through the true camera with
     ``noise_px`` of pixel noise, default by target kind; no images, no detection; teaching
@@ -510,13 +513,19 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
             grabbed = grab(t_frame)
             t0 = time.perf_counter()   # perception + servo, as the node's cycle_ms
             obs = observe(grabbed, t_frame)
+            q_frame = cell.joint_state(t_frame)[0]
             servo.observe(_depth_scaled(obs, sc.depth_scale_belief) or no_features,
-                          cell.joint_state(t_frame)[0], t_frame)
+                          q_frame, t_frame)
             meter.frame(t_frame, obs, servo.reference, time.perf_counter() - t0)
+            if trace is not None:
+                trace("frame", t_frame, obs, q_frame)
             frame += 1
         cell.step(max(t - cell.t, 0.0))
-        cmd, status = servo.command(cell.joint_state(t)[0], t, period)
+        q_tick = cell.joint_state(t)[0]
+        cmd, status = servo.command(q_tick, t, period)
         cell.command_velocity(cmd, t)
+        if trace is not None:
+            trace("command", t, cmd, q_tick)
         meter.add(*cell.arm.true_state(t), status)
         if servo.state in ("converged", "halted"):
             break
