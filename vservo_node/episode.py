@@ -16,6 +16,7 @@ from typing import Callable
 import numpy as np
 
 from vservo_node.control import frames
+from vservo_node.control.mounting import mount_from_params
 from vservo_node.control.safety import LimitSet
 from vservo_node.interface import SENSING_MODES
 from vservo_node.servo import Observation, Servo, ServoSettings, TaughtView
@@ -325,10 +326,13 @@ def servo_config_from_params(arm, values: dict) -> tuple[ServoSettings, LimitSet
     return ServoSettings.from_params(values), limits
 
 
-def servo_from_params(arm, values: dict) -> Servo:
-    """A Servo for ``arm`` (the hand-eye it believes) from validated parameter values."""
+def servo_from_params(arm, values: dict, mount=None) -> Servo:
+    """A Servo for ``arm`` (the hand-eye it believes) from validated parameter values;
+    ``mount`` (control.mounting) default: the values' robot.camera_mount."""
     settings, limits = servo_config_from_params(arm, values)
-    return Servo(arm, settings, limits, values["robot.tool_point"])
+    if mount is None:
+        mount = mount_from_params(values, arm)
+    return Servo(arm, settings, limits, values["robot.tool_point"], mount=mount)
 
 
 def focal_scaled(camera, scale: float):
