@@ -522,7 +522,8 @@ def scenario_from_dict(data, source: Path | None = None) -> Scenario:
     return Scenario(
         name=r.text(data["name"], "name"), description=str(data.get("description", "")),
         source=source, urdf_path=urdf, base_frame=frames[0], tool_frame=frames[1],
-        camera_frame=frames[2] or FIXED_CAMERA_FRAME, joint_names=tuple(arm.joint_names), q_home=q_home,
+        camera_frame=frames[2] or FIXED_CAMERA_FRAME, joint_names=tuple(arm.joint_names),
+        q_home=q_home,
         camera=camera, fps=fps, target=target, T_base_target=T_base_target, hidden=hidden,
         q_taught=q_taught, q_start=q_start, arm_dynamics=_dynamics(r, data.get("arm"), seed),
         photometric=_image(r, data.get("image")), T_tool_camera_true=T_true,
