@@ -17,6 +17,7 @@ from typing import Callable
 import numpy as np
 
 from vservo_node.control import frames
+from vservo_node.control.mounting import mount_from_params
 from vservo_node.control.safety import LimitSet
 from vservo_node.interface import SENSING_MODES
 from vservo_node.servo import Observation, Servo, ServoSettings, TaughtView
@@ -116,14 +117,18 @@ def _start(servo: Servo, q0, t: float) -> None:
 class _Meter:
     """What an episode measures at its output ticks: peaks and margins of the true arm motion,
     the first finite RMS error and, with ``record``, the statuses, joints (rad) and camera
-    positions (m, base frame)."""
+    positions (m, base frame). With a fixed camera (``mount``, control.mounting) the judged
+    pose is the tool's: the goal, the depth change and the trace are the tool's, and the
+    "camera" speed is the target origin's (the point the limiter bounds in its place)."""
 
-    def __init__(self, arm_true, T_base_camera_goal, q0, tool_point, record: bool = False):
+    def __init__(self, arm_true, T_base_camera_goal, q0, tool_point, record: bool = False,
+                 mount=None):
         self.arm = arm_true
+        self.mount = mount
         self.tool_point = np.asarray(tool_point, dtype=float)
         self.T_goal = T_base_camera_goal
         self.axis = T_base_camera_goal[:3, 2]
-        self.depth0 = float(self.axis @ arm_true.camera_pose(q0)[:3, 3])
+        self.depth0 = float(self.axis @ self.judged_pose(q0)[:3, 3])
         self.finite = np.isfinite(arm_true.lower)
         self.lower_finite = arm_true.lower[self.finite]
         self.upper_finite = arm_true.upper[self.finite]
@@ -159,14 +164,16 @@ class _Meter:
         p["joint"] = max(p["joint"], float(np.max(np.abs(dq) / arm.velocity_limits)))
         # one kinematics update for the three speeds (the values of point_jacobian_base and
         # jacobian_base); |v| as np.linalg.norm computes it for a vector, sqrt(v . v)
-        J_tool, J_camera, J_angular = arm.cartesian_jacobians(q, self.tool_point)
+        J_tool, J_camera, J_angular = (
+            arm.cartesian_jacobians(q, self.tool_point) if self.mount is None
+            else self.mount.cartesian_jacobians(arm, q, self.tool_point))
         for name, J in (("tool", J_tool), ("camera", J_camera), ("angular", J_angular)):
             v = J @ dq
             p[name] = max(p[name], math.sqrt(v @ v))
         q_finite = q[self.finite]
         self.margin = min(self.margin, float((q_finite - self.lower_finite).min()),
                           float((self.upper_finite - q_finite).min()))
-        T_cam = arm.camera_pose(q)
+        T_cam = self.judged_pose(q)
         self.depth_dev = max(self.depth_dev, abs(float(self.axis @ T_cam[:3, 3]) - self.depth0))
         if math.isnan(self.initial_rms) and not math.isnan(status["rms_px"]):
             self.initial_rms = status["rms_px"]
@@ -175,6 +182,9 @@ class _Meter:
             self.cycle_ms = math.nan
             self.qs.append(np.array(q, dtype=float))
             self.cams.append(T_cam[:3, 3].copy())
+
+    def judged_pose(self, q) -> np.ndarray:
+        return self.arm.camera_pose(q) if self.mount is None else self.arm.fk(q)
 
     def result(self, servo: Servo, status: dict, t: float, T_base_camera_end) -> EpisodeResult:
         """The episode's result: the servo's run result (``episode_timeout`` when the run did
@@ -352,10 +362,13 @@ def servo_config_from_params(arm, values: dict) -> tuple[ServoSettings, LimitSet
     return ServoSettings.from_params(values), limits
 
 
-def servo_from_params(arm, values: dict) -> Servo:
-    """A Servo for ``arm`` (the hand-eye it believes) from validated parameter values."""
+def servo_from_params(arm, values: dict, mount=None) -> Servo:
+    """A Servo for ``arm`` (the hand-eye it believes) from validated parameter values;
+    ``mount`` (control.mounting) default: the values' robot.camera_mount."""
     settings, limits = servo_config_from_params(arm, values)
-    return Servo(arm, settings, limits, values["robot.tool_point"])
+    if mount is None:
+        mount = mount_from_params(values, arm)
+    return Servo(arm, settings, limits, values["robot.tool_point"], mount=mount)
 
 
 def focal_scaled(camera, scale: float):
@@ -446,7 +459,8 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
 
     Speeds, margins and the pose error (mm, deg) are of the true arm: ``peak_*`` from the true
     joint velocities at the output ticks, the pose error between the true camera pose at the
-    end and the true taught camera pose.
+    end and the true taught camera pose (with a fixed camera: the tool's poses, and the
+    controller gets the scenario's believed ``FixedCamera``).
     """
     import tempfile
 
@@ -462,7 +476,7 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     values = episode_params({**sc.controller, **(overrides or {})}, camera_rate_hz=sc.fps)
     cell = SimCell(sc)
     camera = focal_scaled(sc.camera, focal_scale) if focal_scale != 1.0 else sc.camera
-    servo = servo_from_params(sc.arm_model("belief"), values)
+    servo = servo_from_params(sc.arm_model("belief"), values, mount=sc.mount("belief"))
     depth = DepthSettings.from_params(values)
     width, height = camera.width, camera.height
 
@@ -497,8 +511,8 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
         def observe(image, t_frame):
             return perception.process(image, t_frame)[0]
 
-    meter = _Meter(cell.arm_model, cell.taught_camera_pose, sc.q_start,
-                   values["robot.tool_point"], record)
+    meter = _Meter(cell.arm_model, cell.taught_judged_pose, sc.q_start,
+                   values["robot.tool_point"], record, mount=cell.mount)
     period = 1.0 / values["io.output_rate_hz"]
     frame_period = 1.0 / sc.fps
     no_features = Observation((), np.zeros((0, 2)), np.zeros((0, 2)))
@@ -529,4 +543,4 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
         meter.add(*cell.arm.true_state(t), status)
         if servo.state in ("converged", "halted"):
             break
-    return meter.result(servo, status, t, cell.camera_pose(t))
+    return meter.result(servo, status, t, cell.judged_pose(t))

@@ -179,6 +179,7 @@ from vservo_node import interface as itf
 from vservo_node import params
 from vservo_node.control import frames
 from vservo_node.control.kinematics import ArmModel
+from vservo_node.control.mounting import mount_from_params
 from vservo_node.episode import servo_config_from_params
 from vservo_node.perception import DepthImage, DepthSettings, Perception, taught_view
 from vservo_node.ros import convert, qos
@@ -194,6 +195,8 @@ from vservo_node.vision.targets import load_target
 READ_ONLY = frozenset({"io.sim_truth",
     "robot.urdf_path", "robot_description", "robot.base_frame", "robot.tool_frame",
     "robot.camera_frame", "robot.hand_eye", "robot.tool_point", "robot.min_joints",
+    "robot.camera_mount", "robot.fixed_camera_pose", "robot.fixed_camera_frame",
+    "robot.target_on_tool",
     "io.command_interface", "io.command_joint_order", "io.output_rate_hz",
     "io.compressed_image", "io.image_rectified"})
 # Parameters that rebuild perception and the taught view: refused while a run moves.
@@ -642,7 +645,8 @@ class ControllerNode(Node):
         hand_eye = v["robot.hand_eye"]
         try:
             arm = ArmModel.from_urdf(urdf, v["robot.base_frame"], v["robot.tool_frame"],
-                                     None if hand_eye else v["robot.camera_frame"],
+                                     None if hand_eye or v["robot.camera_mount"] == "fixed"
+                                     else v["robot.camera_frame"],
                                      v["robot.min_joints"])
             if hand_eye:
                 arm.set_hand_eye(frames.transform_from_xyz_quat(hand_eye[:3], hand_eye[3:]))
@@ -676,11 +680,13 @@ class ControllerNode(Node):
             return
         try:
             settings, limits = self._servo_config(self._values)
+            mount = mount_from_params(self._values, self.arm)   # None: wrist camera
         except ValueError as exc:
             self._problems["servo"] = str(exc)
             self.get_logger().error(f"servo not built: {exc}")
             return
-        self.servo = Servo(self.arm, settings, limits, self._values["robot.tool_point"])
+        self.servo = Servo(self.arm, settings, limits, self._values["robot.tool_point"],
+                           mount=mount)
         self._problems["servo"] = ""
         self._rebuild_vision()
 
