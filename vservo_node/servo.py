@@ -58,9 +58,13 @@ class Servo(SupervisorChecks):
     """
 
     def __init__(self, arm, settings: ServoSettings, limits: LimitSet,
-                 tool_point: Sequence[float] = (0.0, 0.0, 0.0)):
+                 tool_point: Sequence[float] = (0.0, 0.0, 0.0), mount=None):
         _check_scheme(settings)
         self.arm = arm
+        # None: the camera on the tool (arm.T_tool_camera); a control.mounting.FixedCamera: a
+        # camera in the cell watching a target on the tool (the image Jacobian, the limiter's
+        # watched point and the pose error follow it)
+        self.mount = mount
         self.settings = settings
         self.limits = limits
         self.tool_point = np.asarray(tool_point, dtype=float)
@@ -160,7 +164,8 @@ class Servo(SupervisorChecks):
         view = self.reference
         depth = view.depth if view.depth is not None else self.settings.constant_depth_m
         try:
-            return PoseErrorEstimator(view.xy, model_points=view.model, taught_depths=depth), ""
+            estimator = PoseErrorEstimator(view.xy, model_points=view.model, taught_depths=depth)
+            return (estimator if self.mount is None else self.mount.pose_errors(estimator)), ""
         except ValueError as exc:
             return None, str(exc)
 
@@ -483,11 +488,17 @@ class Servo(SupervisorChecks):
         self._desired = dq
 
     def _camera_jacobian(self, q: np.ndarray) -> np.ndarray:
-        """(6, n) camera twist [v; w] in the camera optical frame per joint velocity."""
+        """(6, n) camera twist [v; w] in the camera optical frame per joint velocity (relative
+        to the target: with a fixed camera, control.mounting)."""
+        if self.mount is not None:
+            return self.mount.camera_jacobian(self.arm, q)
         return self.arm.camera_from_tool() @ self.arm.jacobian_tool(q)
 
     def _cartesian_jacobians(self, q):
-        """Tool point, camera origin (linear) and tool angular Jacobians, 3 x n each."""
+        """Tool point, camera origin (linear; a fixed camera's target origin) and tool angular
+        Jacobians, 3 x n each."""
+        if self.mount is not None:
+            return self.mount.cartesian_jacobians(self.arm, q, self.tool_point)
         return self.arm.cartesian_jacobians(q, self.tool_point)
 
     def _end(self, state: str, reason: str, t: float) -> None:

@@ -23,6 +23,7 @@ class SupervisorChecks:
     """Mixin of :class:`vservo_node.servo.Servo` (not used alone)."""
 
     arm: Any
+    mount: Any
     settings: ServoSettings
     limits: LimitSet
     reference: TaughtView | None
@@ -90,8 +91,10 @@ class SupervisorChecks:
         self._direction_detail = (
             f"features moved {math.degrees(math.acos(max(-1.0, min(1.0, cosine)))):.0f} deg away "
             f"from the predicted motion (fit residual {residual / max(seen_norm, 1e-300):.2f} of "
-            "the seen motion) for several frames: check the hand-eye (robot.hand_eye), the "
-            "camera's optical frame and the depth source")
+            "the seen motion) for several frames: check " + (
+                "the hand-eye (robot.hand_eye), the camera's optical frame and the depth source"
+                if self.mount is None else "robot.camera_mount, the fixed camera's pose "
+                "(robot.fixed_camera_pose / _frame), robot.target_on_tool and the depth source"))
         run = self._run
         run.wrong_frames = run.wrong_frames + 1 if opposed else 0
         return run.wrong_frames >= s.wrong_direction_frames
