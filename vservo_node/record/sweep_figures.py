@@ -7,12 +7,7 @@ from pathlib import Path
 
 import numpy as np
 
-from vservo_node.record.sweep_results import (
-    _cell,
-    axis_label,
-    summarize,
-    write_table,
-)
+from vservo_node.record.sweep_results import _cell, axis_label, summarize, write_table
 from vservo_node.record.sweep_spec import SweepRun
 
 
