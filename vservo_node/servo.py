@@ -26,9 +26,9 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from vservo_node.control import decoupled, frames
+from vservo_node.control import decoupled
 from vservo_node.control.interaction import interaction_matrix, point_interaction_matrix
-from vservo_node.control.law import ControlLaw, LawInfo
+from vservo_node.control.law import ControlLaw
 from vservo_node.control.pose_error import PoseErrorEstimator, PoseWindow
 from vservo_node.control.safety import LimitSet, Limiter
 from vservo_node.interface import (HALT_REASONS, MOVING_STATES, RUN_STATES, STARTABLE_STATES,
@@ -379,7 +379,8 @@ class Servo(SupervisorChecks):
         try:
             return self._command(q, t, dt)
         except Exception as exc:  # noqa: BLE001 - the last-resort guard of the output tick
-            self.halt(HaltReason.INTERNAL_ERROR, t, f"{type(exc).__name__} in the output cycle: {exc}")
+            self.halt(HaltReason.INTERNAL_ERROR, t,
+                      f"{type(exc).__name__} in the output cycle: {exc}")
             return self.brake_blind(t, dt)
 
     def _command(self, q, t: float, dt: float) -> tuple[np.ndarray, dict]:
@@ -390,7 +391,8 @@ class Servo(SupervisorChecks):
             return cmd, self._status(t, cmd, [])
         if q.shape != (self.arm.n,) or not np.all(np.isfinite(q)):
             bad = [n for n, v in zip(self.arm.joint_names, np.ravel(q)) if not math.isfinite(v)]
-            self.halt(HaltReason.NUMERICAL_FAULT, t, "non-finite joint position(s): " + ", ".join(bad)
+            self.halt(HaltReason.NUMERICAL_FAULT, t,
+                      "non-finite joint position(s): " + ", ".join(bad)
                       if bad else f"joint positions of shape {q.shape}")
             return self.brake_blind(t, dt)
         if self.state != State.BRAKING:
@@ -408,8 +410,8 @@ class Servo(SupervisorChecks):
             joint = (self.arm.joint_names[report.winner_joint]
                      if report.winner == "position_envelope" and report.winner_joint is not None
                      else "a joint")
-            self.halt(HaltReason.JOINT_LIMIT_ENVELOPE, t, f"{joint} is within its braking distance of "
-                      f"its limit (limits.position_margin included)")
+            self.halt(HaltReason.JOINT_LIMIT_ENVELOPE, t, f"{joint} is within its braking "
+                      "distance of its limit (limits.position_margin included)")
         self._run.follow_cmd = self._run.follow_cmd + cmd * dt
         return self._finish_tick(cmd, t, list(report.acted))
 

@@ -1,7 +1,8 @@
 """The supervisor's checks, as methods Servo inherits: the image direction check and the start
 nod, the follow check, the motion envelope, the singular image Jacobian, the speed-scale
-margins, the checks of every output tick (``_supervise``) and arrival (``_arrival``) (DEVELOPERS.md, "The supervisor's direction checks"). They read the servo's settings,
-run and taught view and call its ``halt``; thresholds are ServoSettings fields (schema
+margins, the checks of every output tick (``_supervise``) and arrival (``_arrival``); see
+DEVELOPERS.md, "The supervisor's direction checks". They read the servo's settings, run and
+taught view and call its ``halt``; thresholds are ServoSettings fields (schema
 ``supervisor.*``) or the documented class constants below.
 """
 from __future__ import annotations
@@ -205,8 +206,9 @@ class SupervisorChecks:
             return HaltReason.NOT_FOLLOWING if judge_travel else ""
         if float(moved @ asked) < self.FOLLOW_COSINE * measured * commanded:
             worst = int(np.argmin(moved * asked))
+            cosine = max(-1.0, min(1.0, float(moved @ asked) / (measured * commanded)))
             self._follow_detail = (
-                f"follow check: joints travelled {math.degrees(math.acos(max(-1.0, min(1.0, float(moved @ asked) / (measured * commanded))))):.0f}"
+                f"follow check: joints travelled {math.degrees(math.acos(cosine)):.0f}"
                 f" deg away from their command (joint {self.arm.joint_names[worst]} moved "
                 f"{moved[worst]:+.4f} rad, commanded {asked[worst]:+.4f} rad): check "
                 "io.command_joint_order and the signs of the arm's controller")
@@ -233,7 +235,8 @@ class SupervisorChecks:
                "the arm (nearly) cannot make some camera motions here (a kinematic "
                "singularity of the camera Jacobian)")
         self.halt(HaltReason.IMAGE_JACOBIAN_SINGULAR, t,
-                  f"judged singular value {sigma:.2e} < {floor:.2e} for {t - run.singular_since:.2f}"
+                  f"judged singular value {sigma:.2e} < {floor:.2e} for "
+                  f"{t - run.singular_since:.2f}"
                   f" s: {why}")
         return True
 
@@ -285,7 +288,8 @@ class SupervisorChecks:
             return
         since = run.last_obs_t if run.last_obs_t is not None else run.t_start
         if t - since > s.observation_timeout_s:
-            self.halt(HaltReason.IMAGE_STALE, t, f"no image used by the servo for {t - since:.2f} s "
+            self.halt(HaltReason.IMAGE_STALE, t, f"no image used by the servo for "
+                      f"{t - since:.2f} s "
                       f"(io.image_timeout_s = {s.observation_timeout_s} s)")
             return
         if self._envelope_fraction(q) > 1.0:
