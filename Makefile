@@ -15,7 +15,7 @@ ROS2_STAMP := $(VENV_ROS2)/.installed
 VENV_JAZZY := .venv-ros2-jazzy
 JAZZY_STAMP := $(VENV_JAZZY)/.installed
 
-.PHONY: venv venv-ros2 venv-ros2-jazzy demo test test-core test-install bench soak clean
+.PHONY: venv venv-ros2 venv-ros2-jazzy demo lint test test-core test-install bench soak clean
 
 venv: $(STAMP)
 
@@ -60,8 +60,14 @@ $(JAZZY_STAMP): $(STAMP) requirements-ros2-tools.txt requirements-ros2-jazzy.txt
 demo: venv
 	$(ISOLATED) $(PY) -m vservo_node.cli demo $(DEMO_ARGS)
 
-# The whole suite; ROS tests run inside a private network namespace (see DEVELOPERS.md).
-test: venv venv-ros2 venv-ros2-jazzy
+# Lint and type checks (ruff.toml; setup.cfg [mypy]: strict on control/, vision/, servo*.py).
+lint: venv
+	$(PY) -m ruff check .
+	$(PY) -m mypy
+
+# The whole suite, after the lint and type checks; ROS tests run inside a private network
+# namespace (see DEVELOPERS.md).
+test: venv venv-ros2 venv-ros2-jazzy lint
 	$(ISOLATED) $(PY) -m pytest tests $(PYTEST_ARGS)
 
 # The suite without ROS processes (fast inner loop).

@@ -5,8 +5,9 @@
 Prints wall times (best of REPEATS) of ``yaml_files.parse_yaml`` against PyYAML's own safe
 loaders on (1) a reference-like file of MAX_BYTES (the largest file accepted: the bound on how
 long a parameter callback can be held by a file) and of 1 MiB, (2) a shipped scenario, (3) a
-"billion laughs" alias document of < 1 kB (refused at its first anchor; PyYAML builds it as shared references,
-and walking the result, as any validation or error message does, expands it), and the time of
+"billion laughs" alias document of < 1 kB (refused at its first anchor; PyYAML builds it as
+shared references, and walking the result, as any validation or error message does, expands
+it), and the time of
 ``screen_yaml`` on a rosbag2 metadata.yaml listing 38,000 split files (8 h of recording).
 """
 import time

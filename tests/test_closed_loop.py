@@ -41,7 +41,8 @@ CASES = {
 @pytest.mark.parametrize("name", sorted(CASES))
 def test_core_loop_converges_to_the_taught_pose(name):
     r = run_point_case(CASES[name])
-    assert r.converged, f"{name}: halted '{r.reason}' after {r.time_s:.2f} s, {r.final_rms_px:.2f} px"
+    assert r.converged, \
+        f"{name}: halted '{r.reason}' after {r.time_s:.2f} s, {r.final_rms_px:.2f} px"
     assert r.time_s <= 15.0
     assert r.final_rms_px < 0.1
     assert r.pose_error_mm < 0.2 and r.pose_error_deg < 0.05, (r.pose_error_mm, r.pose_error_deg)

@@ -17,11 +17,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from vservo_node import params
-from vservo_node.control.kinematics import load_robot
 from vservo_node.control.safety import LimitSet, limit_command
-from vservo_node.episode import PointScene, limits_for, servo_config_from_params
+from vservo_node.episode import limits_for, servo_config_from_params
 from vservo_node.servo import Observation, Servo, ServoSettings
-from vservo_node.vision.camera import CameraModel
 
 DT = 0.008
 ACCEL = 0.3      # rad/s^2: low, so that braking takes many output periods
@@ -196,7 +194,8 @@ def _in_range(param: params.Param):
 
 
 SERVO_SECTIONS = ("control", "supervisor", "limits", "depth", "io")
-SWEPT = [p for p in params.SCHEMA if p.name.split(".")[0] in SERVO_SECTIONS and _in_range(p) is not None
+SWEPT = [p for p in params.SCHEMA
+         if p.name.split(".")[0] in SERVO_SECTIONS and _in_range(p) is not None
          and p.name not in ("io.command_interface",)]
 
 

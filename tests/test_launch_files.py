@@ -85,7 +85,8 @@ def test_command_remap_follows_the_selected_interface(tmp_path):
     from vservo_node.ros.launch_support import COMMAND_TOPICS, command_interface
     path = tmp_path / "arm.yaml"
     path.write_text("/**/vservo:\n  ros__parameters:\n    io: {command_interface: tool_twist}\n"
-                    "/cell2/vservo:\n  ros__parameters:\n    io: {command_interface: joint_trajectory}\n")
+                    "/cell2/vservo:\n  ros__parameters:\n"
+                    "    io: {command_interface: joint_trajectory}\n")
     assert command_interface(str(path), "") == "tool_twist"
     assert command_interface(str(path), "cell1") == "tool_twist"
     assert command_interface(str(path), "/cell2") == "joint_trajectory"

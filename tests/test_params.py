@@ -138,8 +138,9 @@ def test_full_node_name_selects_its_namespace_in_file_order(tmp_path):
 def test_readme_table_matches_the_schema():
     from pathlib import Path
     readme = (Path(__file__).resolve().parent.parent / "README.md").read_text()
-    assert params.markdown_table() in readme, "README parameter table is stale: regenerate it " \
-        "with `.venv/bin/python -c 'from vservo_node import params; print(params.markdown_table())'`"
+    assert params.markdown_table() in readme, (
+        "README parameter table is stale: regenerate it with `.venv/bin/python -c "
+        "'from vservo_node import params; print(params.markdown_table())'`")
 
 
 # ------------------------------------------------------------- one definition of each default

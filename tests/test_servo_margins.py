@@ -1,14 +1,11 @@
 """Supervisor speed-scale margins (our design; common practice, no source): each margin is 1
 away from its hazard and ramps linearly down to margin_floor at it, and the servo slows by the
 smallest of them and the cell's external scale."""
-import numpy as np
 import pytest
 
 from vservo_node.control import frames
-from vservo_node.control.kinematics import load_robot
-from vservo_node.episode import PointScene, limits_for
+from vservo_node.episode import limits_for
 from vservo_node.servo import Observation, Servo, ServoSettings
-from vservo_node.vision.camera import CameraModel
 
 
 @pytest.fixture

@@ -24,7 +24,6 @@ import os
 import shutil
 from pathlib import Path
 
-import cv2
 import numpy as np
 import pytest
 import yaml
@@ -482,7 +481,8 @@ def test_files_we_write_hold_no_anchors():
 def test_refusals_name_file_key_and_expectation(tmp_path):
     bad = tmp_path / "x.yaml"
     bad.write_text(_yaml_text({"format": "vservo_target/1", "name": "t", "kind": "dots",
-                               "dots": [{"id": 0, "colour": [1, 2, 3]}, {"id": 1, "colour": [1, 2, 3]},
+                               "dots": [{"id": 0, "colour": [1, 2, 3]},
+                                        {"id": 1, "colour": [1, 2, 3]},
                                         {"id": 2, "colour": "red"}]}))
     with pytest.raises(YamlFileError, match=rf"target file {bad}: dots\[2\].colour: must be sRGB "
                                             r"\[R, G, B\] in 0..255, got 'red'"):

@@ -106,7 +106,8 @@ def main(argv=None) -> int:
             message = demo_run.start_run(node, processes)
             run_id = message.split()[1]
             harness.spin_until(node, lambda: node.result is not None
-                               and node.result["run_id"] == run_id, 60.0, "the run result",
+                               and node.result["run_id"] == run_id,  # noqa: B023 - this run
+                               60.0, "the run result",
                                processes)
             harness.spin_until(node, lambda: node.last_bag is not None, 30.0,
                                "the recorder's bag", processes)
@@ -114,8 +115,11 @@ def main(argv=None) -> int:
             bags.append((run_id, node.last_bag))
             rss.append(rss_kib(controller.popen.pid))
             rows.append(result)
-            print(f"run {len(rows):3d} {run_id}: {'converged' if result['converged'] else 'halted ' + str(result['reason'])} "
-                  f"in {result['time_s']:.2f} s, {result.get('final_pose_error_mm') or float('nan'):.3f} mm; "
+            verdict = ("converged" if result["converged"]
+                       else "halted " + str(result["reason"]))
+            pose_mm = result.get("final_pose_error_mm") or float("nan")
+            print(f"run {len(rows):3d} {run_id}: {verdict} "
+                  f"in {result['time_s']:.2f} s, {pose_mm:.3f} mm; "
                   f"controller RSS {rss[-1] / 1024:.1f} MiB", flush=True)
             node.return_to(scenario.q_start, 1.0, processes)
         end = time.monotonic() + 1.5                      # one more diagnostics message
@@ -133,7 +137,7 @@ def main(argv=None) -> int:
     if converged != n:
         failures.append(f"{n - converged} of {n} runs did not converge")
     unreadable = []
-    for run_id, bag in bags:
+    for _run_id, bag in bags:
         try:
             data = load_run(bag)
             if not getattr(data, "result", None):

@@ -25,7 +25,7 @@ TOPIC_JOINT_TRAJECTORY_CMD = "servo/joint_trajectory_cmd"  # trajectory_msgs/Joi
 TOPIC_TWIST_CMD = "servo/twist_cmd"               # geometry_msgs/TwistStamped
 # status outputs
 TOPIC_STATUS = "servo/status"                     # std_msgs/String, JSON: see STATUS_FIELDS
-TOPIC_FEATURE_ERROR = "servo/feature_error"       # std_msgs/Float64MultiArray, pixels [du1, dv1, ...]
+TOPIC_FEATURE_ERROR = "servo/feature_error"       # std_msgs/Float64MultiArray, px [du1, dv1, ...]
 TOPIC_ERROR_RMS = "servo/error_rms"               # std_msgs/Float64, pixels
 TOPIC_CAMERA_TWIST = "servo/camera_twist"         # geometry_msgs/TwistStamped, camera optical frame
 TOPIC_FEATURES = "servo/features"                 # std_msgs/Float64MultiArray, pixels [u1, v1, ...]

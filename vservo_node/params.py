@@ -495,8 +495,9 @@ def load_params_file(path: str | Path, node_name: str = "vservo") -> dict[str, A
         values.update(_flatten_checked(data[key]["ros__parameters"], path,
                                        f"{key}.ros__parameters"))
     if not values and data:
+        found = brief(", ".join(map(str, data)))
         raise YamlFileError(f"{path}: no ros__parameters for node '{node_name}' (keys such as "
-                            f"/**/{short}, /**, {short}; found: {brief(', '.join(map(str, data)))})")
+                            f"/**/{short}, /**, {short}; found: {found})")
     return values
 
 

@@ -38,9 +38,11 @@ def shipped(kind: str, name: str, suffix: str = ".yaml") -> Path:
         inside = config_dir() / kind / candidate.name
         if inside.exists():
             return inside
-        raise FileNotFoundError(f"{kind[:-1] if kind.endswith('s') else kind} file not found: {name}")
+        what = kind[:-1] if kind.endswith("s") else kind
+        raise FileNotFoundError(f"{what} file not found: {name}")
     path = config_dir() / kind / (name + suffix)
     if not path.exists():
         available = sorted(p.stem for p in (config_dir() / kind).glob("*" + suffix))
-        raise FileNotFoundError(f"no {kind} entry named '{name}'; available: {', '.join(available)}")
+        raise FileNotFoundError(f"no {kind} entry named '{name}'; available: "
+                                f"{', '.join(available)}")
     return path

@@ -121,7 +121,8 @@ def _event_problem(event, depth: int) -> str | None:
     if isinstance(event, AliasEvent):
         return f"alias *{event.anchor} refused: our YAML files use no anchors or aliases ({_PLAIN})"
     if getattr(event, "anchor", None) is not None:
-        return f"anchor &{event.anchor} refused: our YAML files use no anchors or aliases ({_PLAIN})"
+        return (f"anchor &{event.anchor} refused: our YAML files use no anchors or aliases "
+                f"({_PLAIN})")
     tag = getattr(event, "tag", None)
     if tag is not None and tag not in ALLOWED_TAGS:
         shown = "!!" + tag[len(_CORE):] if tag.startswith(_CORE) else tag

@@ -41,11 +41,12 @@ def test_noise_free_samples_recover_the_invented_hand_eye(mounting):
 @pytest.mark.parametrize("seed", [2, 5, 9])
 def test_noisy_samples_within_stated_bounds(mounting, seed):
     """0.3 px of Gaussian noise on every point, 15 samples tilted +-25 deg and turned +-60 deg.
-    Stated bounds (measured worst over seeds 2-11, then ~2x margin): the least-squares solve within 0.75 mm / 0.11 deg of the truth (worst measured
-    0.37 mm / 0.053 deg) and within 3 of its own standard deviations; the AX = XB methods, fed
-    single-view PnP poses, within 5 mm / 1.0 deg (worst 2.3 mm / 0.52 deg) except Andreff's
-    linear solve, whose translation is the weakest (within 100 mm; worst 52 mm); the
-    least-squares solve reprojects no worse than any."""
+    Stated bounds (measured worst over seeds 2-11, then ~2x margin): the least-squares solve
+    within 0.75 mm / 0.11 deg of the truth (worst measured 0.37 mm / 0.053 deg) and within 3 of
+    its own standard deviations; the AX = XB methods, fed single-view PnP poses, within 5 mm /
+    1.0 deg (worst 2.3 mm / 0.52 deg) except Andreff's linear solve, whose translation is the
+    weakest (within 100 mm; worst 52 mm); the least-squares solve reprojects no worse than
+    any."""
     cal = he.calibrate(hs.samples(15, mounting, 0.3, seed=seed), mounting, hs.FOCAL_PX)
     best = cal.best
     mm, deg = he.pose_difference(hs.truth(mounting), best.X)

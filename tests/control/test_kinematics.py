@@ -156,7 +156,7 @@ def test_cartesian_jacobians_match_finite_differences_and_the_single_queries():
             J_tool, J_camera, J_angular = arm.cartesian_jacobians(q, tool_point)
             for J, frame, offset in ((J_tool, "tool", tool_point), (J_camera, "camera", None)):
                 def point(qq, frame=frame, offset=offset):
-                    T = arm.fk(qq, frame)
+                    T = arm.fk(qq, frame)  # noqa: B023 - called within this iteration
                     return T[:3, 3] if offset is None else (T @ np.append(offset, 1.0))[:3]
 
                 fd = np.column_stack([(point(q + H * e) - point(q - H * e)) / (2 * H)

@@ -16,7 +16,6 @@ import math
 import xml.etree.ElementTree as ET
 
 import numpy as np
-import pytest
 import yaml
 from scipy.spatial.transform import Rotation
 
@@ -55,7 +54,8 @@ def test_camera_stopped_mid_run_brakes_after_the_image_timeout(cell, figures):
     cell.use(RELAYED)
     node, v = cell.node, cell.values
     T, P = v["io.image_timeout_s"], 1.0 / v["io.output_rate_hz"]
-    accel = np.broadcast_to(np.asarray(v["limits.joint_acceleration"], float), (len(cell.scenario.joint_names),))
+    accel = np.broadcast_to(np.asarray(v["limits.joint_acceleration"], float),
+                            (len(cell.scenario.joint_names),))
     run_id = _mid_run(cell)
     node.relay_mode = "pause"
     t_last = node.relayed[-1][0]

@@ -137,7 +137,7 @@ def _raw_status(bag_dir):
     rows = []
     for name in info["relative_file_paths"]:
         with open(bag_dir / name, "rb") as f:
-            for _, channel, msg in make_reader(f).iter_messages(topics=["/servo/status"]):
+            for _, _channel, msg in make_reader(f).iter_messages(topics=["/servo/status"]):
                 rows.append((msg.log_time, json.loads(_cdr_string(msg.data))))
     return sorted(rows, key=lambda r: r[0]), info["starting_time"]["nanoseconds_since_epoch"]
 

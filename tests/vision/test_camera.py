@@ -167,7 +167,8 @@ def test_rectified_mode_projects_with_p_and_ignores_d():
     h = (P[:, :3] @ R @ p.T).T
     np.testing.assert_allclose(rect.project(p), h[:, :2] / h[:, 2:], atol=1e-9)
     uv = _pixel_grid(9, 7)
-    np.testing.assert_array_equal(rect.pixels_to_normalized(uv), other_lens.pixels_to_normalized(uv))
+    np.testing.assert_array_equal(rect.pixels_to_normalized(uv),
+                                  other_lens.pixels_to_normalized(uv))
     assert rect.effective_distortion == "none"
 
 

@@ -11,8 +11,9 @@ scenario files' ``hand_eye_error``), then ``V = Ad(inv(E)) V^`` (the adjoint of 
 transform: Lynch & Park, Modern Robotics, 2017, sec. 3.3.2; ``frames.twist_transform``).
 
 ``E`` is the least-squares fit (SciPy ``least_squares``) of the observed ``ds`` of every frame
-pair of the run, the start nod included, to ``L Ad(inv(E)) V^``, summed over the frames of a pair; the pairs lie back to back
-(no frame in two), each the shortest span whose predicted motion reaches ``MIN_FLOW_PX``, so
+pair of the run, the start nod included, to ``L Ad(inv(E)) V^``, summed over the frames of a
+pair; the pairs lie back to back (no frame in two), each the shortest span whose predicted
+motion reaches ``MIN_FLOW_PX``, so
 the joint and feature noise of nearly still frames does not dominate. The standard deviations
 come from the covariance ``s^2 (J^T J)^-1`` at the optimum (Hartley & Zisserman, Multiple View
 Geometry, 2nd ed. 2003, sec. 5.2.3), the pairs treated as independent (neighbours share their

@@ -20,7 +20,6 @@ def register(subparsers) -> None:
 
 
 def _run(args) -> int:
-    import sys
     from pathlib import Path
 
     from vservo_node.record.compare import compare_runs

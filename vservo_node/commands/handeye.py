@@ -264,10 +264,11 @@ def _delay(args) -> int:
             trace, result, sc = scenario_trace(args.scenario, sensing="image", lag=args.lag,
                                                latency=args.latency)
             rate = args.output_rate or episode_params(sc.controller)["io.output_rate_hz"]
+            dyn = sc.arm_dynamics
             print(f"{sc.name} headless: drives' command_latency_s "
-                  f"{sc.arm_dynamics.command_latency_s:g} + velocity_lag_s "
-                  f"{sc.arm_dynamics.velocity_lag_s:g} = "
-                  f"{1e3 * (sc.arm_dynamics.command_latency_s + sc.arm_dynamics.velocity_lag_s):.1f}"
+                  f"{dyn.command_latency_s:g} + velocity_lag_s "
+                  f"{dyn.velocity_lag_s:g} = "
+                  f"{1e3 * (dyn.command_latency_s + dyn.velocity_lag_s):.1f}"
                   " ms configured")
         if not rate or not math.isfinite(float(rate)):
             raise ValueError("no io.output_rate_hz in the run; give --output-rate")

@@ -35,8 +35,9 @@ is "the one that wins"; ties go to the first in :data:`LIMITS`, which puts the h
 position limit first and the acceleration bound last, so the status names the most
 safety-relevant cause. A limit "acted" when it changed the command: the speed limit(s) whose
 fraction set the target's scale (not every limit the desired command exceeds), a limit that
-cut a recovering previous command, and the acceleration bound when it cut the step. In track mode the change
-``s (desired - previous)`` keeps the direction of the requested change, and since the
+cut a recovering previous command, and the acceleration bound when it cut the step. In track
+mode the change ``s (desired - previous)`` keeps the direction of the requested change, and
+since the
 acceleration box around the previous command is one of the constraints, each joint changes by
 at most a_i dt: no later clipping step can undo another limit.
 

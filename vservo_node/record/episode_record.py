@@ -11,15 +11,15 @@ the simulator's truth ``sim/camera_pose_truth`` and ``sim/taught_camera_pose`` (
 (JPEG, rendered by the simulated camera at the first and the last tick's joints);
 ``params.yaml`` (the episode's controller parameters with the scenario's robot frames and the
 believed hand-eye), ``result.json`` (the servo's result and the true pose error) and
-``episode.json`` (where the episode came from); per camera frame with a match, as the node publishes them,
-the features seen ``servo/features`` [u1, v1, ...], their errors from the taught view
+``episode.json`` (where the episode came from); per camera frame with a match, as the node
+publishes them, the features seen ``servo/features`` [u1, v1, ...], their errors from the
+taught view
 ``servo/feature_error`` [du1, dv1, ...] and ``servo/error_rms`` (px), so the report marks the
 start and end frames and plots the error of each feature as for a run of the cell.
 """
 from __future__ import annotations
 
 import json
-import math
 from datetime import datetime, timezone
 from pathlib import Path
 
