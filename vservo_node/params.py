@@ -10,6 +10,7 @@ is kept. While motion is enabled, entries marked ``tighten`` may only move in th
 """
 from __future__ import annotations
 
+import builtins
 import math
 import re
 from dataclasses import dataclass, field
@@ -36,14 +37,14 @@ class Param:
     low: float | None = None
     high: float | None = None
     choices: tuple[str, ...] = ()
-    item: type | None = None   # element type of list parameters
+    item: builtins.type | None = None   # element type of list parameters
     length: tuple[int, ...] = ()  # allowed list lengths (empty = any)
     tighten: str = ""   # "down": while enabled may only decrease; "up": only increase
     required: bool = False  # must be given (no safe default exists)
 
     def type_name(self) -> str:
         if self.type is list:
-            return f"{self.item.__name__}[]"
+            return f"{getattr(self.item, '__name__', '?')}[]"
         return self.type.__name__
 
 
@@ -260,7 +261,7 @@ def check_value(param: Param, value: Any) -> tuple[Any, str | None]:
     if param.type is list:
         if not isinstance(value, (list, tuple)):
             return None, f"{param.name}: {value!r} is not a list ({expected})"
-        items = []
+        items: list[Any] = []
         for v in value:
             if param.item is float and isinstance(v, (int, float)) and not isinstance(v, bool):
                 if not math.isfinite(v):
@@ -269,11 +270,12 @@ def check_value(param: Param, value: Any) -> tuple[Any, str | None]:
             elif param.item is str and isinstance(v, str):
                 items.append(v)
             else:
-                return None, f"{param.name}: element {v!r} is not a {param.item.__name__}"
+                return None, (f"{param.name}: element {v!r} is not a "
+                              f"{getattr(param.item, '__name__', '?')}")
         if param.length and len(items) not in param.length:
             return None, (f"{param.name}: has {len(items)} elements, expected "
                           f"{' or '.join(map(str, param.length))}")
-        if param.item is float and param.low is not None:
+        if param.item is float and param.low is not None and param.high is not None:
             outside = [v for v in items if not param.low <= v <= param.high]
             if outside:
                 return None, (f"{param.name}: {outside} outside [{param.low}, {param.high}]"

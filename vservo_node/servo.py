@@ -22,13 +22,13 @@ Halting ramps the command to zero at the deceleration limit, then reports an exp
 from __future__ import annotations
 
 import math
-from typing import Any, Sequence
+from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 
 from vservo_node.control import decoupled
 from vservo_node.control.interaction import interaction_matrix, point_interaction_matrix
-from vservo_node.control.law import ControlLaw
+from vservo_node.control.law import ControlLaw, LawInfo
 from vservo_node.control.pose_error import PoseErrorEstimator, PoseWindow
 from vservo_node.control.safety import LimitSet, Limiter
 from vservo_node.interface import (HALT_REASONS, MOVING_STATES, RUN_STATES, STARTABLE_STATES,
@@ -37,6 +37,10 @@ from vservo_node.servo_checks import SupervisorChecks
 from vservo_node.servo_inputs import Observation, TaughtView
 from vservo_node.servo_run import Frame, Matched, RunState, run_result
 from vservo_node.servo_settings import PARAM_OF_FIELD, ServoSettings
+
+if TYPE_CHECKING:
+    from vservo_node.control.kinematics import ArmModel
+    from vservo_node.control.pose_error import WindowSummary
 
 # Public names of the servo, re-exported from the modules it is split into (import paths kept).
 __all__ = ["HALT_REASONS", "MOVING_STATES", "PARAM_OF_FIELD", "Observation", "Servo",
@@ -57,8 +61,8 @@ class Servo(SupervisorChecks):
     ``tool_point``: point (tool frame, m) whose linear speed is limited.
     """
 
-    def __init__(self, arm, settings: ServoSettings, limits: LimitSet,
-                 tool_point: Sequence[float] = (0.0, 0.0, 0.0), mount=None):
+    def __init__(self, arm: ArmModel, settings: ServoSettings, limits: LimitSet,
+                 tool_point: Sequence[float] = (0.0, 0.0, 0.0), mount: Any = None) -> None:
         _check_scheme(settings)
         self.arm = arm
         # None: the camera on the tool (arm.T_tool_camera); a control.mounting.FixedCamera: a
@@ -82,14 +86,14 @@ class Servo(SupervisorChecks):
         self._frame: Frame | None = None
         self._desired = np.zeros(arm.n)
         self._last_cmd = np.zeros(arm.n)
-        self._law_info = None
+        self._law_info: LawInfo | None = None
         self._margin_scale = 1.0
         self._runs = 0
         self.result: dict[str, Any] | None = None
 
     # --- configuration ---------------------------------------------------------------------
     @staticmethod
-    def check_config(arm, settings: ServoSettings, limits: LimitSet) -> None:
+    def check_config(arm: ArmModel, settings: ServoSettings, limits: LimitSet) -> None:
         """ValueError saying what does not fit, for settings and limits this arm would get:
         everything :meth:`reconfigure` builds is built here first, so a change that passes
         this check applies without raising."""
@@ -161,7 +165,7 @@ class Servo(SupervisorChecks):
     def _pose_estimator(self) -> tuple[PoseErrorEstimator | None, str]:
         """The pose-error estimator of the taught view (PnP with its model points, else the
         plane homography with its depths or the constant depth), or None and why not."""
-        view = self.reference
+        view = self._taught
         depth = view.depth if view.depth is not None else self.settings.constant_depth_m
         try:
             estimator = PoseErrorEstimator(view.xy, model_points=view.model, taught_depths=depth)
@@ -169,13 +173,13 @@ class Servo(SupervisorChecks):
         except ValueError as exc:
             return None, str(exc)
 
-    def pose_summary(self):
+    def pose_summary(self) -> WindowSummary | None:
         """The pose-error estimates of the current (or last) run's last dwell_s
         (``control.pose_error.WindowSummary``), or None before any run."""
         run = self._run
         return run.pose_window.summary() if run is not None and run.pose_window else None
 
-    def joints_outside_limits(self, q) -> list[str]:
+    def joints_outside_limits(self, q: np.ndarray | Sequence[float]) -> list[str]:
         """One line per joint of q outside the arm's position limits (or not finite)."""
         q = np.asarray(q, dtype=float)
         out = []
@@ -239,7 +243,7 @@ class Servo(SupervisorChecks):
     def _match(self, obs: Observation, t: float) -> Matched | None:
         """The observation's features matched to the taught view (their depths now and as
         taught), or None after halting too_few_features."""
-        s, ref = self.settings, self.reference
+        s, ref = self.settings, self._taught
         ref_index = ref.index()
         pairs = [(i, ref_index[k]) for i, k in enumerate(obs.keys) if k in ref_index]
         if len(pairs) < s.min_features:
@@ -293,7 +297,7 @@ class Servo(SupervisorChecks):
         """(J_law, e_law, task) the law solves: the image Jacobian and the feature error, or
         with the decoupled scheme that scheme's task; None after halting
         pose_estimate_failed."""
-        s, run = self.settings, self._run
+        s, run = self.settings, self._active_run
         if s.scheme != "decoupled":
             L = interaction_matrix(s.interaction_estimate, m.xy_now, m.z_now, m.xy_ref, m.z_ref)
             return L @ camera_jac, e, None
@@ -309,7 +313,7 @@ class Servo(SupervisorChecks):
     def _judged_wrong_direction(self, frame: Frame, t: float) -> bool:
         """The image direction check against the run's anchor frame (:meth:`_wrong_direction`);
         True after halting wrong_direction."""
-        run = self._run
+        run = self._active_run
         anchor = run.direction_anchor
         if anchor is None or anchor.keys != frame.keys:
             run.direction_anchor = frame
@@ -324,14 +328,14 @@ class Servo(SupervisorChecks):
 
     def _accept(self, frame: Frame, t: float) -> None:
         """The frame becomes the last one the law used."""
-        run = self._run
+        run = self._active_run
         self._frame = frame
         run.last_obs_t = t
         run.best_rms = min(run.best_rms, frame.rms_px)
         run.final_rms = frame.rms_px
 
     def _diverging(self, rms_px: float, t: float) -> bool:
-        s, run = self.settings, self._run
+        s, run = self.settings, self._active_run
         if rms_px > s.diverge_factor * run.best_rms + s.diverge_margin_px:
             self.halt(HaltReason.DIVERGING, t, f"RMS error {rms_px:.1f} px > {s.diverge_factor}"
                       f" x best {run.best_rms:.1f} px + {s.diverge_margin_px} px")
@@ -361,16 +365,17 @@ class Servo(SupervisorChecks):
         self._margin_scale = self._margins(info, m.uv_now, q, envelope_used)
         self._arrival(m.xy_now, m.ref_i, frame.rms_px, t)
 
-    def _current_depth(self, obs: Observation, now_i: np.ndarray, z_ref: np.ndarray):
+    def _current_depth(self, obs: Observation, now_i: np.ndarray, z_ref: np.ndarray
+                       ) -> np.ndarray:
         s = self.settings
         if s.depth_source == "observed" and obs.depth is not None:
-            return np.asarray(obs.depth, float)[now_i]
+            return np.asarray(np.asarray(obs.depth, float)[now_i])
         if s.depth_source == "constant":
             return np.full(len(now_i), s.constant_depth_m)
         return z_ref  # taught depth: the depth at the goal stands in for the current one
 
     # --- the output cycle ------------------------------------------------------------------
-    def command(self, q: np.ndarray, t: float, dt: float) -> tuple[np.ndarray, dict]:
+    def command(self, q: np.ndarray, t: float, dt: float) -> tuple[np.ndarray, dict[str, Any]]:
         """Limited joint command for this output period and the status record.
 
         Never raises: non-finite joints halt ``numerical_fault`` and an unexpected error
@@ -383,7 +388,7 @@ class Servo(SupervisorChecks):
                       f"{type(exc).__name__} in the output cycle: {exc}")
             return self.brake_blind(t, dt)
 
-    def _command(self, q, t: float, dt: float) -> tuple[np.ndarray, dict]:
+    def _command(self, q: np.ndarray, t: float, dt: float) -> tuple[np.ndarray, dict[str, Any]]:
         q = np.asarray(q, dtype=float)
         if self.state not in MOVING_STATES:
             cmd = np.zeros(self.arm.n)
@@ -412,10 +417,11 @@ class Servo(SupervisorChecks):
                      else "a joint")
             self.halt(HaltReason.JOINT_LIMIT_ENVELOPE, t, f"{joint} is within its braking "
                       "distance of its limit (limits.position_margin included)")
-        self._run.follow_cmd = self._run.follow_cmd + cmd * dt
+        run = self._active_run
+        run.follow_cmd = run.follow_cmd + cmd * dt
         return self._finish_tick(cmd, t, list(report.acted))
 
-    def brake_blind(self, t: float, dt: float) -> tuple[np.ndarray, dict]:
+    def brake_blind(self, t: float, dt: float) -> tuple[np.ndarray, dict[str, Any]]:
         """Ramp the last command to zero at the deceleration limit, every joint scaled alike
         (direction kept), with no kinematics and no joint positions: the path for non-finite
         joints and unexpected errors. Ends the run (halted) once at zero."""
@@ -437,7 +443,8 @@ class Servo(SupervisorChecks):
             self.state = State.BRAKING
         return self._finish_tick(cmd, t, ["blind_brake"])
 
-    def _finish_tick(self, cmd: np.ndarray, t: float, acted: list) -> tuple[np.ndarray, dict]:
+    def _finish_tick(self, cmd: np.ndarray, t: float, acted: list[str]
+                     ) -> tuple[np.ndarray, dict[str, Any]]:
         if self.state == State.BRAKING and np.max(np.abs(cmd)) <= 1e-9:
             cmd = np.zeros(self.arm.n)
             self._end(State.HALTED, self.reason, t)
@@ -445,7 +452,7 @@ class Servo(SupervisorChecks):
         return cmd, self._status(t, cmd, acted)
 
     def step(self, obs: Observation | None, q: np.ndarray, t: float, dt: float
-             ) -> tuple[np.ndarray, dict]:
+             ) -> tuple[np.ndarray, dict[str, Any]]:
         if obs is not None:
             self.observe(obs, q, t)
         return self.command(q, t, dt)
@@ -493,24 +500,27 @@ class Servo(SupervisorChecks):
         """(6, n) camera twist [v; w] in the camera optical frame per joint velocity (relative
         to the target: with a fixed camera, control.mounting)."""
         if self.mount is not None:
-            return self.mount.camera_jacobian(self.arm, q)
-        return self.arm.camera_from_tool() @ self.arm.jacobian_tool(q)
+            return np.asarray(self.mount.camera_jacobian(self.arm, q))
+        return np.asarray(self.arm.camera_from_tool() @ self.arm.jacobian_tool(q))
 
-    def _cartesian_jacobians(self, q):
+    def _cartesian_jacobians(self, q: np.ndarray
+                             ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Tool point, camera origin (linear; a fixed camera's target origin) and tool angular
         Jacobians, 3 x n each."""
         if self.mount is not None:
-            return self.mount.cartesian_jacobians(self.arm, q, self.tool_point)
-        return self.arm.cartesian_jacobians(q, self.tool_point)
+            tool, camera, angular = self.mount.cartesian_jacobians(self.arm, q, self.tool_point)
+        else:
+            tool, camera, angular = self.arm.cartesian_jacobians(q, self.tool_point)
+        return tool, camera, angular
 
     def _end(self, state: str, reason: str, t: float) -> None:
         self.state, self.reason = state, reason
         self._desired = np.zeros(self.arm.n)
-        run = self._run
+        run = self._active_run
         run.end_t = t
         self.result = run_result(run, state, reason, self.detail, t)
 
-    def _status(self, t: float, cmd: np.ndarray, acted: list[str]) -> dict:
+    def _status(self, t: float, cmd: np.ndarray, acted: list[str]) -> dict[str, Any]:
         frame, info = self._frame, self._law_info
         dls = info.dls if info is not None else None
         pose = self._run.pose if self._run is not None else None
@@ -537,4 +547,4 @@ class Servo(SupervisorChecks):
     # --- read-only views for the shells -----------------------------------------------------
     def camera_twist(self, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
         """Camera twist [v; w] in the camera optical frame for joint velocity dq."""
-        return self._camera_jacobian(q) @ dq
+        return np.asarray(self._camera_jacobian(q) @ dq)

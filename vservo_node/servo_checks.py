@@ -13,6 +13,7 @@ from typing import Any
 import numpy as np
 
 from vservo_node.control import frames
+from vservo_node.control.law import LawInfo
 from vservo_node.control.safety import LimitSet
 from vservo_node.interface import HaltReason, State
 from vservo_node.servo_inputs import TaughtView
@@ -33,6 +34,22 @@ class SupervisorChecks:
     _follow_detail: str
 
     _last_cmd: np.ndarray
+    state: str
+
+    @property
+    def _active_run(self) -> RunState:
+        """The run in progress: the checks run only within one (RuntimeError otherwise, which
+        the output tick turns into a blind brake)."""
+        if self._run is None:
+            raise RuntimeError("no run in progress")
+        return self._run
+
+    @property
+    def _taught(self) -> TaughtView:
+        """The taught view (a run starts only with one)."""
+        if self.reference is None:
+            raise RuntimeError("no taught reference")
+        return self.reference
 
     def halt(self, reason: str, t: float, detail: str = "") -> None:
         raise NotImplementedError      # Servo.halt
@@ -43,7 +60,7 @@ class SupervisorChecks:
     # The wrong-direction check fits seen = a * (translational flow) + (rotational flow); the
     # fitted a is believed depth / true depth. Plausible: a in this range (depths within a
     # factor of ~3), and the fit explaining the seen motion (residual below this fraction).
-    WRONG_DIRECTION_DEPTH_RATIO = (0.3, 3.0)
+    WRONG_DIRECTION_DEPTH_RATIO: tuple[float, float] = (0.3, 3.0)
     WRONG_DIRECTION_RESIDUAL = 0.6
     # ... and, besides, the seen motion more than 60 deg away from the predicted one: a tilted
     # hand-eye (5 deg) under a turn about the optical axis leaves a large residual (the turn's
@@ -75,7 +92,7 @@ class SupervisorChecks:
         moved_by_translation, moved_by_rotation = prev.J_move @ (q - prev.q)
         seen = e - prev.e
         predicted = moved_by_translation + moved_by_rotation
-        norm_px = self.reference.px_per_unit / math.sqrt(len(e) / 2)
+        norm_px = self._taught.px_per_unit / math.sqrt(len(e) / 2)
         if np.linalg.norm(predicted) * norm_px < s.wrong_direction_min_px:
             return None
         left = seen - moved_by_rotation
@@ -84,9 +101,9 @@ class SupervisorChecks:
         # the translational flow is small the ratio is ill-determined and the clip holds it)
         ratio = float(np.clip(float(moved_by_translation @ left) / tt if tt > 0 else 1.0,
                               *self.WRONG_DIRECTION_DEPTH_RATIO))
-        residual = np.linalg.norm(left - ratio * moved_by_translation)
-        seen_norm = np.linalg.norm(seen)
-        cosine = float(seen @ predicted) / max(seen_norm * np.linalg.norm(predicted), 1e-300)
+        residual = float(np.linalg.norm(left - ratio * moved_by_translation))
+        seen_norm = float(np.linalg.norm(seen))
+        cosine = float(seen @ predicted) / max(seen_norm * float(np.linalg.norm(predicted)), 1e-300)
         opposed = (residual > self.WRONG_DIRECTION_RESIDUAL * seen_norm
                    and cosine < self.WRONG_DIRECTION_COSINE)
         self._direction_detail = (
@@ -96,7 +113,7 @@ class SupervisorChecks:
                 "the hand-eye (robot.hand_eye), the camera's optical frame and the depth source"
                 if self.mount is None else "robot.camera_mount, the fixed camera's pose "
                 "(robot.fixed_camera_pose / _frame), robot.target_on_tool and the depth source"))
-        run = self._run
+        run = self._active_run
         run.wrong_frames = run.wrong_frames + 1 if opposed else 0
         return run.wrong_frames >= s.wrong_direction_frames
 
@@ -121,22 +138,22 @@ class SupervisorChecks:
         early motion can swamp the nod's flow (a turn about the optical axis, which a half
         turn of the hand-eye about that axis leaves correct). 0 px disables the nod.
         """
-        s, run = self.settings, self._run
+        s, run = self.settings, self._active_run
         if run.probe_t0 is None:
             run.probe_t0 = t
         if not self._nodding(t):
             return None
         tau = t - run.probe_t0
         # peak angle = peak speed * period / pi; shift (px) = focal (px per unit) * angle
-        peak = math.pi * s.direction_probe_px / (s.direction_probe_s * self.reference.px_per_unit)
+        peak = math.pi * s.direction_probe_px / (s.direction_probe_s * self._taught.px_per_unit)
         w = peak * math.sin(2.0 * math.pi * tau / s.direction_probe_s) / math.sqrt(2.0)
         twist = np.array([0.0, 0.0, 0.0, w, w, 0.0])
-        return np.linalg.pinv(camera_jac, rcond=1e-3) @ twist
+        return np.asarray(np.linalg.pinv(camera_jac, rcond=1e-3) @ twist)
 
     def _envelope_fraction(self, q: np.ndarray) -> float:
         """Fraction of the motion envelope used: the larger of tool translation and rotation
         from the start pose over their maxima (> 1: outside)."""
-        s, run = self.settings, self._run
+        s, run = self.settings, self._active_run
         moved_m, turned_rad = frames.pose_error(run.T_base_tool_start, self.arm.fk(q))
         return max(moved_m / s.max_translation_m if s.max_translation_m > 0 else math.inf,
                    math.degrees(turned_rad) / s.max_rotation_deg if s.max_rotation_deg > 0
@@ -157,7 +174,7 @@ class SupervisorChecks:
         the first image to its turning point, where its net travel is largest), then none
         until the nod is back (its return leaves ~0 net travel, whose direction is noise),
         then every follow_window_s."""
-        s, run = self.settings, self._run
+        s, run = self.settings, self._active_run
         nodding = self._nodding(t)
         if run.follow_q0 is None:
             if nodding and run.probe_t0 is None:
@@ -165,7 +182,8 @@ class SupervisorChecks:
             self._open_follow_window(q, t, "nod_out" if nodding else "run")
             return ""
         if run.follow_phase == "nod_out":
-            if nodding and t - run.probe_t0 < 0.5 * s.direction_probe_s:
+            if nodding and run.probe_t0 is not None and \
+                    t - run.probe_t0 < 0.5 * s.direction_probe_s:
                 return ""
             # direction only: a laggy arm may not have come far yet (judged later, over whole
             # windows), and a direction from too little travel is not judged at all
@@ -188,11 +206,11 @@ class SupervisorChecks:
     FOLLOW_MIN_TRAVEL = 5e-3
 
     def _open_follow_window(self, q: np.ndarray, t: float, phase: str) -> None:
-        run = self._run
+        run = self._active_run
         run.follow_q0, run.follow_t0, run.follow_cmd, run.follow_phase = q.copy(), t, 0.0, phase
 
     def _judge_following(self, q: np.ndarray, judge_travel: bool = True) -> str:
-        s, run = self.settings, self._run
+        s, run = self.settings, self._active_run
         moved = q - run.follow_q0
         asked = np.asarray(run.follow_cmd, dtype=float)
         measured, commanded = float(np.linalg.norm(moved)), float(np.linalg.norm(asked))
@@ -215,11 +233,11 @@ class SupervisorChecks:
             return HaltReason.WRONG_DIRECTION
         return ""
 
-    def _singular_too_long(self, info, t: float) -> bool:
+    def _singular_too_long(self, info: LawInfo, t: float) -> bool:
         """Halt image_jacobian_singular when the judged singular value stayed below
         singular_halt_fraction x singular_threshold for singular_halt_s: the damped solve then
         barely moves the arm, and the run would only end at its timeout."""
-        s, run = self.settings, self._run
+        s, run = self.settings, self._active_run
         sigma = info.dls.sigma_judge if info.dls is not None else math.inf
         floor = s.singular_halt_fraction * s.singular_threshold
         if not sigma < floor:
@@ -240,7 +258,8 @@ class SupervisorChecks:
                   f" s: {why}")
         return True
 
-    def _margins(self, info, uv: np.ndarray, q: np.ndarray, envelope_used: float) -> float:
+    def _margins(self, info: LawInfo, uv: np.ndarray, q: np.ndarray, envelope_used: float
+                 ) -> float:
         """Speed scale in [margin_floor, 1]: the smallest of the singularity, joint-limit,
         image-border and motion-envelope margins (our design; common practice, no source).
         Each slows the motion smoothly as its hazard nears; hard halts act beyond."""
@@ -256,7 +275,7 @@ class SupervisorChecks:
         if np.any(bounded):
             room = np.minimum(q - self.limits.lower, self.limits.upper - q)[bounded]
             scales.append(ramp(float(np.min(room)), s.joint_zone_rad))
-        size = self.reference.image_size
+        size = self._taught.image_size
         if size is not None and len(uv):
             width, height = size
             room_px = np.min(np.minimum.reduce([uv[:, 0], uv[:, 1], width - 1 - uv[:, 0],
@@ -267,7 +286,7 @@ class SupervisorChecks:
 
     def _nodding(self, t: float) -> bool:
         """Is the start nod running at time t (or still to start: no image yet)?"""
-        s, run = self.settings, self._run
+        s, run = self.settings, self._active_run
         if s.direction_probe_px <= 0 or s.direction_probe_s <= 0:
             return False
         return run.probe_t0 is None or 0.0 <= t - run.probe_t0 < s.direction_probe_s
@@ -276,7 +295,7 @@ class SupervisorChecks:
         """The checks that bound motion, judged on every output tick from the latest joints,
         whether or not a frame could be used: run timeout, no observation for
         observation_timeout_s, the motion envelope, and the arm following its command."""
-        s, run = self.settings, self._run
+        s, run = self.settings, self._active_run
         if t - run.t_start > s.max_run_s:
             detail = f"run lasted {t - run.t_start:.2f} s > control.max_run_s = {s.max_run_s} s"
             if s.pose_tolerance.active:   # say how far the arrival criterion in mm/deg was
@@ -311,7 +330,7 @@ class SupervisorChecks:
         stopped: the RMS image error within control.tolerance_px, and the camera's pose error,
         estimated from the features each frame and averaged over the last dwell_s, within
         control.tolerance_mm / tolerance_deg (``control.pose_error``)."""
-        s, run = self.settings, self._run
+        s, run = self.settings, self._active_run
         if run.pose_estimator is not None:
             run.pose = run.pose_estimator.estimate(xy_now, ref_i)
             # the first-order cross-check only where the result reports it: near the goal

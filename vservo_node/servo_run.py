@@ -3,8 +3,8 @@ of one image matched to the taught view."""
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
-from typing import Hashable
+from dataclasses import dataclass, field
+from typing import Any, Hashable
 
 import numpy as np
 
@@ -34,7 +34,8 @@ class RunState:
     theta_u: np.ndarray | None = None      # decoupled scheme: the last turn, kept continuous
     singular_since: float | None = None
     pose: PoseEstimate | None = None       # the last frame's pose-error estimate
-    pose_window: PoseWindow | None = None  # the estimates of the last dwell_s
+    # the estimates of the last dwell_s (Servo.start gives it its span)
+    pose_window: PoseWindow = field(default_factory=lambda: PoseWindow(0.0))
     pose_estimator: PoseErrorEstimator | None = None
 
 
@@ -43,11 +44,12 @@ class Frame:
     """What observe() keeps for the next frame and for command()."""
     t: float
     q: np.ndarray
-    keys: tuple
+    keys: tuple[Hashable, ...]
     e: np.ndarray
     J_move: np.ndarray   # (2, 2N, n): feature motion from camera translation, from rotation
     rms_px: float
-    law_inputs: tuple | None = None   # (z_now, xy_ref, z_ref) for the law between frames
+    # (z_now, xy_ref, z_ref) for the law between frames
+    law_inputs: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
     task: decoupled.Task | None = None   # decoupled scheme: its task at this frame
 
 
@@ -67,7 +69,8 @@ class Matched:
     z_ref: np.ndarray
 
 
-def run_result(run: RunState, state: str, reason: str, detail: str, t: float) -> dict:
+def run_result(run: RunState, state: str, reason: str, detail: str, t: float
+               ) -> dict[str, Any]:
     """The run's result (interface.RESULT_FIELDS) when it ends at time t in ``state``: the
     estimated pose error of the last dwell; the true one is filled in by whoever knows it."""
     pose = run.pose_window.summary() if run.pose_window is not None else None

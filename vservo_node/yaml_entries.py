@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Collection
+from typing import NoReturn
 
 import numpy as np
 
@@ -32,7 +33,7 @@ class EntryReader:
         large, unreadable or not plain YAML (``yaml_files.load_yaml``)."""
         return load_yaml(path, error=cls.error, prefix=f"{cls.kind} ")
 
-    def fail(self, entry: str, message: str):
+    def fail(self, entry: str, message: str) -> NoReturn:
         raise self.error(f"{self.where}: {entry}: {message}")
 
     def mapping(self, value, entry: str, allowed: Collection | None = None,

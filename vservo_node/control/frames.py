@@ -10,6 +10,7 @@ Conventions (DEVELOPERS.md):
 import math
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.spatial.transform import Rotation
 
 
@@ -118,13 +119,13 @@ def twist_transform(T_a_b):
     return X
 
 
-def pose_error(T1, T2):
+def pose_error(T1: ArrayLike, T2: ArrayLike) -> tuple[float, float]:
     """Return ``(translation_m, rotation_rad)`` between two poses given in the same frame:
     the distance between their origins and the angle of the relative rotation ``R1^T R2``."""
-    T1, T2 = _homogeneous(T1, "T1"), _homogeneous(T2, "T2")
-    d = T2[:3, 3] - T1[:3, 3]
+    A, B = _homogeneous(T1, "T1"), _homogeneous(T2, "T2")
+    d = B[:3, 3] - A[:3, 3]
     translation = math.sqrt(float(d @ d))
-    R = T1[:3, :3].T @ T2[:3, :3]
+    R = A[:3, :3].T @ B[:3, :3]
     # angle = atan2(sin, cos) with 2 sin = |vee(R - R^T)| and 2 cos = trace - 1 (Rodrigues;
     # Lynch & Park 2017, Modern Robotics, sec. 3.2.3.3): accurate near 0 and near pi alike
     s = math.hypot(R[2, 1] - R[1, 2], R[0, 2] - R[2, 0], R[1, 0] - R[0, 1])

@@ -404,7 +404,8 @@ def load_robot(name_or_path: str) -> RobotConfig:
     min_joints = r.integer(spec.get("min_joints", 6), "min_joints", 1, 20)
     text = read_bounded(urdf, URDF_MAX_BYTES, prefix=f"{r.where}: urdf: ")
     try:
-        arm = ArmModel.from_urdf(text.decode("utf-8"), *frames, min_joints)
+        arm = ArmModel.from_urdf(text.decode("utf-8"), frames[0], frames[1], frames[2],
+                                 min_joints)
     except ValueError as exc:      # UnicodeDecodeError is one too
         r.fail("urdf", f"{urdf}: {exc}")
     return RobotConfig(path.stem, arm, _joint_values(r, spec["home"], "home", arm))

@@ -331,6 +331,7 @@ class ControlLaw:
         gain = self.config.gain(rms_px)
         w = self.soft_start_weight(t)
         inverse = DampedInverse(J_img, self.config.damping, sigma_judge)
+        assert self._e0 is not None           # restart set it
         primary = inverse.solve(-gain * (error - w * self._e0))
         cost, grad = joint_limit_cost(q, self.lower, self.upper)
         k = (1.0 - w) * self.config.null_space_gain

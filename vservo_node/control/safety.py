@@ -342,7 +342,7 @@ def _decelerated(previous: np.ndarray, accel: np.ndarray, dt: float) -> float:
         return max(0.0, 1.0 - float(np.min(accel[moving] * dt / speed[moving])))
 
 
-def _winner(fractions: Fractions) -> tuple[str, int | None, float]:
+def _winner(fractions: Fractions) -> tuple[str | None, int | None, float]:
     name = min((k for k in LIMITS if k in fractions),
                key=lambda k: fractions[k][0])  # first on ties
     value, joint = fractions[name]

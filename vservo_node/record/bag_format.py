@@ -80,7 +80,8 @@ def image_to_rgb(msgtype: str, msg) -> np.ndarray | None:
     if array is None:
         return None
     if array.dtype != np.uint8:
-        array = cv2.normalize(array, None, 0, 255, cv2.NORM_MINMAX, dtype=cv2.CV_8U)
+        array = cv2.normalize(array, None, 0, 255, cv2.NORM_MINMAX,  # type: ignore[call-overload]
+                              dtype=cv2.CV_8U)
     if array.ndim == 2:
         return np.repeat(array[..., None], 3, axis=2)
     array = array[..., :3]

@@ -23,7 +23,8 @@ def _plot_map(summary: dict, path: Path) -> Path:
         xs = np.arange(len(rate))
         ax.bar(xs, np.nan_to_num(rate), color="tab:green")
         for x, k, r in zip(xs, n, rate):
-            ax.text(x, (0 if np.isnan(r) else r) + 0.02, f"n={k}", ha="center", fontsize=8)
+            ax.text(float(x), (0 if np.isnan(r) else r) + 0.02, f"n={k}", ha="center",
+                    fontsize=8)
         ax.set_xticks(xs, m["labels"][0])
         ax.set_xlabel(axis_label(m["axes"][0]))
         ax.set_ylabel("success rate (fraction)")

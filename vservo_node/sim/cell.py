@@ -72,7 +72,8 @@ class SimCell:
             dynamics = dataclasses.replace(dynamics, command_timeout_s=float(command_timeout))
         q0 = scenario.q_start if q0 is None else q0
         self.arm = SimArm(self.arm_model, q0, dynamics, t0=t0)
-        self._camera = None   # built on first use: projected sensing never renders
+        # built on first use: projected sensing never renders
+        self._camera: SimCamera | None = None
         hidden = set(scenario.hidden)
         self._hidden_mask = np.array([(k[0], k[1]) in hidden for k in scenario.target.keys()])
 

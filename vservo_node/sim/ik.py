@@ -65,7 +65,7 @@ def solve_camera_pose(arm, T_base_camera, q_seed, q_rest=None) -> np.ndarray:
 
 
 def _reached(e) -> bool:
-    return np.linalg.norm(e[:3]) < TOL_M and np.linalg.norm(e[3:]) < TOL_RAD
+    return bool(np.linalg.norm(e[:3]) < TOL_M and np.linalg.norm(e[3:]) < TOL_RAD)
 
 
 def _null_space_step(J, toward_rest) -> np.ndarray:

@@ -48,8 +48,8 @@ class TextureLevel:
     @cached_property
     def texels_per_m(self) -> float:
         """Texel density along the finer of the two texture axes, texels per metre."""
-        return 1.0 / min(np.linalg.norm(self.plane_from_texel[:2, 0]),
-                         np.linalg.norm(self.plane_from_texel[:2, 1]))
+        return 1.0 / min(float(np.linalg.norm(self.plane_from_texel[:2, 0])),
+                         float(np.linalg.norm(self.plane_from_texel[:2, 1])))
 
     @cached_property
     def texel_from_plane(self) -> np.ndarray:
@@ -137,7 +137,7 @@ def _clip_polygon(points, normal, offset):
     return np.array(out).reshape(-1, points.shape[1])
 
 
-_RAY_MAPS = {}
+_RAY_MAPS: dict = {}
 _RAY_MAPS_KEPT = 4
 
 
