@@ -187,7 +187,8 @@ from vservo_node.ros.node_main import install_signal_handlers, run_node
 from vservo_node.ros.output_loop import OutputLoop
 from vservo_node.servo import HALT_REASONS, MOVING_STATES, Observation, Servo, ServoSettings
 from vservo_node.vision import image_io
-from vservo_node.vision.reference import load_reference, reference_path, save_reference
+from vservo_node.vision.reference import (joints_at_capture, load_reference, reference_path,
+                                          save_reference)
 from vservo_node.vision.targets import load_target
 
 # Parameters the node is built around (publishers, subscriptions, the arm model).
@@ -704,6 +705,8 @@ class ControllerNode(Node):
         v = self._values
         try:
             target, reference = self._load_vision_files(v)
+            for note in getattr(reference, "notes", ()):   # an older file: what it lacks
+                self.get_logger().info(f"reference {v['reference.file']} {note}")
         except (ValueError, OSError) as exc:
             self._problems["vision"] = str(exc)
             self.get_logger().error(f"target or reference refused: {exc}")
@@ -1324,12 +1327,15 @@ class ControllerNode(Node):
             elif perception is None:
                 problems.append(f"perception: {self._problems['vision']}")
             name, directory = self._values["reference.name"], self._values["reference.directory"]
+            q, why = self._pair(last[1]) if last is not None else (None, "")
+            joint_names = self.arm.joint_names if self.arm is not None else None
         if problems:
             return self._refuse(response, "capture_reference", problems)
         image = last[0]
         try:
             path = reference_path(directory, name)
-            reference = perception.capture(image, name)
+            reference, joints_note = joints_at_capture(perception.capture(image, name),
+                                                       joint_names, q, why)
             save_reference(reference, path)
         except (ValueError, OSError) as exc:
             return self._refuse(response, "capture_reference", [f"teach: {exc}"])
@@ -1339,7 +1345,8 @@ class ControllerNode(Node):
                                 [f"load: saved {path} but could not load it: {result.reason}"])
         response.success = True
         response.message = (f"reference {name!r} taught ({len(reference.keys)} features) and "
-                            f"saved to {path}; loaded")
+                            f"saved to {path}; loaded" + (f"; {joints_note}" if joints_note
+                                                          else ""))
         self.get_logger().info(response.message)
         return response
 

@@ -37,7 +37,7 @@ from vservo_node.perception import Perception
 from vservo_node.ros import harness, qos
 from vservo_node.sim import SimCell, load_scenario
 from vservo_node.vision.image_io import to_bgr_or_mono
-from vservo_node.vision.reference import save_reference
+from vservo_node.vision.reference import save_reference, with_joints
 from vservo_node.yaml_files import dump_yaml
 
 # The summary's figures, by their names and definitions in vservo_node.record.metrics: read
@@ -60,7 +60,8 @@ def teach(scenario, folder: Path) -> Path:
     h, w = rgb.shape[:2]
     image = to_bgr_or_mono(rgb, "rgb8", w, h)       # as the node decodes it
     perception = Perception(scenario.target, scenario.camera)
-    reference = perception.capture(image, f"{scenario.name}_station")
+    reference = with_joints(perception.capture(image, f"{scenario.name}_station"),
+                            cell.arm_model.joint_names, scenario.q_taught)  # the arm as taught
     if reference.depths is not None and scenario.depth_scale_belief != 1.0:
         reference = dataclasses.replace(reference,
                                         depths=reference.depths * scenario.depth_scale_belief)
