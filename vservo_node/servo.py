@@ -35,7 +35,8 @@ from vservo_node.interface import (HALT_REASONS, MOVING_STATES, RUN_STATES, STAR
                                    HaltReason, State)
 from vservo_node.servo_checks import SupervisorChecks
 from vservo_node.servo_inputs import Observation, TaughtView
-from vservo_node.servo_run import Frame, Matched, RunState, run_result
+from vservo_node.servo_run import (Frame, Matched, RunState, joints_outside, run_result,
+                                   status_record)
 from vservo_node.servo_settings import PARAM_OF_FIELD, ServoSettings
 
 if TYPE_CHECKING:
@@ -181,17 +182,7 @@ class Servo(SupervisorChecks):
 
     def joints_outside_limits(self, q: np.ndarray | Sequence[float]) -> list[str]:
         """One line per joint of q outside the arm's position limits (or not finite)."""
-        q = np.asarray(q, dtype=float)
-        out = []
-        if q.shape != (self.arm.n,):
-            return [f"{q.shape[0] if q.ndim else 0} joint values for {self.arm.n} joints"]
-        for name, value, low, high in zip(self.arm.joint_names, q, self.arm.lower,
-                                          self.arm.upper):
-            if not math.isfinite(value):
-                out.append(f"{name} = {value} (not finite)")
-            elif value < low or value > high:
-                out.append(f"{name} = {value:.4f} rad outside [{low:.4f}, {high:.4f}]")
-        return out
+        return joints_outside(self.arm.joint_names, self.arm.lower, self.arm.upper, q)
 
     def stop(self, t: float) -> tuple[bool, str]:
         if self.state in RUN_STATES:
@@ -521,28 +512,9 @@ class Servo(SupervisorChecks):
         self.result = run_result(run, state, reason, self.detail, t)
 
     def _status(self, t: float, cmd: np.ndarray, acted: list[str]) -> dict[str, Any]:
-        frame, info = self._frame, self._law_info
-        dls = info.dls if info is not None else None
-        pose = self._run.pose if self._run is not None else None
-        return {
-            "t": t,
-            "run_id": self._run.run_id if self._run else "",
-            "state": str(self.state),       # the plain string (interface.State's value)
-            "reason": str(self.reason),
-            "detail": self.detail,
-            "rms_px": frame.rms_px if frame else math.nan,
-            "pose_error_mm": pose.translation_mm if pose is not None else math.nan,
-            "pose_error_deg": pose.rotation_deg if pose is not None else math.nan,
-            "n_matched": len(frame.keys) if frame else 0,
-            "gain": info.gain if info else 0.0,
-            "sigma_min": dls.sigma_judge if dls else math.nan,
-            "damping": dls.damping if dls else 0.0,
-            "speed_scale": min(self.external_scale, self._margin_scale),
-            "limits_acted": acted,
-            "limit_counts": dict(self.limiter.counts),
-            "cycle_ms": 0.0,
-            "dq": cmd.tolist(),
-        }
+        return status_record(t, self._run, self._frame, self._law_info, self.state, self.reason,
+                             self.detail, min(self.external_scale, self._margin_scale),
+                             dict(self.limiter.counts), cmd, acted)
 
     # --- read-only views for the shells -----------------------------------------------------
     def camera_twist(self, q: np.ndarray, dq: np.ndarray) -> np.ndarray:

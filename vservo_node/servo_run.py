@@ -4,11 +4,12 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, Hashable
+from typing import Any, Hashable, Sequence
 
 import numpy as np
 
 from vservo_node.control import decoupled
+from vservo_node.control.law import LawInfo
 from vservo_node.control.pose_error import PoseErrorEstimator, PoseEstimate, PoseWindow
 
 
@@ -88,3 +89,46 @@ def run_result(run: RunState, state: str, reason: str, detail: str, t: float
         "pose_estimate_check_mm": pose.check_mm if pose else math.nan,
         "pose_estimate_check_deg": pose.check_deg if pose else math.nan,
     }
+
+
+def status_record(t: float, run: RunState | None, frame: Frame | None, info: LawInfo | None,
+                  state: str, reason: str, detail: str, speed_scale: float,
+                  limit_counts: dict[str, int], cmd: np.ndarray, acted: list[str]
+                  ) -> dict[str, Any]:
+    """The status record of one output tick (interface.STATUS_FIELDS), with plain strings."""
+    dls = info.dls if info is not None else None
+    pose = run.pose if run is not None else None
+    return {
+        "t": t,
+        "run_id": run.run_id if run else "",
+        "state": str(state),       # the plain string (interface.State's value)
+        "reason": str(reason),
+        "detail": detail,
+        "rms_px": frame.rms_px if frame else math.nan,
+        "pose_error_mm": pose.translation_mm if pose is not None else math.nan,
+        "pose_error_deg": pose.rotation_deg if pose is not None else math.nan,
+        "n_matched": len(frame.keys) if frame else 0,
+        "gain": info.gain if info else 0.0,
+        "sigma_min": dls.sigma_judge if dls else math.nan,
+        "damping": dls.damping if dls else 0.0,
+        "speed_scale": speed_scale,
+        "limits_acted": acted,
+        "limit_counts": limit_counts,
+        "cycle_ms": 0.0,
+        "dq": cmd.tolist(),
+    }
+
+
+def joints_outside(names: Sequence[str], lower: np.ndarray, upper: np.ndarray,
+                   q: np.ndarray | Sequence[float]) -> list[str]:
+    """One line per joint of q outside [lower, upper] (or not finite)."""
+    q = np.asarray(q, dtype=float)
+    out = []
+    if q.shape != (len(names),):
+        return [f"{q.shape[0] if q.ndim else 0} joint values for {len(names)} joints"]
+    for name, value, low, high in zip(names, q, lower, upper):
+        if not math.isfinite(value):
+            out.append(f"{name} = {value} (not finite)")
+        elif value < low or value > high:
+            out.append(f"{name} = {value:.4f} rad outside [{low:.4f}, {high:.4f}]")
+    return out
