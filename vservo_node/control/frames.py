@@ -10,38 +10,38 @@ Conventions (DEVELOPERS.md):
 import math
 
 import numpy as np
-from numpy.typing import ArrayLike
+from numpy.typing import ArrayLike, NDArray
 from scipy.spatial.transform import Rotation
 
 
-def _vector3(v, name):
-    v = np.asarray(v, dtype=float)
-    if v.shape != (3,):
-        raise ValueError(f"{name} must have shape (3,), got {v.shape}")
-    return v
+def _vector3(v: ArrayLike, name: str) -> NDArray[np.float64]:
+    out = np.asarray(v, dtype=float)
+    if out.shape != (3,):
+        raise ValueError(f"{name} must have shape (3,), got {out.shape}")
+    return out
 
 
-def _rotation(R, name="R"):
-    R = np.asarray(R, dtype=float)
-    if R.shape != (3, 3):
-        raise ValueError(f"{name} must be a 3x3 rotation matrix, got shape {R.shape}")
-    return R
+def _rotation(R: ArrayLike, name: str = "R") -> NDArray[np.float64]:
+    out = np.asarray(R, dtype=float)
+    if out.shape != (3, 3):
+        raise ValueError(f"{name} must be a 3x3 rotation matrix, got shape {out.shape}")
+    return out
 
 
-def _homogeneous(T, name="T"):
-    T = np.asarray(T, dtype=float)
-    if T.shape != (4, 4):
-        raise ValueError(f"{name} must be a 4x4 homogeneous transform, got shape {T.shape}")
-    return T
+def _homogeneous(T: ArrayLike, name: str = "T") -> NDArray[np.float64]:
+    out = np.asarray(T, dtype=float)
+    if out.shape != (4, 4):
+        raise ValueError(f"{name} must be a 4x4 homogeneous transform, got shape {out.shape}")
+    return out
 
 
-def skew(v):
+def skew(v: ArrayLike) -> NDArray[np.float64]:
     """Return the 3x3 skew-symmetric matrix ``[v]x`` such that ``skew(v) @ u == cross(v, u)``."""
     x, y, z = _vector3(v, "v")
     return np.array([[0.0, -z, y], [z, 0.0, -x], [-y, x, 0.0]])
 
 
-def transform(R, t):
+def transform(R: ArrayLike, t: ArrayLike) -> NDArray[np.float64]:
     """Return the 4x4 transform with rotation ``R`` (3x3) and translation ``t`` (3,) in metres."""
     T = np.eye(4)
     T[:3, :3] = _rotation(R)
@@ -49,14 +49,14 @@ def transform(R, t):
     return T
 
 
-def invert(T):
+def invert(T: ArrayLike) -> NDArray[np.float64]:
     """Return the inverse of a rigid transform: ``invert(T_a_b) == T_b_a``."""
-    T = _homogeneous(T)
-    R, t = T[:3, :3], T[:3, 3]
+    H = _homogeneous(T)
+    R, t = H[:3, :3], H[:3, 3]
     return transform(R.T, -R.T @ t)
 
 
-def quat_to_matrix(q_xyzw):
+def quat_to_matrix(q_xyzw: ArrayLike) -> NDArray[np.float64]:
     """Return the 3x3 rotation of a quaternion ``(x, y, z, w)``; it is normalised first.
 
     Raises ValueError for a quaternion of (near) zero norm.
@@ -66,45 +66,45 @@ def quat_to_matrix(q_xyzw):
         raise ValueError(f"quaternion must have 4 components (x, y, z, w), got shape {q.shape}")
     if not np.isfinite(q).all() or np.linalg.norm(q) < 1e-12:
         raise ValueError(f"quaternion must be finite and non-zero, got {q.tolist()}")
-    return Rotation.from_quat(q).as_matrix()
+    return np.asarray(Rotation.from_quat(q).as_matrix(), dtype=float)
 
 
-def matrix_to_quat(R):
+def matrix_to_quat(R: ArrayLike) -> NDArray[np.float64]:
     """Return the unit quaternion ``(x, y, z, w)`` of a 3x3 rotation, with ``w >= 0``."""
-    q = Rotation.from_matrix(_rotation(R)).as_quat()
+    q = np.asarray(Rotation.from_matrix(_rotation(R)).as_quat(), dtype=float)
     return -q if q[3] < 0 else q
 
 
-def transform_from_xyz_quat(xyz, q_xyzw):
+def transform_from_xyz_quat(xyz: ArrayLike, q_xyzw: ArrayLike) -> NDArray[np.float64]:
     """Return the 4x4 transform of a position (m) and a quaternion ``(x, y, z, w)``."""
     return transform(quat_to_matrix(q_xyzw), xyz)
 
 
-def rpy_to_matrix(rpy):
+def rpy_to_matrix(rpy: ArrayLike) -> NDArray[np.float64]:
     """Return the rotation of URDF roll-pitch-yaw angles (rad): ``Rz(yaw) @ Ry(pitch) @ Rx(roll)``.
 
     That is a rotation about fixed x by roll, then fixed y by pitch, then fixed z by yaw
     (URDF specification, <origin rpy>), SciPy's extrinsic ``"xyz"`` sequence.
     """
-    return Rotation.from_euler("xyz", _vector3(rpy, "rpy")).as_matrix()
+    return np.asarray(Rotation.from_euler("xyz", _vector3(rpy, "rpy")).as_matrix(), dtype=float)
 
 
-def transform_from_xyz_rpy(xyz, rpy):
+def transform_from_xyz_rpy(xyz: ArrayLike, rpy: ArrayLike) -> NDArray[np.float64]:
     """Return the 4x4 transform of a URDF ``<origin xyz rpy>`` (metres, radians)."""
     return transform(rpy_to_matrix(rpy), xyz)
 
 
-def rotation_block(R):
+def rotation_block(R: ArrayLike) -> NDArray[np.float64]:
     """Return the 6x6 block-diagonal ``diag(R, R)``: re-expresses a ``[v; w]`` twist in new axes
     without moving its reference point."""
-    R = _rotation(R)
+    M = _rotation(R)
     B = np.zeros((6, 6))
-    B[:3, :3] = R
-    B[3:, 3:] = R
+    B[:3, :3] = M
+    B[3:, 3:] = M
     return B
 
 
-def twist_transform(T_a_b):
+def twist_transform(T_a_b: ArrayLike) -> NDArray[np.float64]:
     """Return the 6x6 matrix mapping a ``[v; w]`` twist expressed in frame b (reference point at
     b's origin) to the same rigid motion expressed in frame a (reference point at a's origin).
 

@@ -136,12 +136,12 @@ class DampedInverse:
 
     def solve(self, rhs: np.ndarray) -> np.ndarray:
         """dq = J# rhs."""
-        return self._Vt.T @ (self._gains * (self._U.T @ rhs))
+        return np.asarray(self._Vt.T @ (self._gains * (self._U.T @ rhs)))
 
     def project_null(self, z: np.ndarray) -> np.ndarray:
         """(I - J# J) z, with the same damped J# as :meth:`solve` (exact null-space projection
         when no damping is applied)."""
-        return z - self._Vt.T @ (self._gains * self._S * (self._Vt @ z))
+        return np.asarray(z - self._Vt.T @ (self._gains * self._S * (self._Vt @ z)))
 
 
 def dls_solve(J: np.ndarray, rhs: np.ndarray, damping: DampingSchedule,

@@ -82,7 +82,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 from types import MappingProxyType
-from typing import Mapping
+from typing import Any, Mapping
 
 import numpy as np
 
@@ -316,8 +316,9 @@ class _StaticSet:
         return out
 
 
-def _static_set(q, dt, limits: LimitSet, tool_point_jac, camera_point_jac, angular_jac,
-                speed_scale) -> _StaticSet:
+def _static_set(q: np.ndarray, dt: float, limits: LimitSet, tool_point_jac: np.ndarray,
+                camera_point_jac: np.ndarray, angular_jac: np.ndarray,
+                speed_scale: float) -> _StaticSet:
     n = limits.n
     vmax = limits.velocity_max * speed_scale
     # both envelopes in one call (element-wise, so the same values as two calls)
@@ -361,8 +362,9 @@ def _feasible(fractions: Fractions) -> bool:
 # --------------------------------------------------------------------------------------------
 # The limiter
 # --------------------------------------------------------------------------------------------
-def limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point_jac,
-                  camera_point_jac, angular_jac, speed_scale: float = 1.0
+def limit_command(desired: np.ndarray, previous: np.ndarray, q: np.ndarray, dt: float,
+                  limits: LimitSet, tool_point_jac: np.ndarray, camera_point_jac: np.ndarray,
+                  angular_jac: np.ndarray, speed_scale: float = 1.0
                   ) -> tuple[np.ndarray, LimitReport]:
     """The command (n,) nearest ``desired`` along the step from the previous command that meets
     every limit, and a report (see the module docstring).
@@ -377,9 +379,10 @@ def limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point_
     return command, LimitReport(**report)
 
 
-def _limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point_jac,
-                   camera_point_jac, angular_jac, speed_scale: float
-                   ) -> tuple[np.ndarray, dict]:
+def _limit_command(desired: np.ndarray, previous: np.ndarray, q: np.ndarray, dt: float,
+                   limits: LimitSet, tool_point_jac: np.ndarray, camera_point_jac: np.ndarray,
+                   angular_jac: np.ndarray, speed_scale: float
+                   ) -> tuple[np.ndarray, dict[str, Any]]:
     """:func:`limit_command` with the report as a dict of LimitReport fields (no counts)."""
     n, accel = limits.n, limits.acceleration
     arrays = {"desired": desired, "previous": previous, "q": q, "tool_point_jac": tool_point_jac,
@@ -449,8 +452,9 @@ def _limit_command(desired, previous, q, dt: float, limits: LimitSet, tool_point
                                      target_scale=min(c_d, 1.0))
 
 
-def _fields(mode, base, base_scale, scale, acted, winner, winner_joint, fault=None,
-            target_scale=1.0) -> dict:
+def _fields(mode: str, base: np.ndarray, base_scale: float, scale: float,
+            acted: tuple[str, ...], winner: str | None, winner_joint: int | None,
+            fault: str | None = None, target_scale: float = 1.0) -> dict[str, Any]:
     return dict(mode=mode, base=base, base_scale=base_scale, scale=scale, acted=acted,
                 winner=winner, winner_joint=winner_joint, fault=fault, target_scale=target_scale)
 
@@ -481,7 +485,8 @@ class Limiter:
         self.previous = np.zeros(limits.n)
         self.counts = dict.fromkeys(LIMITS + EVENTS, 0)
 
-    def step(self, desired, q, dt: float, tool_point_jac, camera_point_jac, angular_jac,
+    def step(self, desired: np.ndarray, q: np.ndarray, dt: float, tool_point_jac: np.ndarray,
+             camera_point_jac: np.ndarray, angular_jac: np.ndarray,
              speed_scale: float = 1.0) -> tuple[np.ndarray, LimitReport]:
         command, report = _limit_command(desired, self.previous, q, dt, self.limits,
                                          tool_point_jac, camera_point_jac, angular_jac,

@@ -11,9 +11,15 @@ that produced the coefficients. A rectified stream (``rectified=True``: image_pr
 ``image_rect``) already had its distortion removed and was rotated by R, so the model then uses
 P's left 3x3 block as intrinsics, no distortion, and R to return rays to the optical frame.
 """
+from __future__ import annotations
+
+from typing import Any, Mapping
 
 import cv2
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+Floats = NDArray[np.float64]
 
 # Number of coefficients in D per sensor_msgs/distortion_models.hpp model name.
 DISTORTION_MODELS = {"plumb_bob": 5, "rational_polynomial": 8, "equidistant": 4, "none": 0}
@@ -26,17 +32,18 @@ _UNDISTORT_CRITERIA = (cv2.TERM_CRITERIA_COUNT | cv2.TERM_CRITERIA_EPS, 200, 1e-
 _DICT_KEYS = ("width", "height", "distortion_model", "d", "k", "p", "r", "rectified")
 
 
-def _matrix(value, shape, name):
-    m = np.asarray(value, dtype=float)
-    if m.size != shape[0] * shape[1]:
-        raise ValueError(f"{name} must have {shape[0]}x{shape[1]} entries, got shape {m.shape}")
-    m = m.reshape(shape)
+def _matrix(value: ArrayLike, shape: tuple[int, int], name: str) -> Floats:
+    flat = np.asarray(value, dtype=float)
+    if flat.size != shape[0] * shape[1]:
+        raise ValueError(f"{name} must have {shape[0]}x{shape[1]} entries, got shape "
+                         f"{flat.shape}")
+    m = flat.reshape(shape)
     if not np.isfinite(m).all():
         raise ValueError(f"{name} must be finite, got {m.tolist()}")
     return m
 
 
-def _check_intrinsics(A, name):
+def _check_intrinsics(A: Floats, name: str) -> None:
     """Refuse a camera matrix OpenCV would misread (it ignores skew) or that is uncalibrated."""
     if A[0, 0] <= 0 or A[1, 1] <= 0:
         raise ValueError(f"{name} focal lengths fx={A[0, 0]}, fy={A[1, 1]} must be > 0 "
@@ -48,11 +55,11 @@ def _check_intrinsics(A, name):
                          f"got {A[:, :3].tolist()}")
 
 
-def _points(a, ncols, name):
-    a = np.asarray(a, dtype=float)
-    if a.ndim != 2 or a.shape[1] != ncols:
-        raise ValueError(f"{name} must have shape (N, {ncols}), got {a.shape}")
-    return a
+def _points(a: ArrayLike, ncols: int, name: str) -> Floats:
+    out = np.asarray(a, dtype=float)
+    if out.ndim != 2 or out.shape[1] != ncols:
+        raise ValueError(f"{name} must have shape (N, {ncols}), got {out.shape}")
+    return out
 
 
 class CameraModel:
@@ -70,8 +77,9 @@ class CameraModel:
             (default identity; only stereo cameras have another).
     """
 
-    def __init__(self, width, height, K, D=(), distortion_model="none", P=None,
-                 rectified=False, R=None):
+    def __init__(self, width: int, height: int, K: ArrayLike, D: ArrayLike = (),
+                 distortion_model: str = "none", P: ArrayLike | None = None,
+                 rectified: bool = False, R: ArrayLike | None = None) -> None:
         if int(width) != width or int(height) != height or width <= 0 or height <= 0:
             raise ValueError(f"image size must be positive integers, got {width}x{height}")
         if distortion_model not in DISTORTION_MODELS:
@@ -104,12 +112,15 @@ class CameraModel:
 
     # ----------------------------------------------------------------- constructors
     @classmethod
-    def pinhole(cls, width, height, fx, fy, cx, cy):
+    def pinhole(cls, width: int, height: int, fx: float, fy: float, cx: float, cy: float
+                ) -> CameraModel:
         """An ideal camera without distortion; focal lengths and centre in pixels."""
         return cls(width, height, [[fx, 0.0, cx], [0.0, fy, cy], [0.0, 0.0, 1.0]])
 
     @classmethod
-    def from_camera_info(cls, width, height, distortion_model, d, k, r, p, rectified=False):
+    def from_camera_info(cls, width: int, height: int, distortion_model: str, d: ArrayLike,
+                         k: ArrayLike, r: ArrayLike, p: ArrayLike, rectified: bool = False
+                         ) -> CameraModel:
         """Build from sensor_msgs/CameraInfo fields (k, r: 9 row-major; p: 12 row-major).
 
         An empty ``distortion_model`` string (uncalibrated drivers) is read as ``none``.
@@ -118,7 +129,7 @@ class CameraModel:
                    R=r)
 
     @classmethod
-    def from_dict(cls, data):
+    def from_dict(cls, data: Mapping[str, Any]) -> CameraModel:
         """Build from a dict as written by ``to_dict`` (a YAML mapping)."""
         unknown = set(data) - set(_DICT_KEYS)
         if unknown:
@@ -130,14 +141,14 @@ class CameraModel:
                    data.get("distortion_model", "none"), P=data.get("p"),
                    rectified=data.get("rectified", False), R=data.get("r"))
 
-    def to_dict(self):
+    def to_dict(self) -> dict[str, Any]:
         """Plain-Python dict for YAML: matrices as row-major flat lists, as in CameraInfo."""
         return {"width": self.width, "height": self.height,
                 "distortion_model": self.distortion_model, "d": self.D.tolist(),
                 "k": self.K.ravel().tolist(), "p": self.P.ravel().tolist(),
                 "r": self.R.ravel().tolist(), "rectified": self.rectified}
 
-    def scaled(self, width, height):
+    def scaled(self, width: int, height: int) -> CameraModel:
         """The same camera seen at another resolution (e.g. a reference taught at 1280x960 used
         on a 640x480 stream). Scales K and P rows with the pixel-centre convention of
         cv2.resize: a pixel coordinate u maps to ``(u + 0.5) * sx - 0.5``. D and R are unchanged
@@ -150,41 +161,42 @@ class CameraModel:
 
     # ----------------------------------------------------------------- properties
     @property
-    def intrinsics(self):
+    def intrinsics(self) -> Floats:
         """3x3 camera matrix of the images this model reads: P[:3,:3] if rectified, else K."""
         return self.P[:, :3] if self.rectified else self.K
 
     @property
-    def effective_distortion(self):
+    def effective_distortion(self) -> str:
         """Distortion model applied to the images this model reads (``none`` if rectified)."""
         return "none" if self.rectified else self.distortion_model
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return (f"CameraModel({self.width}x{self.height}, {self.distortion_model}, "
                 f"rectified={self.rectified}, intrinsics={self.intrinsics.tolist()})")
 
     # ----------------------------------------------------------------- mappings
-    def pixels_to_normalized(self, uv):
+    def pixels_to_normalized(self, uv: ArrayLike) -> Floats:
         """Undistorted normalized coordinates (N, 2) of pixels ``uv`` (N, 2)."""
-        uv = _points(uv, 2, "uv")
-        if len(uv) == 0:
+        px = _points(uv, 2, "uv")
+        if len(px) == 0:
             return np.zeros((0, 2))
         model = self.effective_distortion
         if model == "none":
             A = self.intrinsics
-            xy = (uv - A[:2, 2]) / np.diag(A)[:2]
+            xy = (px - A[:2, 2]) / np.diag(A)[:2]
             if self.rectified:  # rays are in the rectified frame; rotate back to the optical one
                 rays = np.hstack([xy, np.ones((len(xy), 1))]) @ self.R
                 xy = rays[:, :2] / rays[:, 2:]
             return xy
-        src = uv.reshape(-1, 1, 2)
+        src = px.reshape(-1, 1, 2)
         if model == "equidistant":
-            xy = cv2.fisheye.undistortPoints(src, self.K, self.D, criteria=_UNDISTORT_CRITERIA)
+            out = cv2.fisheye.undistortPoints(src, self.K, self.D, criteria=_UNDISTORT_CRITERIA)
         else:
-            xy = cv2.undistortPointsIter(src, self.K, self.D, None, None, _UNDISTORT_CRITERIA)
-        return xy.reshape(-1, 2).astype(float)
+            out = cv2.undistortPointsIter(src, self.K, self.D, None, None,  # type: ignore[call-overload]
+                                          _UNDISTORT_CRITERIA)
+        return np.asarray(out, dtype=float).reshape(-1, 2)
 
-    def project(self, points_cam):
+    def project(self, points_cam: ArrayLike) -> Floats:
         """Pixels (N, 2) of 3-D points (N, 3) in the camera optical frame, metres.
 
         Raises ValueError if a point is not in front of the camera (Z <= 0).
@@ -201,14 +213,14 @@ class CameraModel:
                              f"first index {behind[0]}")
         if model == "none":
             A = self.intrinsics
-            return p[:, :2] / p[:, 2:] * np.diag(A)[:2] + A[:2, 2]
+            return np.asarray(p[:, :2] / p[:, 2:] * np.diag(A)[:2] + A[:2, 2])
         if model == "equidistant":
             zero = np.zeros(3)
             uv, _ = cv2.fisheye.projectPoints(p.reshape(-1, 1, 3), zero, zero, self.K, self.D)
-            return uv.reshape(-1, 2).astype(float)
+            return np.asarray(uv, dtype=float).reshape(-1, 2)
         return self._project_polynomial(p)
 
-    def _project_polynomial(self, p):
+    def _project_polynomial(self, p: Floats) -> Floats:
         """plumb_bob / rational_polynomial projection in NumPy: OpenCV's camera model
         (calib3d documentation, 'Camera Calibration and 3D Reconstruction': radial
         (1 + k1 r^2 + k2 r^4 + k3 r^6) / (1 + k4 r^2 + k5 r^4 + k6 r^6), tangential p1, p2), the
@@ -227,7 +239,7 @@ class CameraModel:
         K = self.K
         return np.column_stack([K[0, 0] * xd + K[0, 2], K[1, 1] * yd + K[1, 2]])
 
-    def normalized_to_pixels(self, xy):
+    def normalized_to_pixels(self, xy: ArrayLike) -> Floats:
         """Pixels (N, 2) of normalized coordinates ``xy`` (N, 2), applying the distortion."""
-        xy = _points(xy, 2, "xy")
-        return self.project(np.hstack([xy, np.ones((len(xy), 1))]))
+        pts = _points(xy, 2, "xy")
+        return self.project(np.hstack([pts, np.ones((len(pts), 1))]))

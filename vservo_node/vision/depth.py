@@ -11,11 +11,17 @@ a fallback value with its ``valid`` flag cleared.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any, Iterable
 
 import cv2
 import numpy as np
+from numpy.typing import ArrayLike
 
 from vservo_node.vision.image_io import DEPTH_ENCODINGS
+
+if TYPE_CHECKING:
+    from vservo_node.vision.camera import CameraModel
+    from vservo_node.vision.reference import Reference
 
 
 @dataclass
@@ -43,7 +49,7 @@ def constant(n: int, z: float) -> Depths:
     return Depths(np.full(n, float(z)), np.ones(n, bool), "constant")
 
 
-def taught(reference, keys) -> Depths:
+def taught(reference: Reference, keys: Iterable[Any]) -> Depths:
     """The reference's taught depths of ``keys`` (e.g. ``MatchResult.keys``)."""
     if reference.depths is None:
         raise ValueError(f"reference {reference.name!r} was taught without depths")
@@ -55,7 +61,7 @@ def taught(reference, keys) -> Depths:
     return Depths(z, np.ones(len(z), bool), "taught")
 
 
-def from_pnp(points_px, model_points, camera) -> Depths:
+def from_pnp(points_px: ArrayLike, model_points: ArrayLike, camera: CameraModel) -> Depths:
     """Depths from the pose of a planar model fitted to its image.
 
     Args:
@@ -87,7 +93,8 @@ def from_pnp(points_px, model_points, camera) -> Depths:
                   reprojection_rms_px=float(np.sqrt(np.mean(np.sum(err ** 2, axis=1)))))
 
 
-def from_depth_image(depth: np.ndarray, encoding: str, points_px, fallback,
+def from_depth_image(depth: np.ndarray, encoding: str, points_px: ArrayLike,
+                     fallback: ArrayLike,
                      radius: int = 2) -> Depths:
     """Depths read from an aligned depth image at the features' pixels.
 
