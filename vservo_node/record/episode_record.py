@@ -132,7 +132,11 @@ def write_record(root: Path, name: str, scenario, values: dict, result, notes: d
             "run_id": name, "converged": bool(result.converged), "reason": result.reason,
             "time_s": result.time_s, "final_rms_px": result.final_rms_px,
             "final_pose_error_mm": result.pose_error_mm,
-            "final_pose_error_deg": result.pose_error_deg}))
+            "final_pose_error_deg": result.pose_error_deg,
+            # the servo's own estimate over its last dwell, as the node's run result has it
+            **{k: getattr(result, k) for k in (
+                "estimated_pose_error_mm", "estimated_pose_error_deg",
+                "estimated_pose_error_spread_mm", "estimated_pose_error_spread_deg")}}))
     (recorder.bag_dir / "episode.json").write_text(json.dumps(_json_safe(notes or {}),
                                                               indent=2) + "\n")
     return recorder.bag_dir

@@ -29,10 +29,11 @@ from vservo_node import params as schema
 from vservo_node.interface import SUPERVISOR_STATES
 from vservo_node.record import halts
 from vservo_node.record.bag import RunData, load_run
-from vservo_node.record.metrics import (DEFINITIONS, Command, Motion, arm_of_run,
-                                        command_of_run, compute_metrics, envelope_path, fmt,
-                                        goal_path, headline, ideal_decay, motion_of_run,
-                                        run_params, start_index)
+from vservo_node.record.metrics import (DEFINITIONS, GOAL_FROM_FINAL_POSE, Command, Motion,
+                                        arm_of_run, command_of_run, compute_metrics,
+                                        envelope_path, fmt, goal_path, headline, ideal_decay,
+                                        motion_of_run, pose_estimate_series, run_params,
+                                        start_index)
 
 STATE_COLOURS = dict(zip(SUPERVISOR_STATES, ("#9e9e9e", "#90caf9", "#1e88e5", "#26a69a",
                                              "#43a047", "#fb8c00", "#e53935")))
@@ -249,10 +250,12 @@ def fig_error(run: RunData, metrics: dict) -> Figure | None:
     return fig
 
 
-def fig_camera_path(run: RunData, motion: Motion | None, metrics: dict) -> Figure | None:
+def fig_camera_path(run: RunData, motion: Motion | None, metrics: dict,
+                    path=None) -> Figure | None:
     """Position (mm) and orientation (deg) error of the camera from its goal over time, and
-    the position error's components in the goal camera's axes."""
-    path = goal_path(run, motion)
+    the position error's components in the goal camera's axes. ``path``: ``goal_path``'s
+    answer when the caller has it."""
+    path = goal_path(run, motion) if path is None else path
     if path is None:
         return None
     t, mm, deg, local, source = path
@@ -270,6 +273,41 @@ def fig_camera_path(run: RunData, motion: Motion | None, metrics: dict) -> Figur
     for ax in (ax1, ax2):
         _halt_marks(ax, metrics)
     _legend(ax2)
+    return fig
+
+
+def fig_pose_estimate(run: RunData, metrics: dict, path, estimate) -> Figure | None:
+    """The node's pose-error estimate per frame (``metrics.pose_estimate_series``) against the
+    camera's measured error to its goal (``goal_path``: ground truth, or forward kinematics
+    against the taught joints), position (mm) and orientation (deg), log scale, with
+    control.tolerance_mm / _deg. None without an estimate."""
+    if estimate is None:
+        return None
+    t_est, mm_est, deg_est = estimate
+    known = path is not None and path[4] != GOAL_FROM_FINAL_POSE
+    fig = new_figure(WIDTH_IN, 5.2)
+    axes = fig.subplots(2, 1, sharex=True)
+    floor = {"mm": 1e-3, "deg": 1e-4}   # below: drawn at the floor (a log axis has no zero)
+    for ax, unit, est, col, tol_key, label in (
+            (axes[0], "mm", mm_est, 1, "tolerance_mm", "position error (mm)"),
+            (axes[1], "deg", deg_est, 2, "tolerance_deg", "orientation error (deg)")):
+        if known:
+            ax.plot(path[0], np.maximum(path[col], floor[unit]), color="k", lw=1.2, zorder=3,
+                    label="ground truth" if path[4].startswith("ground truth")
+                    else "forward kinematics")   # on top: the estimate's dots hug it
+        ax.plot(t_est, np.maximum(est, floor[unit]), ".", ms=3, color="#1e88e5",
+                label="node's estimate (per frame)")
+        if metrics.get(tol_key):
+            ax.axhline(metrics[tol_key], color="g", ls=":", label=f"tolerance "
+                       f"{metrics[tol_key]:g} {unit}")
+        _log_y(ax)
+        ax.set(ylabel=label)
+        _halt_marks(ax, metrics)
+        _legend(ax)
+    axes[0].set_title(f"Pose error: the node's estimate against {path[4]}" if known else
+                      "Pose error: the node's estimate (the record holds no measured goal to "
+                      "compare it with)", fontsize=10)
+    axes[1].set_xlabel("time (s)")
     return fig
 
 
@@ -592,6 +630,7 @@ def write_report(bag: str | Path, out_dir: str | Path | None = None,
     motion = motion_of_run(run, arm)
     command = command_of_run(run, motion.joint_names) if motion is not None else None
     metrics = compute_metrics(run, tolerance_px, motion, command)
+    path, estimate = goal_path(run, motion), pose_estimate_series(run)
     (out / "metrics.json").write_text(json.dumps(metrics, indent=2) + "\n", encoding="utf8")
     sections = [
         ("Camera view at the start and at the end", [
@@ -604,8 +643,13 @@ def write_report(bag: str | Path, out_dir: str | Path | None = None,
                           "recorded gain, and the error of each feature", fig_error(run, metrics),
                           "png")]),
         ("Camera path to the goal", [("Position and orientation error of the camera from its "
-                                      "goal over time", fig_camera_path(run, motion, metrics),
-                                      "png")]),
+                                      "goal over time", fig_camera_path(run, motion, metrics,
+                                                                        path), "png")]
+         + ([] if estimate is None else [   # only when the node estimated its pose error
+             ("The node's pose-error estimate of each frame (from the features: PnP of the "
+              "target model or the plane homography) against the measured error to the goal, "
+              "position and orientation", fig_pose_estimate(run, metrics, path, estimate),
+              "png")])),
         ("Limits against their bounds", [
             ("Joint speed, acceleration and position against their limits (red ticks: "
              "records where the limit acted)",
