@@ -17,6 +17,7 @@ from typing import Callable
 import numpy as np
 
 from vservo_node.control import frames
+from vservo_node.control.mounting import mount_from_params
 from vservo_node.control.safety import LimitSet
 from vservo_node.interface import SENSING_MODES
 from vservo_node.servo import Observation, Servo, ServoSettings, TaughtView
@@ -116,14 +117,18 @@ def _start(servo: Servo, q0, t: float) -> None:
 class _Meter:
     """What an episode measures at its output ticks: peaks and margins of the true arm motion,
     the first finite RMS error and, with ``record``, the statuses, joints (rad) and camera
-    positions (m, base frame)."""
+    positions (m, base frame). With a fixed camera (``mount``, control.mounting) the judged
+    pose is the tool's: the goal, the depth change and the trace are the tool's, and the
+    "camera" speed is the target origin's (the point the limiter bounds in its place)."""
 
-    def __init__(self, arm_true, T_base_camera_goal, q0, tool_point, record: bool = False):
+    def __init__(self, arm_true, T_base_camera_goal, q0, tool_point, record: bool = False,
+                 mount=None):
         self.arm = arm_true
+        self.mount = mount
         self.tool_point = np.asarray(tool_point, dtype=float)
         self.T_goal = T_base_camera_goal
         self.axis = T_base_camera_goal[:3, 2]
-        self.depth0 = float(self.axis @ arm_true.camera_pose(q0)[:3, 3])
+        self.depth0 = float(self.axis @ self.judged_pose(q0)[:3, 3])
         self.finite = np.isfinite(arm_true.lower)
         self.lower_finite = arm_true.lower[self.finite]
         self.upper_finite = arm_true.upper[self.finite]
@@ -159,14 +164,16 @@ class _Meter:
         p["joint"] = max(p["joint"], float(np.max(np.abs(dq) / arm.velocity_limits)))
         # one kinematics update for the three speeds (the values of point_jacobian_base and
         # jacobian_base); |v| as np.linalg.norm computes it for a vector, sqrt(v . v)
-        J_tool, J_camera, J_angular = arm.cartesian_jacobians(q, self.tool_point)
+        J_tool, J_camera, J_angular = (
+            arm.cartesian_jacobians(q, self.tool_point) if self.mount is None
+            else self.mount.cartesian_jacobians(arm, q, self.tool_point))
         for name, J in (("tool", J_tool), ("camera", J_camera), ("angular", J_angular)):
             v = J @ dq
             p[name] = max(p[name], math.sqrt(v @ v))
         q_finite = q[self.finite]
         self.margin = min(self.margin, float((q_finite - self.lower_finite).min()),
                           float((self.upper_finite - q_finite).min()))
-        T_cam = arm.camera_pose(q)
+        T_cam = self.judged_pose(q)
         self.depth_dev = max(self.depth_dev, abs(float(self.axis @ T_cam[:3, 3]) - self.depth0))
         if math.isnan(self.initial_rms) and not math.isnan(status["rms_px"]):
             self.initial_rms = status["rms_px"]
@@ -175,6 +182,9 @@ class _Meter:
             self.cycle_ms = math.nan
             self.qs.append(np.array(q, dtype=float))
             self.cams.append(T_cam[:3, 3].copy())
+
+    def judged_pose(self, q) -> np.ndarray:
+        return self.arm.camera_pose(q) if self.mount is None else self.arm.fk(q)
 
     def result(self, servo: Servo, status: dict, t: float, T_base_camera_end) -> EpisodeResult:
         """The episode's result: the servo's run result (``episode_timeout`` when the run did
@@ -352,10 +362,13 @@ def servo_config_from_params(arm, values: dict) -> tuple[ServoSettings, LimitSet
     return ServoSettings.from_params(values), limits
 
 
-def servo_from_params(arm, values: dict) -> Servo:
-    """A Servo for ``arm`` (the hand-eye it believes) from validated parameter values."""
+def servo_from_params(arm, values: dict, mount=None) -> Servo:
+    """A Servo for ``arm`` (the hand-eye it believes) from validated parameter values;
+    ``mount`` (control.mounting) default: the values' robot.camera_mount."""
     settings, limits = servo_config_from_params(arm, values)
-    return Servo(arm, settings, limits, values["robot.tool_point"])
+    if mount is None:
+        mount = mount_from_params(values, arm)
+    return Servo(arm, settings, limits, values["robot.tool_point"], mount=mount)
 
 
 def focal_scaled(camera, scale: float):
@@ -411,8 +424,8 @@ def teach_reference(scenario, cell, camera, depth, folder, name: str = "episode"
 
 def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
                          record: bool = False, *, focal_scale: float = 1.0,
-                         sensing: str = "image", noise_px: float | None = None
-                         ) -> EpisodeResult:
+                         sensing: str = "image", noise_px: float | None = None,
+                         trace=None) -> EpisodeResult:
     """One run of a scenario through the node's code path, without ROS or clocks.
 
     ``scenario``: a shipped name, a path or a loaded ``sim.Scenario``. ``overrides``: controller
@@ -423,6 +436,9 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     ``seed``: mixed with the scenario's seed for the image and joint-state noise.
     ``focal_scale``: the controller believes focal lengths ``focal_scale`` times the true ones
     (the scenario format has no entry for it).
+    ``trace``: called as ``trace("frame", t, observation, reported q)`` after each frame and
+    ``trace("command", t, command, reported q)`` after each output period (e.g.
+    ``calib.trace.TraceRecorder``, for the hand-eye check and the delay estimate).
     ``sensing``: ``image`` (render each frame and perceive it, as below) or ``projected``
     (``sim.projected.ProjectedSensor``: the features projected through the true camera with
     ``noise_px`` of pixel noise, default by target kind; no images, no detection; teaching
@@ -443,7 +459,8 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
 
     Speeds, margins and the pose error (mm, deg) are of the true arm: ``peak_*`` from the true
     joint velocities at the output ticks, the pose error between the true camera pose at the
-    end and the true taught camera pose.
+    end and the true taught camera pose (with a fixed camera: the tool's poses, and the
+    controller gets the scenario's believed ``FixedCamera``).
     """
     import tempfile
 
@@ -459,7 +476,7 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     values = episode_params({**sc.controller, **(overrides or {})}, camera_rate_hz=sc.fps)
     cell = SimCell(sc)
     camera = focal_scaled(sc.camera, focal_scale) if focal_scale != 1.0 else sc.camera
-    servo = servo_from_params(sc.arm_model("belief"), values)
+    servo = servo_from_params(sc.arm_model("belief"), values, mount=sc.mount("belief"))
     depth = DepthSettings.from_params(values)
     width, height = camera.width, camera.height
 
@@ -494,8 +511,8 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
         def observe(image, t_frame):
             return perception.process(image, t_frame)[0]
 
-    meter = _Meter(cell.arm_model, cell.taught_camera_pose, sc.q_start,
-                   values["robot.tool_point"], record)
+    meter = _Meter(cell.arm_model, cell.taught_judged_pose, sc.q_start,
+                   values["robot.tool_point"], record, mount=cell.mount)
     period = 1.0 / values["io.output_rate_hz"]
     frame_period = 1.0 / sc.fps
     no_features = Observation((), np.zeros((0, 2)), np.zeros((0, 2)))
@@ -510,14 +527,20 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
             grabbed = grab(t_frame)
             t0 = time.perf_counter()   # perception + servo, as the node's cycle_ms
             obs = observe(grabbed, t_frame)
+            q_frame = cell.joint_state(t_frame)[0]
             servo.observe(_depth_scaled(obs, sc.depth_scale_belief) or no_features,
-                          cell.joint_state(t_frame)[0], t_frame)
+                          q_frame, t_frame)
             meter.frame(t_frame, obs, servo.reference, time.perf_counter() - t0)
+            if trace is not None:
+                trace("frame", t_frame, obs, q_frame)
             frame += 1
         cell.step(max(t - cell.t, 0.0))
-        cmd, status = servo.command(cell.joint_state(t)[0], t, period)
+        q_tick = cell.joint_state(t)[0]
+        cmd, status = servo.command(q_tick, t, period)
         cell.command_velocity(cmd, t)
+        if trace is not None:
+            trace("command", t, cmd, q_tick)
         meter.add(*cell.arm.true_state(t), status)
         if servo.state in ("converged", "halted"):
             break
-    return meter.result(servo, status, t, cell.camera_pose(t))
+    return meter.result(servo, status, t, cell.judged_pose(t))
