@@ -141,11 +141,32 @@ def _nice_scale(largest_px: float, wanted_px: float = 40.0) -> float:
     return float(max(m * k for m in (1, 2, 5) if m * k <= raw))
 
 
+def taught_view(run: RunData):
+    """(RGB image, taught pixels (N, 2)) of the reference copied into the record, or None: a
+    record without one, a reference written before references kept their image, or a copy
+    that does not read (``vision.reference.load_reference`` checks it, image size included)."""
+    if run.reference_path is None:
+        return None
+    from vservo_node.vision.reference import load_reference
+    try:
+        reference = load_reference(run.reference_path)
+    except (ValueError, OSError):
+        return None
+    image = reference.image
+    if image is None:
+        return None
+    if image.dtype != np.uint8:      # 16-bit mono: shown scaled to 8 bits
+        image = (image / max(float(image.max()), 1.0) * 255).astype(np.uint8)
+    rgb = np.repeat(image[..., None], 3, axis=2) if image.ndim == 2 else image[..., ::-1]
+    return rgb, reference.pixels
+
+
 # ----------------------------------------------------------------------------- figures
-def fig_frames(run: RunData, metrics: dict) -> Figure | None:
+def fig_frames(run: RunData, metrics: dict, taught=None) -> Figure | None:
     """The camera at the start and at the end: detected features (green circles), reference
     marks (blue squares, s - e), error vectors from each feature toward its mark (yellow,
-    lengthened when tiny, the factor in the title), the feature paths on the end frame."""
+    lengthened when tiny, the factor in the title), the feature paths on the end frame; and,
+    given ``taught`` (``taught_view``), the taught image with its taught features."""
     frames = run.frames
     if not frames and run.features is None:
         return None
@@ -158,9 +179,23 @@ def fig_frames(run: RunData, metrics: dict) -> Figure | None:
     if size is None:
         return None
     aspect = size[1] / size[0]
-    fig = new_figure(WIDTH_IN, (WIDTH_IN / 2 - 0.8) * aspect + 0.95, right=0.2, left=0.7,
-                     wspace=0.15)
-    axes = fig.subplots(1, len(shots), squeeze=False)[0]
+    panels = len(shots) + (taught is not None)
+    fig = new_figure(WIDTH_IN, (WIDTH_IN / panels - 0.8) * aspect + 0.95, right=0.2, left=0.7,
+                     wspace=0.15 if panels < 3 else 0.25)
+    axes = fig.subplots(1, panels, squeeze=False)[0]
+    if taught is not None:
+        ax, (rgb, uv) = axes[-1], taught
+        h, w = rgb.shape[:2]
+        ax.imshow(rgb, extent=(-0.5, w - 0.5, h - 0.5, -0.5))
+        ax.plot(uv[:, 0], uv[:, 1], "s", mfc="none", mec="#2979ff", ms=9, mew=1.5,
+                label="taught feature")
+        for k, (u, v) in enumerate(uv):
+            ax.annotate(str(k + 1), (u, v), xytext=(6, 6), textcoords="offset points",
+                        color="#2979ff", fontsize=8)
+        ax.set(xlim=(-0.5, w - 0.5), ylim=(h - 0.5, -0.5), xlabel="u (px)", ylabel="v (px)",
+               title=f"taught view (reference image, {w}x{h})")
+        ax.title.set_fontsize(10)
+        ax.legend(fontsize=7, loc="lower right", framealpha=0.8)
     paths = None
     if run.features is not None:
         paths = run.features.values.reshape(len(run.features.t), -1, 2)
@@ -631,14 +666,17 @@ def write_report(bag: str | Path, out_dir: str | Path | None = None,
     command = command_of_run(run, motion.joint_names) if motion is not None else None
     metrics = compute_metrics(run, tolerance_px, motion, command)
     path, estimate = goal_path(run, motion), pose_estimate_series(run)
+    taught = taught_view(run)
     (out / "metrics.json").write_text(json.dumps(metrics, indent=2) + "\n", encoding="utf8")
     sections = [
         ("Camera view at the start and at the end", [
-            ("Camera frames with the detected features (green, numbered), their reference "
-             "marks (blue) and error vectors (yellow, toward the mark); white: the feature "
-             "paths" if run.features is not None else
-             "Camera frames (the record holds no detected features to mark on them)",
-             fig_frames(run, metrics), "jpeg")]),
+            (("Camera frames with the detected features (green, numbered), their reference "
+              "marks (blue) and error vectors (yellow, toward the mark); white: the feature "
+              "paths" if run.features is not None else
+              "Camera frames (the record holds no detected features to mark on them)")
+             + ("; right: the taught view from the reference copied into the record, its "
+                "features numbered in the reference's order" if taught is not None else ""),
+             fig_frames(run, metrics, taught), "jpeg")]),
         ("Image error", [("RMS image error against the ideal exponential decay for the "
                           "recorded gain, and the error of each feature", fig_error(run, metrics),
                           "png")]),
