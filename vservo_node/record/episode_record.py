@@ -10,11 +10,13 @@ the simulator's truth ``sim/camera_pose_truth`` and ``sim/taught_camera_pose`` (
 ``robot_description`` (the scenario's URDF), ``camera/camera_info`` and two camera frames
 (JPEG, rendered by the simulated camera at the first and the last tick's joints);
 ``params.yaml`` (the episode's controller parameters with the scenario's robot frames and the
-believed hand-eye), ``result.json`` (the servo's result and the true pose error) and
-``episode.json`` (where the episode came from); per camera frame with a match, as the node publishes them,
-the features seen ``servo/features`` [u1, v1, ...], their errors from the taught view
-``servo/feature_error`` [du1, dv1, ...] and ``servo/error_rms`` (px), so the report marks the
-start and end frames and plots the error of each feature as for a run of the cell.
+believed hand-eye), ``result.json`` (the servo's result, its own pose-error estimate and the
+true pose error) and ``episode.json`` (where the episode came from); per camera frame with a
+match, as the node publishes them, the features seen ``servo/features`` [u1, v1, ...], their
+errors from the taught view ``servo/feature_error`` [du1, dv1, ...] and ``servo/error_rms``
+(px), so the report marks the start and end frames and plots the error of each feature as for
+a run of the cell. The status records' ``cycle_ms`` is the measured perception + servo time
+of the frame before them (NaN on output ticks without a frame).
 """
 from __future__ import annotations
 
