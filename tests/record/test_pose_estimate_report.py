@@ -122,3 +122,36 @@ def test_compare_without_ground_truth_studies_the_estimate(without_truth, tmp_pa
         mine = [r for r in series if r["label"] == label]
         assert len(mine) == len(t)
         assert float(mine[-1]["position_error_mm"]) == pytest.approx(mm[-1])
+
+
+def test_on_a_real_cell_the_goal_is_the_taught_joints(tmp_path):
+    """No simulator truth, but the copied reference keeps the joints it was taught at (the
+    synthetic run's goal is the arm's home): the measured error to the goal is forward
+    kinematics of the recorded joint states (reordered by name, fingers dropped) against
+    those joints, and the synthetic estimate is 1.05 x it at every instant."""
+    import numpy as np
+
+    from vservo_node.control.kinematics import load_robot
+    from vservo_node.vision.reference import Reference, save_reference, with_joints
+
+    robot = load_robot(syn.ROBOT)
+    ref = Reference(name="st", target="tray_tags", kind="markers",
+                    keys=[("tag", 3, c) for c in range(4)],
+                    pixels=np.array([[1.0, 1.0], [9.0, 1.0], [9.0, 9.0], [1.0, 9.0]]),
+                    image_size=(64, 48), image=np.zeros((48, 64, 3), np.uint8))
+    path = save_reference(with_joints(ref, robot.arm.joint_names, robot.home),
+                          tmp_path / "st.yaml")
+    spec = syn.Spec(estimate_bias=0.05, truth=False)
+    with RunRecorder(tmp_path / "runs", "cell", params=spec.params()) as rec:
+        syn.record_with(rec, spec)
+        rec.copy_reference(path)
+    run = load_run(rec.bag_dir)
+    t_goal, mm, deg, _, source = goal_path(run, motion_of_run(run, arm_of_run(run)))
+    assert source.startswith("forward kinematics: camera against the joints the reference")
+    t, mm_est, deg_est = pose_estimate_series(run)
+    # the joints (100 Hz) interpolated to the status records' times (30 Hz)
+    mm, deg = np.interp(t, t_goal, mm), np.interp(t, t_goal, deg)
+    big = mm > 0.05
+    np.testing.assert_allclose(mm_est[big] / mm[big], 1.05, rtol=2e-3)
+    big = deg > 0.01
+    np.testing.assert_allclose(deg_est[big] / deg[big], 1.05, rtol=2e-3)
