@@ -16,7 +16,9 @@ match, as the node publishes them, the features seen ``servo/features`` [u1, v1,
 errors from the taught view ``servo/feature_error`` [du1, dv1, ...] and ``servo/error_rms``
 (px), so the report marks the start and end frames and plots the error of each feature as for
 a run of the cell. The status records' ``cycle_ms`` is the measured perception + servo time
-of the frame before them (NaN on output ticks without a frame).
+of the frame before them (NaN on output ticks without a frame). With image sensing the taught
+reference (its image and the taught joints) is kept in ``reference/`` as the recorder copies
+it; a projected-sensing episode has no taught image to keep.
 """
 from __future__ import annotations
 
@@ -30,7 +32,7 @@ import numpy as np
 
 from vservo_node import interface as itf
 from vservo_node.control import frames
-from vservo_node.record.bag import COMPRESSED_IMAGE, RunRecorder
+from vservo_node.record.bag import COMPRESSED_IMAGE, REFERENCE_DIR, RunRecorder
 
 T0_NS = 10**9   # log time of t = 0 (rosbag2 readers dislike a zero start)
 
@@ -139,6 +141,9 @@ def write_record(root: Path, name: str, scenario, values: dict, result, notes: d
             **{k: getattr(result, k) for k in (
                 "estimated_pose_error_mm", "estimated_pose_error_deg",
                 "estimated_pose_error_spread_mm", "estimated_pose_error_spread_deg")}}))
+    if getattr(result, "reference", None) is not None:
+        from vservo_node.vision.reference import save_reference
+        save_reference(result.reference, recorder.bag_dir / REFERENCE_DIR / "episode.yaml")
     (recorder.bag_dir / "episode.json").write_text(json.dumps(_json_safe(notes or {}),
                                                               indent=2) + "\n")
     return recorder.bag_dir
