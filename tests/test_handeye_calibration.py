@@ -95,6 +95,39 @@ def test_with_the_calibrated_hand_eye_the_run_converges_as_with_the_true_one(out
     assert cal.pose_error_deg < true.pose_error_deg + SAME_DEG
 
 
+FIXED = "vs6_stand_combined"
+
+
+@pytest.fixture(scope="module")
+def fixed_outcome():
+    """The fixed camera: samples of the stand cell (the tool carries the board to proposed
+    views), solved for the stand's pose and the board on the tool (cv2.calibrateHandEye on
+    the inverted arm poses, cv2.calibrateRobotWorldHandEye, least squares), loaded as the
+    controller's belief; the run converges to the true mounting's accuracy."""
+    from vservo_node.control.mounting import FixedCamera
+
+    sc = load_scenario(FIXED)
+    samples, info = cs.samples_from_sim(sc, 12, seed=0)
+    assert info["mounting"] == "fixed"
+    cal = he.calibrate(samples, "fixed", 0.5 * (sc.camera.K[0, 0] + sc.camera.K[1, 1]))
+    runs = {label: run_scenario_episode(dataclasses.replace(sc, fixed_belief=fx))
+            for label, fx in (("calibrated", FixedCamera(cal.best.X, cal.best.W)),
+                              ("true", sc.mount("true")))}
+    return sc, cal, runs
+
+
+def test_fixed_camera_calibration_converges_as_the_true_mounting(fixed_outcome):
+    sc, cal, runs = fixed_outcome
+    mm, deg = he.pose_difference(sc.mount("true").T_base_camera, cal.best.X)
+    assert mm < 0.5 and deg < 0.05, (mm, deg)
+    mm, deg = he.pose_difference(sc.mount("true").T_tool_target, cal.best.W)
+    assert mm < 0.5 and deg < 0.05, (mm, deg)
+    cal_run, true_run = runs["calibrated"], runs["true"]
+    assert cal_run.converged and true_run.converged
+    assert cal_run.pose_error_mm < true_run.pose_error_mm + SAME_MM
+    assert cal_run.pose_error_deg < true_run.pose_error_deg + SAME_DEG
+
+
 if __name__ == "__main__":
     import tempfile
 

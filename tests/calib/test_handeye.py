@@ -112,6 +112,22 @@ def test_parameter_snippet_is_what_the_schema_accepts(tmp_path):
     assert mm < 0.01 and deg < 0.001
 
 
+def test_fixed_camera_snippet_is_what_the_schema_accepts(tmp_path):
+    cal = he.calibrate(hs.samples(10, "fixed", 0.0, seed=1), "fixed", hs.FOCAL_PX)
+    path = tmp_path / "fixed.yaml"
+    path.write_text(he.params_snippet(cal))
+    checked = params.validate({**params.load_params_file(path),
+                               "limits.joint_acceleration": [2.0]})
+    assert checked.ok, checked.errors
+    v = checked.values
+    assert v["robot.camera_mount"] == "fixed"
+    for name, truth in (("robot.fixed_camera_pose", hs.T_BASE_CAMERA),
+                        ("robot.target_on_tool", hs.T_TOOL_TARGET)):
+        T = frames.transform_from_xyz_quat(v[name][:3], v[name][3:])
+        mm, deg = he.pose_difference(truth, T)
+        assert mm < 0.01 and deg < 0.001, name
+
+
 def test_urdf_snippet_round_trips_through_the_urdf_convention():
     """URDF <origin rpy> is fixed-axis roll, pitch, yaw (URDF specification, joint origin):
     frames.transform_from_xyz_rpy reads it back to the solved transform."""
