@@ -121,3 +121,20 @@ def test_check_and_delay_read_the_same_from_a_run_record(tmp_path):
     d_bag = estimate_delay(from_bag, OUTPUT_PERIOD_S)
     configured = sc.arm_dynamics.command_latency_s + sc.arm_dynamics.velocity_lag_s
     assert abs(d_bag.delay_s - configured) < 0.010
+
+
+def test_the_run_report_shows_the_check_and_the_delay(tmp_path):
+    from vservo_node.record.report import write_report
+
+    rotvec, t = _wrong(20.0, 30.0)
+    trace, _, sc = scenario_trace("tray_offset", rotvec, t, sensing="projected")
+    rec = TraceRecorder(sc.arm_model("belief"), sc.camera, sc.target)
+    rec.frames = [(tt, xy, z, q) for tt, xy, z, q in zip(trace.t, trace.xy, trace.depth, trace.q)]
+    rec.commands = list(zip(trace.t_cmd, trace.dq_cmd))
+    rec.keys = tuple(sc.target.keys())
+    bag = calib_bags.write_run_bag(tmp_path, sc, rec, episode_params(sc.controller,
+                                                                     camera_rate_hz=sc.fps))
+    page, _ = write_report(bag, tmp_path / "report")
+    text = page.read_text()
+    assert "Cell geometry" in text and "likely cause of a wrong_direction" in text
+    assert "control.loop_delay_s" in text
