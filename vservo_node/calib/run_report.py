@@ -17,8 +17,10 @@ def cell_geometry(run) -> dict:
     out = {"hand_eye": None, "delay": None, "reason": ""}
     try:
         trace = trace_from_run(run)
-    except ValueError as exc:
-        out["reason"] = str(exc)
+    # a record of another layout (an old reference file, a foreign bag) must not break the
+    # report: say why instead
+    except (ValueError, KeyError, TypeError, IndexError) as exc:
+        out["reason"] = f"{type(exc).__name__}: {exc}"
         return out
     reasons = []
     try:
