@@ -100,19 +100,32 @@ FIXED = "vs6_stand_combined"
 
 @pytest.fixture(scope="module")
 def fixed_outcome():
+    return calibrate_fixed()
+
+
+def calibrate_fixed():
     """The fixed camera: samples of the stand cell (the tool carries the board to proposed
     views), solved for the stand's pose and the board on the tool (cv2.calibrateHandEye on
-    the inverted arm poses, cv2.calibrateRobotWorldHandEye, least squares), loaded as the
+    the inverted arm poses, cv2.calibrateRobotWorldHandEye, least squares), its parameter
+    snippet loaded through the schema and control/mounting.py as the
     controller's belief; the run converges to the true mounting's accuracy."""
-    from vservo_node.control.mounting import FixedCamera
+    import tempfile
+
+    from vservo_node.control.mounting import mount_from_params
 
     sc = load_scenario(FIXED)
     samples, info = cs.samples_from_sim(sc, 12, seed=0)
     assert info["mounting"] == "fixed"
     cal = he.calibrate(samples, "fixed", 0.5 * (sc.camera.K[0, 0] + sc.camera.K[1, 1]))
+    with tempfile.TemporaryDirectory() as folder:
+        snippet = Path(folder) / "fixed.yaml"
+        snippet.write_text(he.params_snippet(cal))
+        checked = params.validate({**params.load_params_file(snippet),
+                                   "limits.joint_acceleration": [2.0]})
+    assert checked.ok, checked.errors
+    loaded = mount_from_params(checked.values)
     runs = {label: run_scenario_episode(dataclasses.replace(sc, fixed_belief=fx))
-            for label, fx in (("calibrated", FixedCamera(cal.best.X, cal.best.W)),
-                              ("true", sc.mount("true")))}
+            for label, fx in (("calibrated", loaded), ("true", sc.mount("true")))}
     return sc, cal, runs
 
 
@@ -149,3 +162,11 @@ if __name__ == "__main__":
         print(f"  run with the {label} hand-eye: {'converged' if r.converged else r.reason} in "
               f"{r.time_s:.2f} s, {r.pose_error_mm:.3f} mm / {r.pose_error_deg:.4f} deg from the "
               "taught pose")
+    fsc, fcal, runs = calibrate_fixed()
+    print(f"{FIXED} (fixed camera):")
+    print(he.format_table(fcal, fsc.mount("true").T_base_camera))
+    mm, deg = he.pose_difference(fsc.mount("true").T_tool_target, fcal.best.W)
+    print(f"  target on the tool: {mm:.3f} mm / {deg:.4f} deg from the true one")
+    for label, r in runs.items():
+        print(f"  run with the {label} mounting: {'converged' if r.converged else r.reason} in "
+              f"{r.time_s:.2f} s, {r.pose_error_mm:.3f} mm / {r.pose_error_deg:.4f} deg")

@@ -55,7 +55,8 @@ class HandEyeCheck:
     """The hand-eye error ``E`` (true = believed @ E) estimated from a run: its rotation
     vector (deg, believed camera axes) and angle with one standard deviation, its translation
     (mm) with one standard deviation and whether it is observable; the RMS residual before and
-    after the fit (px per feature coordinate per frame pair); the corrected hand-eye."""
+    after the fit (px per feature coordinate per frame pair); the corrected hand-eye (the
+    translation corrected only when observable)."""
 
     rotation_deg: float
     rotation_std_deg: float
@@ -167,11 +168,14 @@ def check_hand_eye(trace, min_flow_px: float = MIN_FLOW_PX) -> HandEyeCheck:
     rot_std = math.degrees(math.sqrt(max(np.trace(cov[:3, :3]), 0.0)))
     trans_std = 1e3 * math.sqrt(max(np.trace(cov[3:, 3:]), 0.0))
     X_hat = trace.arm.T_tool_camera
+    observable = trans_std < TRANSLATION_OBSERVABLE_MM
+    # the correction applies the translation only where the run showed it
+    applied = E if observable else frames.transform(E[:3, :3], np.zeros(3))
     return HandEyeCheck(
         rotation_deg=math.degrees(float(np.linalg.norm(fit.x[:3]))), rotation_std_deg=rot_std,
         rotvec_deg=np.degrees(fit.x[:3]), translation_mm=1e3 * float(np.linalg.norm(fit.x[3:])),
         translation_std_mm=trans_std,
-        translation_observable=trans_std < TRANSLATION_OBSERVABLE_MM, E=E,
-        corrected=X_hat @ E, n_pairs=len(ds),
+        translation_observable=observable, E=E,
+        corrected=X_hat @ applied, n_pairs=len(ds),
         residual_before_px=float(np.sqrt(np.mean(r0 ** 2))),
         residual_after_px=float(np.sqrt(np.mean(fit.fun ** 2))))

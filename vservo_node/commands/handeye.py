@@ -242,7 +242,8 @@ def _check(args) -> int:
     print(f"residual of the feature motion: {check.residual_before_px:.3f} px before, "
           f"{check.residual_after_px:.3f} px after the correction")
     corrected = check.as_dict()["corrected_hand_eye"]
-    print("corrected robot.hand_eye (rotation reliable; translation only if observable): "
+    print("corrected robot.hand_eye (translation kept where the run does not show it; a "
+          "calibration is better): "
           f"[{', '.join(f'{v:.6f}' for v in corrected)}]")
     return 0
 
