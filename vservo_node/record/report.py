@@ -710,6 +710,8 @@ def write_report(bag: str | Path, out_dir: str | Path | None = None,
     if missing:
         body.append(f"<p class='sub'>Not drawn (data not in the record): "
                     f"{html.escape('; '.join(missing))}</p>")
+    from vservo_node.calib.run_report import section_html   # hand-eye check, loop delay
+    body.append(section_html(run))
     body.append(f"<h2>Parameters used</h2>{params_table(run)}")
     body.append(f"<h2>All figures (metrics.json)</h2>{metrics_table(metrics)}")
     topics = "".join(f"<tr><td>{html.escape(name)}</td><td>{html.escape(kind)}</td>"
