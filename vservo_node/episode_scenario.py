@@ -156,6 +156,7 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
 
     meter = _Meter(cell.arm_model, cell.taught_judged_pose, sc.q_start,
                    values["robot.tool_point"], record, mount=cell.mount)
+    meter.reference = None if sensing == "projected" else reference
     period = 1.0 / values["io.output_rate_hz"]
     frame_period = 1.0 / sc.fps
     no_features = Observation((), np.zeros((0, 2)), np.zeros((0, 2)))
