@@ -90,9 +90,11 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Any
 
 import cv2
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.spatial.transform import Rotation
 
 from vservo_node.control.frames import invert, skew
@@ -146,7 +148,7 @@ class Task:
     pose: RelativePose
 
 
-def taught_model(xy_taught, z_taught) -> np.ndarray:
+def taught_model(xy_taught: ArrayLike, z_taught: ArrayLike) -> np.ndarray:
     """The taught points in the taught camera frame, (N, 3) m: ``Z* [x*, y*, 1]``."""
     xy = np.asarray(xy_taught, dtype=float)
     z = np.broadcast_to(np.asarray(z_taught, dtype=float), (len(xy),))
@@ -159,10 +161,10 @@ def taught_model(xy_taught, z_taught) -> np.ndarray:
 
 def _is_planar(model: np.ndarray) -> bool:
     spread = np.linalg.svd(model - model.mean(axis=0), compute_uv=False)
-    return spread[0] > 0 and spread[2] <= PLANAR_RATIO * spread[0]
+    return bool(spread[0] > 0 and spread[2] <= PLANAR_RATIO * spread[0])
 
 
-def relative_pose(xy_now, model) -> RelativePose:
+def relative_pose(xy_now: ArrayLike, model: ArrayLike) -> RelativePose:
     """PnP of ``model`` (N, 3, taught camera frame) against ``xy_now`` (N, 2, normalized).
 
     ValueError (with what was wrong) for fewer than 4 points, a degenerate model, no solution,
@@ -194,7 +196,7 @@ def relative_pose(xy_now, model) -> RelativePose:
     return RelativePose(T, residual, method)
 
 
-def _solve(obj: np.ndarray, xy: np.ndarray, method: str):
+def _solve(obj: np.ndarray, xy: np.ndarray, method: str) -> tuple[float, str, Any, Any]:
     """(residual, method, R, t) of one PnP solver with Levenberg-Marquardt refinement;
     residual inf when the solver failed."""
     eye = np.eye(3)
@@ -213,25 +215,25 @@ def _solve(obj: np.ndarray, xy: np.ndarray, method: str):
         residual = float(np.sqrt(np.mean(np.sum((cam[:, :2] / cam[:, 2:] - xy) ** 2, axis=1))))
     return (residual if math.isfinite(residual) else math.inf), method, R, t
 
-def theta_u(R_taught_now, previous=None) -> np.ndarray:
+def theta_u(R_taught_now: ArrayLike, previous: ArrayLike | None = None) -> np.ndarray:
     """Angle times axis (rad) of ``c*R_c`` = ``R_taught_now`` (rotation of the current camera
     frame in the taught one). Near a half turn the axis is ill-defined (``theta u`` and
     ``-(2 pi - theta) u`` are the same rotation): given ``previous`` (the last value), the one
     closer to it is returned, up to :data:`MAX_ANGLE`, so noise cannot flip the turning
     direction from one image to the next."""
-    rotvec = Rotation.from_matrix(np.asarray(R_taught_now, dtype=float)).as_rotvec()
+    rotvec: np.ndarray = Rotation.from_matrix(np.asarray(R_taught_now, dtype=float)).as_rotvec()
     angle = float(np.linalg.norm(rotvec))
     if previous is None or angle < 1e-9:
         return rotvec
     alternative = rotvec * (1.0 - 2.0 * math.pi / angle)
-    previous = np.asarray(previous, dtype=float)
+    last = np.asarray(previous, dtype=float)
     if (2.0 * math.pi - angle <= MAX_ANGLE and
-            np.linalg.norm(alternative - previous) < np.linalg.norm(rotvec - previous)):
+            np.linalg.norm(alternative - last) < np.linalg.norm(rotvec - last)):
         return alternative
     return rotvec
 
 
-def rotation_interaction(tu) -> np.ndarray:
+def rotation_interaction(tu: ArrayLike) -> np.ndarray:
     """``L_w`` (3x3) with ``d(theta u)/dt = L_w w`` for ``theta u`` of ``c*R_c`` and ``w`` the
     angular velocity in the *current* camera frame:
     ``I + theta/2 [u]x + (1 - sinc(theta) / sinc^2(theta/2)) [u]x^2``, sinc(x) = sin(x)/x.
@@ -239,16 +241,20 @@ def rotation_interaction(tu) -> np.ndarray:
     the skew term with -theta/2: the sign flips with the direction the rotation is taken in
     (their form is ours for the inverse rotation); the tests check this one against a numerical
     derivative. ``L_w theta u = theta u`` either way."""
-    tu = np.asarray(tu, dtype=float)
-    theta = float(np.linalg.norm(tu))
+    v = np.asarray(tu, dtype=float)
+    theta = float(np.linalg.norm(v))
     if theta < 1e-12:
         return np.eye(3)
-    u = skew(tu / theta)
-    sinc = lambda a: math.sin(a) / a  # noqa: E731
+    u = skew(v / theta)
+
+    def sinc(a: float) -> float:
+        return math.sin(a) / a
+
     return np.eye(3) + 0.5 * theta * u + (1.0 - sinc(theta) / sinc(0.5 * theta) ** 2) * (u @ u)
 
 
-def task(xy_now, xy_taught, z_taught, previous_theta_u=None) -> Task:
+def task(xy_now: ArrayLike, xy_taught: ArrayLike, z_taught: ArrayLike,
+         previous_theta_u: ArrayLike | None = None) -> Task:
     """The decoupled error and interaction matrix from the current normalized points ``xy_now``
     (N, 2), the taught ones ``xy_taught`` (N, 2) and their taught depths ``z_taught`` (N,) m
     (or one value: a fronto-parallel model), in matching order. ``previous_theta_u``: the last
@@ -257,7 +263,8 @@ def task(xy_now, xy_taught, z_taught, previous_theta_u=None) -> Task:
     return task_at(relative_pose(xy_now, model), model.mean(axis=0), previous_theta_u)
 
 
-def task_at(pose: RelativePose, reference_taught, previous_theta_u=None) -> Task:
+def task_at(pose: RelativePose, reference_taught: ArrayLike,
+            previous_theta_u: ArrayLike | None = None) -> Task:
     """The task at a given relative pose, for the reference point ``reference_taught`` (3,)
     (taught camera frame, m)."""
     T_now_taught = pose.T_now_taught
@@ -279,7 +286,7 @@ def task_at(pose: RelativePose, reference_taught, previous_theta_u=None) -> Task
     return Task(error, L, tu, now, reference, pose)
 
 
-def predicted(t: Task, displacement) -> Task:
+def predicted(t: Task, displacement: ArrayLike) -> Task:
     """The task after the camera moved by ``displacement`` ``[v; w] dt`` (m, rad; current
     camera frame) from where ``t`` was computed: the relative pose moved to first order,
     ``T_now'_taught = [R(w dt) | v dt]^-1 T_now_taught``, and the task rebuilt there (for

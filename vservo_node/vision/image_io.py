@@ -11,8 +11,11 @@ and the colour difference Delta E*ab (CIE 15:2004, Colorimetry, sec. 8.2.1).
 """
 from __future__ import annotations
 
+from typing import Any, NoReturn, Sequence
+
 import cv2
 import numpy as np
+from numpy.typing import ArrayLike
 
 # A garbage frame makes OpenCV's decoders log a warning of their own on every frame; the
 # callers refuse such frames with a throttled message that names the stream instead (cv2.error
@@ -38,7 +41,7 @@ _BAYER = {"bayer_rggb8": cv2.COLOR_BayerRGGB2BGR, "bayer_bggr8": cv2.COLOR_Bayer
 _CONVERT = {"rgb8": cv2.COLOR_RGB2BGR, "bgra8": cv2.COLOR_BGRA2BGR, "rgba8": cv2.COLOR_RGBA2BGR}
 
 
-def _refuse(encoding, supported=SUPPORTED_ENCODINGS):
+def _refuse(encoding: str, supported: Sequence[str] = SUPPORTED_ENCODINGS) -> NoReturn:
     raise ValueError(f"unsupported image encoding {encoding!r}; supported: "
                      f"{', '.join(supported)} (CompressedImage formats may read "
                      "e.g. 'rgb8; jpeg compressed bgr8')")
@@ -59,7 +62,7 @@ def compressed_kind(fmt: str) -> str | None:
     return None
 
 
-def raw_view(buffer, encoding: str, width: int, height: int, step: int,
+def raw_view(buffer: Any, encoding: str, width: int, height: int, step: int,
              is_bigendian: bool = False) -> np.ndarray:
     """Numpy view (H, W) or (H, W, C) of a raw image buffer, without copying.
 
@@ -90,7 +93,7 @@ def raw_view(buffer, encoding: str, width: int, height: int, step: int,
     return np.ndarray(shape, dtype=dtype, buffer=flat, strides=strides)
 
 
-def to_bgr_or_mono(buffer, encoding: str, width: int | None = None, height: int | None = None,
+def to_bgr_or_mono(buffer: Any, encoding: str, width: int | None = None, height: int | None = None,
                    step: int | None = None, is_bigendian: bool = False) -> np.ndarray:
     """Decode an image buffer to BGR uint8, mono uint8 or (mono16) mono uint16.
 
@@ -148,7 +151,8 @@ def to_mono8(image: np.ndarray) -> np.ndarray:
     camera in a 16-bit container keeps its contrast (common practice, no source).
     """
     if image.dtype == np.uint16:
-        return cv2.normalize(image, None, 0, 255, cv2.NORM_MINMAX, dtype=cv2.CV_8U)
+        return np.asarray(cv2.normalize(image, None, 0, 255, cv2.NORM_MINMAX,  # type: ignore[call-overload]
+                                        dtype=cv2.CV_8U))
     if image.dtype != np.uint8:
         raise ValueError(f"expected a uint8 or uint16 image, got {image.dtype}")
     if image.ndim == 3:
@@ -165,17 +169,17 @@ _WHITE_D65 = _RGB_TO_XYZ.sum(axis=1)
 _DELTA = 6.0 / 29.0  # CIE 15:2004 CIELAB: the cube root is replaced by a line below DELTA^3
 
 
-def srgb_to_linear(c) -> np.ndarray:
+def srgb_to_linear(c: ArrayLike) -> np.ndarray:
     """Linear-light values of gamma-encoded sRGB values ``c`` in [0, 1] (IEC 61966-2-1)."""
-    c = np.asarray(c, dtype=float)
-    return np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
+    v = np.asarray(c, dtype=float)
+    return np.where(v <= 0.04045, v / 12.92, ((v + 0.055) / 1.055) ** 2.4)
 
 
 # Linear-light value of each 8-bit code, for averaging pixel colours in linear light.
 SRGB8_TO_LINEAR = srgb_to_linear(np.arange(256) / 255.0)
 
 
-def linear_rgb_to_lab(rgb) -> np.ndarray:
+def linear_rgb_to_lab(rgb: ArrayLike) -> np.ndarray:
     """CIELAB (L*, a*, b*) of linear-light sRGB ``rgb`` (..., 3) in [0, 1], D65 white."""
     xyz = np.asarray(rgb, dtype=float) @ _RGB_TO_XYZ.T / _WHITE_D65
     f = np.where(xyz > _DELTA ** 3, np.cbrt(xyz), xyz / (3 * _DELTA ** 2) + 4.0 / 29.0)
@@ -184,11 +188,13 @@ def linear_rgb_to_lab(rgb) -> np.ndarray:
                      200.0 * (f[..., 1] - f[..., 2])], axis=-1)
 
 
-def srgb_to_lab(rgb) -> np.ndarray:
+def srgb_to_lab(rgb: ArrayLike) -> np.ndarray:
     """CIELAB of gamma-encoded sRGB ``rgb`` (..., 3) in [0, 1] (R, G, B order)."""
     return linear_rgb_to_lab(srgb_to_linear(rgb))
 
 
-def delta_e_ab(lab1, lab2) -> np.ndarray:
+def delta_e_ab(lab1: ArrayLike, lab2: ArrayLike) -> np.ndarray:
     """CIE 1976 colour difference Delta E*ab: Euclidean distance in CIELAB (broadcasts)."""
-    return np.linalg.norm(np.asarray(lab1, float) - np.asarray(lab2, float), axis=-1)
+    distance: np.ndarray = np.linalg.norm(np.asarray(lab1, float) - np.asarray(lab2, float),
+                                          axis=-1)
+    return distance
