@@ -218,8 +218,9 @@ class Perception:
 
     def _fallback_depths(self, keys) -> np.ndarray:
         """Taught depths of ``keys`` when the reference has them, else the constant depth."""
-        if self.reference.depths is not None:
-            return depth_mod.taught(self.reference, keys).z
+        reference = self.reference      # set whenever features are matched
+        if reference is not None and reference.depths is not None:
+            return depth_mod.taught(reference, keys).z
         return depth_mod.constant(len(keys), self.depth.constant_m).z
 
     @staticmethod

@@ -4,13 +4,12 @@ from __future__ import annotations
 
 import re
 from datetime import datetime, timezone
+from typing import Final
 
 import numpy as np
 from rosbags.typesys import Stores, get_typestore
 
-
-
-ROSBAG2_VERSION = 9           # the newest format rosbags 0.11.9 writes (rosbag2 Jazzy and later)
+ROSBAG2_VERSION: Final = 9     # the newest format rosbags 0.11.9 writes (rosbag2 Jazzy and later)
 ROS_DISTRO = "jazzy"
 DEFAULT_SPLIT_S = 0.75        # wall seconds per split; loss bound split + poll = 0.8 s < 1 s
 DEFAULT_POLL_S = 0.05

@@ -241,6 +241,7 @@ class RunRecorder:
     def _close_split(self) -> None:
         """Close the open split, move its MCAP file into the bag, then rewrite metadata.yaml."""
         split, self._split = self._split, None
+        assert split is not None, "no split is open"
         split.writer.close()
         folder = self.bag_dir / OPEN_DIR / split.stem
         name = split.stem + ".mcap"
