@@ -19,16 +19,16 @@ import pytest
 from scipy.special import lambertw
 
 sys.path.insert(0, str(Path(__file__).parent))
-import calib_bags  # noqa: E402
+import calib_bags
 
-from vservo_node.calib import handeye as he  # noqa: E402
-from vservo_node.calib.check import LARGE_ERROR_DEG, check_hand_eye  # noqa: E402
-from vservo_node.calib.delay import estimate_delay  # noqa: E402
-from vservo_node.calib.trace import TraceRecorder, trace_from_run  # noqa: E402
-from vservo_node.commands.handeye import scenario_trace  # noqa: E402
-from vservo_node.episode import episode_params, run_scenario_episode  # noqa: E402
-from vservo_node.record.bag import load_run  # noqa: E402
-from vservo_node.sim import load_scenario  # noqa: E402
+from vservo_node.calib import handeye as he
+from vservo_node.calib.check import LARGE_ERROR_DEG, check_hand_eye
+from vservo_node.calib.delay import estimate_delay
+from vservo_node.calib.trace import TraceRecorder, trace_from_run
+from vservo_node.commands.handeye import scenario_trace
+from vservo_node.episode import episode_params, run_scenario_episode
+from vservo_node.record.bag import load_run
+from vservo_node.sim import load_scenario
 
 OUTPUT_PERIOD_S = 1.0 / 125.0
 
@@ -49,7 +49,7 @@ def test_delay_matches_the_drives_configured_latency_and_lag(lag, latency):
 def test_a_pure_delay_alone_under_reads_a_long_lag():
     """Why the search includes a first-order lag: with the lag 50 ms the best pure delay is
     shorter than latency + lag (phase delay atan(w T)/w < T)."""
-    trace, _, sc = scenario_trace("tray_offset", sensing="projected", lag=0.05, latency=0.03)
+    trace, _, _sc = scenario_trace("tray_offset", sensing="projected", lag=0.05, latency=0.03)
     pure = estimate_delay(trace, OUTPUT_PERIOD_S, lags_s=(0.0,))
     assert pure.delay_s < 0.08 - 0.005
 

@@ -37,8 +37,8 @@ import numpy as np
 from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
-from vservo_node.control import frames
 from vservo_node.calib.trace import aligned
+from vservo_node.control import frames
 from vservo_node.control.interaction import point_interaction_matrix
 
 LARGE_ERROR_DEG = 10.0

@@ -98,9 +98,9 @@ class DelayEstimate:
         return self.correlation >= MIN_CORRELATION
 
     def lines(self) -> list[str]:
-        out = [f"command -> image motion: {1e3 * self.delay_s:.1f} ms = pure delay "
-               f"{1e3 * self.latency_s:.1f} ms + first-order lag {1e3 * self.lag_s:.0f} ms "
-               f"(correlation {self.correlation:.4f} over {self.n_pairs} frame pairs)"]
+        out = [(f"command -> image motion: {1e3 * self.delay_s:.1f} ms = pure delay "
+                f"{1e3 * self.latency_s:.1f} ms + first-order lag {1e3 * self.lag_s:.0f} ms "
+                f"(correlation {self.correlation:.4f} over {self.n_pairs} frame pairs)")]
         if math.isfinite(self.drives_s):
             out.append(f"command -> reported joint motion: {1e3 * self.drives_s:.1f} ms (images "
                        f"lag the joint states by {1e3 * (self.delay_s - self.drives_s):.1f} ms)")

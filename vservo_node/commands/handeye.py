@@ -263,7 +263,7 @@ def _delay(args) -> int:
         else:
             from vservo_node.episode import episode_params
 
-            trace, result, sc = scenario_trace(args.scenario, sensing="image", lag=args.lag,
+            trace, _result, sc = scenario_trace(args.scenario, sensing="image", lag=args.lag,
                                                latency=args.latency)
             rate = args.output_rate or episode_params(sc.controller)["io.output_rate_hz"]
             print(f"{sc.name} headless: drives' command_latency_s "
