@@ -169,3 +169,23 @@ def test_a_loaded_nodes_late_features_are_put_back_at_their_capture(tmp_path):
     configured = sc.arm_dynamics.command_latency_s + sc.arm_dynamics.velocity_lag_s
     assert abs(d.delay_s - configured) < 0.010
     assert d.loop_delay_s == pytest.approx(d.delay_s + np.median(late) + OUTPUT_PERIOD_S)
+
+
+def test_fixed_camera_check_and_delay():
+    """A camera on a stand believed 15 deg / 20 mm off (vs6_stand_offset): the run halts
+    wrong_direction and the check reads the stand's error (the eye-to-hand Jacobian of
+    control/mounting.py); with the true stand it reads near zero; the delay is the drives'."""
+    trace, result, sc = scenario_trace("vs6_stand_offset", [9.0, 12.0, 0.0], [20.0, 0.0, 0.0],
+                                       sensing="projected")
+    check = check_hand_eye(trace)
+    assert check.parameter == "robot.fixed_camera_pose" and check.large
+    E_true = np.linalg.inv(sc.mount("belief").T_base_camera) @ sc.mount("true").T_base_camera
+    assert he.pose_difference(E_true, check.E)[1] < 3 * check.rotation_std_deg + 0.3
+    assert not result.converged
+    trace, result, sc = scenario_trace("vs6_stand_offset", sensing="projected")
+    assert result.converged
+    check = check_hand_eye(trace)
+    assert check.rotation_deg < 3 * check.rotation_std_deg + 0.3
+    est = estimate_delay(trace, OUTPUT_PERIOD_S)
+    configured = sc.arm_dynamics.command_latency_s + sc.arm_dynamics.velocity_lag_s
+    assert abs(est.delay_s - configured) < 0.010

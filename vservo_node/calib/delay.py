@@ -204,8 +204,6 @@ def estimate_delay(trace, output_period_s: float, frame_period_s: float | None =
     """The delay of a run's trace (module doc). ``output_period_s``: 1 / io.output_rate_hz;
     ``frame_period_s``: default the median frame interval; ``lags_s``: the first-order lags
     tried (``(0.0,)``: a pure delay only)."""
-    arm = trace.arm
-    to_camera = arm.camera_from_tool()
     Ms, ds, ta, tb, dq_meas = [], [], [], [], []
     for k in range(trace.n_frames - 1):
         xy_mid = 0.5 * (trace.xy[k] + trace.xy[k + 1])
@@ -214,7 +212,7 @@ def estimate_delay(trace, output_period_s: float, frame_period_s: float | None =
         if not (np.isfinite(xy_mid).all() and np.isfinite(Z).all() and np.all(Z > 0)
                 and np.isfinite(q_mid).all()):
             continue
-        Ms.append(point_interaction_matrix(xy_mid, Z) @ to_camera @ arm.jacobian_tool(q_mid))
+        Ms.append(point_interaction_matrix(xy_mid, Z) @ trace.camera_jacobian(q_mid))
         ds.append((trace.xy[k + 1] - trace.xy[k]).ravel())
         ta.append(trace.t[k])
         tb.append(trace.t[k + 1])
