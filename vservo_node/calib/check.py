@@ -20,7 +20,7 @@ pair of the run, the start nod included, to ``L Ad(inv(E)) V^``, summed over the
 (no frame in two), each the shortest span whose predicted motion reaches ``MIN_FLOW_PX``, so
 the joint and feature noise of nearly still frames does not dominate. The standard deviations
 come from the covariance ``s^2 (J^T J)^-1`` at the optimum (Hartley & Zisserman, Multiple View
-Geometry, 2nd ed. 2003, sec. 5.2.3), the pairs treated as independent (neighbours share their
+Geometry, 2nd ed. 2003, ch. 5; from memory), the pairs treated as independent (neighbours share their
 end frame, so the figure is somewhat optimistic). The rotation of ``E`` shows in
 every motion and is always observable; its translation only through the camera's rotation
 (the twist transform's ``[t]x R`` block), so it is reported only when its standard deviation

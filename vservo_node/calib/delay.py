@@ -10,14 +10,14 @@ The delay is the ``tau`` that maximises the normalized cross-correlation
 ``sum <ds, M dq(tau)> / sqrt(sum |ds|^2 sum |M dq(tau)|^2)`` over the run's frame pairs (the
 start nod included), searched on a 1 ms grid and refined to below the grid by the vertex of
 the parabola through the peak and its two neighbours (sub-sample interpolation of a
-correlation peak, e.g. Bendat & Piersol, Random Data, 4th ed. 2010, sec. 11.? ; from memory:
-the parabolic fit itself is elementary). The same search between the command and the reported
+correlation peak: common practice, no source). The same search between the command and the reported
 joint motion gives the drives' part alone; their difference is how far the images lag the
 joint states (camera latency, or stamps taken late).
 
 Drives follow a velocity command with a pure delay and a lag. A first-order lag of time
 constant ``T`` follows a ramp ``T`` behind (Ogata, Modern Control Engineering, 5th ed. 2010,
-sec. 5.2, unit-ramp response: the error tends to ``T``) but a faster motion such as the start
+sec. 5.2, unit-ramp response: the error tends to ``T``; from memory, and measured by
+tests/calib/test_run_checks.py) but a faster motion such as the start
 nod by less (phase delay ``atan(w T) / w``), so a pure delay alone under-reads a long lag
 (measured: 68.7 ms for 30 ms + 50 ms). The search therefore also passes the command through a
 first-order lag (``LAGS_S``, 5 ms steps) and keeps the lag and delay of the best correlation;
@@ -34,7 +34,7 @@ output period (a new image acts on the command at the next output tick at the la
 - the continuous loop ``de/dt = -lambda e(t - tau)`` with ``tau`` = loop delay + frame period:
   its characteristic equation ``s + lambda exp(-s tau) = 0`` has the roots
   ``s = W_k(-lambda tau) / tau`` (Lambert W: Corless et al., "On the Lambert W function", Adv.
-  Comput. Math. 5, 1996, sec. 1, delay differential equations); the response is free of
+  Comput. Math. 5, 1996, among its applications; from memory); the response is free of
   oscillation (real dominant root) while ``lambda tau <= 1/e`` and stable while
   ``lambda tau < pi/2`` (the gain at which the phase margin ``pi/2 - lambda tau`` of
   ``lambda exp(-s tau) / s`` vanishes). Both are checked numerically in
