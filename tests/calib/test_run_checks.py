@@ -3,7 +3,8 @@ the same read back from a run record.
 
 Outside checks: the simulated drives' configured latency and first-order lag (sim/arm.py;
 a first-order lag follows a ramp its time constant behind: Ogata, Modern Control Engineering,
-5th ed. 2010, sec. 5.2); the scenario's true and believed hand-eye; the delay loop's gain bounds
+5th ed. 2010, sec. 5.2; from memory, confirmed by the runs here); the scenario's true and
+believed hand-eye; the delay loop's gain bounds
 against the roots of s + lambda exp(-s tau) = 0 from SciPy's Lambert W (Corless et al., "On the
 Lambert W function", Adv. Comput. Math. 5, 1996) and a direct simulation of the delay equation.
 """
