@@ -11,7 +11,8 @@ from __future__ import annotations
 
 import math
 from collections.abc import Collection
-from typing import NoReturn
+from pathlib import Path
+from typing import Any, NoReturn
 
 import numpy as np
 
@@ -24,11 +25,11 @@ class EntryReader:
     kind = "file"
     error: type[ValueError] = YamlFileError
 
-    def __init__(self, source):
+    def __init__(self, source: object) -> None:
         self.where = f"{self.kind} {source}" if source else self.kind
 
     @classmethod
-    def read_yaml(cls, path):
+    def read_yaml(cls, path: str | Path) -> Any:
         """The parsed contents of the file ``path`` (None when empty); ``error`` when it is too
         large, unreadable or not plain YAML (``yaml_files.load_yaml``)."""
         return load_yaml(path, error=cls.error, prefix=f"{cls.kind} ")

@@ -15,9 +15,11 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any, Mapping
 
 import numpy as np
 import pinocchio as pin
+from numpy.typing import ArrayLike
 
 from vservo_node.control.frames import invert, rotation_block, twist_transform
 from vservo_node.paths import shipped
@@ -39,17 +41,17 @@ def _frame_id(model: pin.Model, name: str, role: str) -> int:
     """Id of the frame called ``name`` (a URDF link by preference); ValueError listing the links
     when there is none."""
     if model.existFrame(name, pin.FrameType.BODY):
-        return model.getFrameId(name, pin.FrameType.BODY)
+        return int(model.getFrameId(name, pin.FrameType.BODY))
     if model.existFrame(name):
-        return model.getFrameId(name)
+        return int(model.getFrameId(name))
     links = sorted(f.name for f in model.frames if f.type == pin.FrameType.BODY)
     raise ValueError(f"{role} '{name}' is not a frame of the URDF; available links: "
                      f"{', '.join(links)}")
 
 
-def _check_transform(T, name: str) -> np.ndarray:
+def _check_transform(T_in: ArrayLike, name: str) -> np.ndarray:
     """Return ``T`` as a 4x4 float array if it is a finite rigid transform, else ValueError."""
-    T = np.array(T, dtype=float)
+    T = np.array(T_in, dtype=float)
     if T.shape != (4, 4) or not np.isfinite(T).all():
         raise ValueError(f"{name} must be a finite 4x4 homogeneous transform, got shape {T.shape}")
     R = T[:3, :3]
@@ -82,7 +84,7 @@ class ArmModel:
     """
 
     def __init__(self, model: pin.Model, base_frame: str, tool_frame: str,
-                 camera_frame: str | None = None, min_joints: int = 6):
+                 camera_frame: str | None = None, min_joints: int = 6) -> None:
         """Reduce ``model`` (a full pinocchio model of the URDF) to the chain; see the class doc."""
         base_id = _frame_id(model, base_frame, "base frame")
         tool_id = _frame_id(model, tool_frame, "tool frame")
@@ -104,7 +106,7 @@ class ArmModel:
                 f"expected for servoing a 6-D camera motion. Pass min_joints={len(chain)} to "
                 f"allow a smaller arm explicitly")
 
-        self.T_tool_camera = None
+        self.T_tool_camera: np.ndarray | None = None
         if camera_frame is not None:
             self.T_tool_camera = self._rigid_offset(model, tool_id, camera_frame, tool_frame)
 
@@ -139,7 +141,7 @@ class ArmModel:
         base_in_reduced = _frame_id(self._model, base_frame, "base frame")
         self._T_base_root = invert(self._data.oMf[base_in_reduced].homogeneous)
         self._R_base_root_block = rotation_block(self._T_base_root[:3, :3])
-        self._q_last = None
+        self._q_last: np.ndarray | None = None
 
     # ---------------------------------------------------------------- construction
     @classmethod
@@ -155,14 +157,14 @@ class ArmModel:
         return cls(model, base_frame, tool_frame, camera_frame, min_joints)
 
     @classmethod
-    def from_urdf_file(cls, path, base_frame: str, tool_frame: str,
+    def from_urdf_file(cls, path: str | Path, base_frame: str, tool_frame: str,
                        camera_frame: str | None = None, min_joints: int = 6) -> "ArmModel":
         """Build from a URDF file; see :meth:`from_urdf`."""
         return cls.from_urdf(Path(path).read_text(), base_frame, tool_frame, camera_frame,
                              min_joints)
 
     @staticmethod
-    def _check_joint_types(model: pin.Model, chain, chain_label: str) -> None:
+    def _check_joint_types(model: pin.Model, chain: list[int], chain_label: str) -> None:
         for j in chain:
             kind = model.joints[j].shortname()
             if kind not in _REVOLUTE | _CONTINUOUS | _PRISMATIC:
@@ -171,7 +173,8 @@ class ArmModel:
                     f"pinocchio; only revolute, continuous and prismatic joints are supported")
 
     @staticmethod
-    def _rigid_offset(model: pin.Model, tool_id: int, camera_frame: str, tool_frame: str):
+    def _rigid_offset(model: pin.Model, tool_id: int, camera_frame: str, tool_frame: str
+                      ) -> np.ndarray:
         """``T_tool_camera`` from the URDF; ValueError unless no joint separates the two frames."""
         camera_id = _frame_id(model, camera_frame, "camera frame")
         tool, camera = model.frames[tool_id], model.frames[camera_id]
@@ -183,7 +186,8 @@ class ArmModel:
                 f"'{tool_frame}': joint(s) {', '.join(model.names[j] for j in between)} lie "
                 f"between them; an eye-in-hand camera must be fixed to the tool")
         # Both placements are relative to the same parent joint.
-        return (tool.placement.inverse() * camera.placement).homogeneous
+        offset: np.ndarray = (tool.placement.inverse() * camera.placement).homogeneous
+        return offset
 
     @property
     def model(self) -> pin.Model:
@@ -192,7 +196,7 @@ class ArmModel:
         return self._model
 
     # ---------------------------------------------------------------- configuration
-    def to_pinocchio_q(self, q) -> np.ndarray:
+    def to_pinocchio_q(self, q: ArrayLike) -> np.ndarray:
         """Return the reduced pinocchio configuration (nq,) of ``q`` (n,): continuous joints
         become ``(cos, sin)``."""
         return self._to_pinocchio(self._check_q(q))
@@ -207,9 +211,9 @@ class ArmModel:
         q_pin[self._q_cos[1] + 1] = np.sin(angles)
         return q_pin
 
-    def from_pinocchio_q(self, q_pin) -> np.ndarray:
+    def from_pinocchio_q(self, q_in: ArrayLike) -> np.ndarray:
         """Inverse of :meth:`to_pinocchio_q`; continuous angles come back in (-pi, pi]."""
-        q_pin = np.asarray(q_pin, dtype=float)
+        q_pin = np.asarray(q_in, dtype=float)
         if q_pin.shape != (self._model.nq,):
             raise ValueError(f"pinocchio configuration must have shape ({self._model.nq},), "
                              f"got {q_pin.shape}")
@@ -218,7 +222,7 @@ class ArmModel:
         q[self._q_cos[0]] = np.arctan2(q_pin[self._q_cos[1] + 1], q_pin[self._q_cos[1]])
         return q
 
-    def q_from_mapping(self, positions) -> np.ndarray:
+    def q_from_mapping(self, positions: Mapping[str, float]) -> np.ndarray:
         """Return ``q`` (n,) in chain order from a mapping joint name -> position. Names off the
         chain (e.g. gripper fingers in a joint state) are ignored; a missing chain joint is a
         ValueError naming it."""
@@ -228,8 +232,8 @@ class ArmModel:
                              f"expected all of {', '.join(self.joint_names)}")
         return np.array([float(positions[name]) for name in self.joint_names])
 
-    def _check_q(self, q) -> np.ndarray:
-        q = np.asarray(q, dtype=float)
+    def _check_q(self, q_in: ArrayLike) -> np.ndarray:
+        q = np.asarray(q_in, dtype=float)
         if q.shape != (self.n,):
             raise ValueError(f"q must have shape ({self.n},), one value per joint in the order "
                              f"{', '.join(self.joint_names)}; got shape {q.shape}")
@@ -237,10 +241,10 @@ class ArmModel:
             raise ValueError(f"q must be finite, got {q.tolist()}")
         return q
 
-    def _update(self, q) -> None:
+    def _update(self, q_in: ArrayLike) -> None:
         """Compute placements and joint Jacobians for ``q`` unless they are those of the last
         call (the cache holds a copy, so changing the caller's array in place is safe)."""
-        q = self._check_q(q)
+        q = self._check_q(q_in)
         if self._q_last is not None and (q == self._q_last).all():  # same shape: checked
             return
         pin.computeJointJacobians(self._model, self._data, self._to_pinocchio(q))
@@ -248,7 +252,7 @@ class ArmModel:
         self._q_last = q.copy()
 
     # ---------------------------------------------------------------- frames
-    def _resolve(self, frame: str):
+    def _resolve(self, frame: str) -> tuple[int, np.ndarray | None]:
         """Return ``(pinocchio frame id, T_parent_frame or None)`` for a frame argument."""
         if frame == TOOL:
             return self._tool_id, None
@@ -262,30 +266,30 @@ class ArmModel:
                              "set_hand_eye(T_tool_camera)")
         return self.T_tool_camera
 
-    def set_hand_eye(self, T_tool_camera) -> None:
+    def set_hand_eye(self, T_tool_camera: ArrayLike) -> None:
         """Replace the hand-eye transform (pose of the camera optical frame in the tool frame,
         4x4, metres) by a calibrated one; ValueError unless it is a rigid transform."""
         self.T_tool_camera = _check_transform(T_tool_camera, "T_tool_camera")
 
-    def fk(self, q, frame: str = TOOL) -> np.ndarray:
+    def fk(self, q: ArrayLike, frame: str = TOOL) -> np.ndarray:
         """Return ``T_base_frame`` (4x4, metres): pose of ``frame`` in the base frame at ``q``."""
         fid, T_offset = self._resolve(frame)
         self._update(q)
-        T = self._T_base_root @ self._data.oMf[fid].homogeneous
+        T: np.ndarray = self._T_base_root @ self._data.oMf[fid].homogeneous
         return T if T_offset is None else T @ T_offset
 
-    def camera_pose(self, q) -> np.ndarray:
+    def camera_pose(self, q: ArrayLike) -> np.ndarray:
         """Return ``T_base_camera`` (4x4): tool pose composed with ``T_tool_camera``."""
         return self.fk(q, CAMERA)
 
     # ---------------------------------------------------------------- Jacobians
-    def frame_jacobian_base(self, q, frame: str = TOOL) -> np.ndarray:
+    def frame_jacobian_base(self, q: ArrayLike, frame: str = TOOL) -> np.ndarray:
         """Return the 6 x n geometric Jacobian ``[v; w]`` of ``frame``: linear velocity of the
         frame's origin and angular velocity, both in base axes (m/s and rad/s per unit joint
         velocity). Pinocchio's LOCAL_WORLD_ALIGNED Jacobian, rotated into base axes."""
         fid, T_offset = self._resolve(frame)
         self._update(q)
-        J = self._R_base_root_block @ pin.getFrameJacobian(
+        J: np.ndarray = self._R_base_root_block @ pin.getFrameJacobian(
             self._model, self._data, fid, pin.ReferenceFrame.LOCAL_WORLD_ALIGNED)
         if T_offset is not None:
             # Move the reference point from the parent frame's origin to the offset frame's:
@@ -294,19 +298,21 @@ class ArmModel:
             J[:3] -= _skew(R_base_parent @ T_offset[:3, 3]) @ J[3:]
         return J
 
-    def jacobian_base(self, q) -> np.ndarray:
+    def jacobian_base(self, q: ArrayLike) -> np.ndarray:
         """Return the 6 x n geometric Jacobian ``[v; w]`` of the tool frame: velocity of the tool
         origin and angular velocity, in base axes (Siciliano et al. 2009, sec. 3.1)."""
         return self.frame_jacobian_base(q, TOOL)
 
-    def jacobian_tool(self, q) -> np.ndarray:
+    def jacobian_tool(self, q: ArrayLike) -> np.ndarray:
         """Return the 6 x n tool-frame (body) Jacobian: the base Jacobian re-expressed in tool
         axes, ``rotation_block(R_base_tool).T @ jacobian_base(q)`` (Lynch & Park 2017, Modern
         Robotics, sec. 5.1.3), so the tool twist in tool axes is ``jacobian_tool(q) @ dq``."""
         J = self.jacobian_base(q)
-        return rotation_block(self.fk(q, TOOL)[:3, :3]).T @ J
+        J_tool: np.ndarray = rotation_block(self.fk(q, TOOL)[:3, :3]).T @ J
+        return J_tool
 
-    def point_jacobian_base(self, q, frame: str, offset_in_frame) -> np.ndarray:
+    def point_jacobian_base(self, q: ArrayLike, frame: str, offset_in_frame: ArrayLike
+                            ) -> np.ndarray:
         """Return the 3 x n Jacobian of the linear velocity (base axes, m/s) of the point fixed
         at ``offset_in_frame`` (3,), metres in ``frame`` axes: ``v + w x r``. The angular part,
         the same for every point of the body, is ``frame_jacobian_base(q, frame)[3:]``."""
@@ -315,9 +321,11 @@ class ArmModel:
             raise ValueError(f"offset_in_frame must have shape (3,), got {offset.shape}")
         J = self.frame_jacobian_base(q, frame)
         r = self.fk(q, frame)[:3, :3] @ offset
-        return J[:3] - _skew(r) @ J[3:]
+        J_point: np.ndarray = J[:3] - _skew(r) @ J[3:]
+        return J_point
 
-    def cartesian_jacobians(self, q, tool_point) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    def cartesian_jacobians(self, q: ArrayLike, tool_point: ArrayLike
+                            ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Return the three 3 x n Jacobians the command limiter needs at ``q``, from one
         kinematics update: the linear velocity of the tool point ``tool_point`` (3,), metres in
         tool axes, the linear velocity of the camera origin (believed hand-eye), and the tool's
@@ -330,7 +338,7 @@ class ArmModel:
         T_tool_camera = self._hand_eye()
         self._update(q)
         placement = self._data.oMf[self._tool_id]
-        J = self._R_base_root_block @ pin.getFrameJacobian(
+        J: np.ndarray = self._R_base_root_block @ pin.getFrameJacobian(
             self._model, self._data, self._tool_id, pin.ReferenceFrame.LOCAL_WORLD_ALIGNED)
         R_base_tool = (self._T_base_root @ placement.homogeneous)[:3, :3]
         tool_point_jac = J[:3] - _skew(R_base_tool @ offset) @ J[3:]
@@ -372,8 +380,8 @@ class _RobotReader(EntryReader):
     kind = "robot file"
 
 
-def _joint_values(r: EntryReader, value, entry: str, arm: ArmModel) -> np.ndarray:
-    value = r.mapping(value, entry)
+def _joint_values(r: EntryReader, entry_value: Any, entry: str, arm: ArmModel) -> np.ndarray:
+    value = r.mapping(entry_value, entry)
     extra = sorted(set(value) - set(arm.joint_names), key=str)
     if extra:
         r.fail(entry, f"names joint(s) off the chain: {', '.join(map(str, extra))}; expected "
