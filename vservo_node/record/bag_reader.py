@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from rosbags.highlevel import AnyReader
@@ -223,7 +224,7 @@ def load_run(bag: str | Path) -> RunData:
     status: list[tuple[int, dict]] = []
     images: list[int] = []
     first_last: list = []   # (stamp, msgtype, raw) of the first and the newest image
-    latest: dict[str, object] = {}
+    latest: dict[str, Any] = {}
     skipped = 0
     with AnyReader([path], default_typestore=default_typestore()) as reader:
         types = {c.topic: c.msgtype for c in reader.connections}
@@ -252,7 +253,7 @@ def load_run(bag: str | Path) -> RunData:
                     elif stamp >= first_last[1][0]:
                         first_last[1] = entry
                 continue
-            msg = reader.deserialize(raw, conn.msgtype)
+            msg: Any = reader.deserialize(raw, conn.msgtype)
             if role in _ROW_SERIES:
                 ts, vals = rows.setdefault(role, ([], []))
                 ts.append(stamp)

@@ -29,7 +29,8 @@ def plan(spec: SweepSpec) -> list[Point]:
                          f"sweep uses {spec.sensing!r} sensing")
     if spec.mode == "grid":
         combos = list(itertools.product(*(a.grid() for a in spec.axes)))
-        chosen = [combo for combo in combos for _ in range(spec.repeats)]
+        chosen: list[tuple[Any, ...] | None] = [combo for combo in combos
+                                                for _ in range(spec.repeats)]
     else:
         chosen = [None] * spec.episodes
     strata = _strata(spec)
@@ -131,7 +132,9 @@ def scenario_variant(base, scene: dict, rng: np.random.Generator):
     start pose is out of reach."""
     from vservo_node.sim.ik import solve_camera_pose
 
-    get = lambda name: scene.get(name, SCENE_NAMES[name][1])  # noqa: E731
+    def get(name: str) -> Any:
+        return scene.get(name, SCENE_NAMES[name][1])
+
     lateral_dir = rng.uniform(0.0, 2.0 * math.pi)
     tilt_dir = rng.uniform(0.0, 2.0 * math.pi)
     hand_eye_axis, hand_eye_dir = _unit(rng.normal(size=3)), _unit(rng.normal(size=3))

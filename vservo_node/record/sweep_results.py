@@ -31,8 +31,9 @@ def _map_bins(spec: SweepSpec, axis: Axis):
         categories = list(dict.fromkeys(axis.grid()))
         return [f"{c:.3g}" if isinstance(c, float) else str(c) for c in categories], \
             categories.index
-    edges = np.linspace(axis.low, axis.high, spec.map_bins + 1)
-    tiny = 1e-9 * max(abs(axis.high - axis.low), 1e-300)   # linspace round-off, not values
+    low, high = axis.bounds
+    edges = np.linspace(low, high, spec.map_bins + 1)
+    tiny = 1e-9 * max(abs(high - low), 1e-300)   # linspace round-off, not values
 
     def num(v):
         return f"{0.0 if abs(v) < tiny else v:.3g}"
@@ -70,7 +71,7 @@ def success_map(spec: SweepSpec, rows: list) -> dict:
             cell = tuple(index(row[a.name]) for a, (_, index) in zip(axes, binned))
             n[cell] += 1
             ok[cell] += bool(row["success"])
-    rate = np.where(n > 0, ok / np.maximum(n, 1), None)
+    rate = np.where(n > 0, ok / np.maximum(n, 1), None)  # type: ignore[call-overload]
     return {"axes": list(spec.map_axes), "labels": [labels for labels, _ in binned],
             "n": n.tolist(), "successes": ok.tolist(), "rate": rate.tolist()}
 

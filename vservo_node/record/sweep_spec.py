@@ -85,22 +85,29 @@ class Axis:
         param = params.BY_NAME.get(self.name)
         return param is not None and param.type is int
 
+    @property
+    def bounds(self) -> tuple[float, float]:
+        """``(low, high)`` of a range axis (ValueError for an axis of explicit values)."""
+        if self.low is None or self.high is None:
+            raise ValueError(f"axis {self.name} has values, not a range")
+        return self.low, self.high
+
     def grid(self) -> tuple:
         if self.values:
             return self.values
-        points = np.linspace(self.low, self.high, self.steps)
+        points = np.linspace(*self.bounds, self.steps)
         return tuple(int(round(v)) if self.integer else float(v) for v in points)
 
     def draw(self, rng: np.random.Generator):
         if self.values:
             return self.values[int(rng.integers(len(self.values)))]
-        return self.draw_between(rng, self.low, self.high)
+        return self.draw_between(rng, *self.bounds)
 
     def draw_between(self, rng: np.random.Generator, low: float, high: float):
         """Uniform in [low, high) (integers: of those inside, at least the nearest one)."""
         if self.integer:
             lo, hi = math.ceil(low), max(math.ceil(low), math.ceil(high) - 1)
-            if high >= self.high:
+            if high >= self.bounds[1]:
                 hi = max(lo, int(math.floor(high)))
             return int(rng.integers(lo, hi + 1))
         return float(rng.uniform(low, high))
@@ -264,9 +271,9 @@ def sweep_from_dict(data, source: Path | None = None) -> SweepSpec:
     if both:
         r.fail("axes", f"{both} are also in fixed")
     axes = tuple(_axis(r, name, value, mode) for name, value in axes_map.items())
-    success = r.mapping(data.get("success"), "success", _SUCCESS)
+    success_entry = r.mapping(data.get("success"), "success", _SUCCESS)
     success = Success(**{k: r.number(v, f"success.{k}", minimum=0.0)
-                         for k, v in success.items()})
+                         for k, v in success_entry.items()})
     names = [a.name for a in axes]
     default_map = [n for n in names if n.startswith("start.")] or names
     map_axes = data.get("map", default_map[:2])
@@ -293,10 +300,11 @@ def sweep_from_dict(data, source: Path | None = None) -> SweepSpec:
     else:   # as many bins as keep MIN_PER_CELL episodes in each cell
         map_bins = min(MAX_MAP_BINS, max(1, int((episodes / MIN_PER_CELL)
                                                 ** (1.0 / max(len(binned), 1)) + 1e-9)))
-    best = r.mapping(data.get("best"), "best", _BEST)
-    best = Best(min_episodes=r.integer(best.get("min_episodes", Best.min_episodes),
+    best_entry = r.mapping(data.get("best"), "best", _BEST)
+    best = Best(min_episodes=r.integer(best_entry.get("min_episodes", Best.min_episodes),
                                        "best.min_episodes", 1, MAX_EPISODES),
-                margin=r.number(best.get("margin", Best.margin), "best.margin", minimum=0.0))
+                margin=r.number(best_entry.get("margin", Best.margin), "best.margin",
+                                minimum=0.0))
     return SweepSpec(
         name=r.text(data["name"], "name"), description=str(data.get("description", "")).strip(),
         scenario=scenario, mode=mode, seed=r.integer(data.get("seed", 0), "seed", 0),
