@@ -86,4 +86,4 @@ bench: venv
 	@for b in benchmarks/*.py; do echo "== $$b"; $(ISOLATED) $(PY) $$b || exit 1; done
 
 clean:
-	rm -rf $(VENV) $(VENV_ROS2) $(VENV_JAZZY) build *.egg-info .pytest_cache
+	rm -rf $(VENV) $(VENV_ROS2) $(VENV_JAZZY) build *.egg-info .pytest_cache .mypy_cache .ruff_cache
