@@ -225,3 +225,27 @@ def test_core_modules_import_first_in_a_fresh_interpreter():
     for module in ("vservo_node.control.law", "vservo_node.control.safety",
                    "vservo_node.servo", "vservo_node.params"):
         subprocess.run([sys.executable, "-c", f"import {module}"], check=True)
+
+
+def test_every_servo_setting_reads_its_own_parameter():
+    """Wired through: a value other than the default, given under the field's parameter name,
+    arrives in exactly that field (and the depth source through its conversion)."""
+    import dataclasses
+
+    from vservo_node.servo_settings import PARAM_OF_FIELD, ServoSettings
+
+    base = ServoSettings()
+    for field_name, name in PARAM_OF_FIELD.items():
+        p = params.BY_NAME[name]
+        if p.type is bool:
+            value = not p.default
+        elif p.choices:
+            value = next(c for c in p.choices if c != p.default)
+        elif p.type in (int, float):
+            value = p.type(p.high if p.default != p.high else p.low)
+        else:
+            continue
+        got = ServoSettings.from_params({name: value})
+        changed = {f.name for f in dataclasses.fields(got)
+                   if getattr(got, f.name) != getattr(base, f.name)}
+        assert changed == {field_name}, (name, value, changed)
