@@ -69,7 +69,7 @@ def test_tracker_windows_agree_and_fall_back():
         tracked, full = tracker.detect(image), MarkerDetector(target).detect(image)
         assert tracked.windowed == (i > 0) and tracked.keys == full.keys
         # the edge fit starts from the coarse corners, which differ slightly in a window
-        assert np.abs(tracked.points - full.points).max() < 0.01
+        assert np.abs(tracked.points - full.points).max() < 0.03
     # the target jumps out of the predicted window: full-frame search finds it again
     T = vs.pose((0, 0, 0), (0.12, 0.08, 0.5))
     det = tracker.detect(vs.render(target, K, SIZE, T))
