@@ -298,12 +298,12 @@ class MarkerDetector:
     # still decodes), then its corners are refined on the full-resolution pixels. Common
     # practice, no source.
     WINDOW_SIDE_PX = 48.0
-    # A tracked quad refined from its predicted corners is fitted once more when a corner
-    # moved by more than REFIT_PX, and kept only if that second fit moves no corner by more
-    # than STILL_PX (the edge profiles reach only +-4 px across the predicted edges). Common
-    # practice, no source.
+    # A tracked quad refined from its predicted corners is fitted again from the result while
+    # a corner moved by more than REFIT_PX (the edge profiles reach only +-1.5..4 px across
+    # the edges they start from), at most MAX_FITS times, and kept only when the last fit
+    # moved no corner further than that. Common practice, no source.
     REFIT_PX = 0.5
-    STILL_PX = 0.02
+    MAX_FITS = 3
 
     def detect(self, image: np.ndarray, windows=None) -> Detection:
         """Markers in the full image, or one per window ``(marker_id, (x0, y0, x1, y1)[,
@@ -334,14 +334,13 @@ class MarkerDetector:
                     # the cells read the marker's id; else the detector runs in the window
                     quad = guess[0] - (x0, y0)
                     refined, n_fit = refine_quad(grey, quad, self.cells, return_found=True)
-                    if n_fit == 4 and np.abs(refined - quad).max() > self.REFIT_PX:
+                    moved, fits = np.abs(refined - quad).max(), 1
+                    while n_fit == 4 and moved > self.REFIT_PX and fits < self.MAX_FITS:
                         # far from the prediction: the profiles were off-centre; fit again
-                        # from there and keep it only if that fit stands still
                         again, n_fit = refine_quad(grey, refined, self.cells, return_found=True)
-                        if np.abs(again - refined).max() > self.STILL_PX:
-                            n_fit = 0
-                        refined = again
-                    if n_fit == 4 and self._cells_match(grey, refined, want):
+                        moved, refined, fits = np.abs(again - refined).max(), again, fits + 1
+                    if (n_fit == 4 and moved <= self.REFIT_PX
+                            and self._cells_match(grey, refined, want)):
                         found.append((want, None, refined + (x0, y0), 0, 0))
                         continue
                 side = max(sub.shape[0], sub.shape[1]) / (1.0 + 2.0 * self.margin)
@@ -401,6 +400,7 @@ class MarkerDetector:
 
 
 MAX_PROFILES = 32   # per edge; common practice, no source
+_POPCOUNT = np.array([bin(i).count("1") for i in range(256)], dtype=np.uint8)
 
 
 def _edge_lines(grey, quad, cell_px):
@@ -535,23 +535,60 @@ class TexturedDetector:
     """
     kind = "textured"
 
+    # Tracking: keypoints of the window only (fewer, fewer pyramid levels: the scale changes
+    # little between frames), each compared only with the model keypoints the last homography
+    # puts within GATE_PX (+ the predicted motion) of it, at most GATE_CANDIDATES of them;
+    # Lowe's ratio among those, and at most MAX_HAMMING bits apart (of 256). Common practice,
+    # no source.
+    TRACK_FEATURES, TRACK_LEVELS = 500, 4
+    GATE_PX, GATE_CANDIDATES, MAX_HAMMING = 12.0, 8, 64
+
     def __init__(self, model: PlanarModel, *, n_features=1500, ratio=0.8, ransac_px=3.0,
-                 min_inliers=15, margin=0.6):
+                 min_inliers=15, margin=0.25):
         self.model = model
         self._orb = _orb(n_features)
+        self._orb_track = cv2.ORB_create(nfeatures=self.TRACK_FEATURES, scaleFactor=1.2,
+                                         nlevels=self.TRACK_LEVELS, fastThreshold=20)
         self._matcher = cv2.BFMatcher(cv2.NORM_HAMMING)
         self.ratio, self.ransac_px, self.min_inliers = ratio, ransac_px, min_inliers
         self.expected = len(model.keys)
         self.margin = margin
 
+    def _gated_matches(self, kps, des, x0, y0, H, reach):
+        """(model indices, image points) of the gated matches (see GATE_PX)."""
+        from scipy.spatial import cKDTree
+        model_uv = cv2.perspectiveTransform(self.model.keypoints.reshape(-1, 1, 2),
+                                            H).reshape(-1, 2)
+        uv = np.array([k.pt for k in kps]) + (x0, y0)
+        dist, idx = cKDTree(model_uv).query(uv, k=self.GATE_CANDIDATES,
+                                            distance_upper_bound=self.GATE_PX + reach)
+        valid = np.isfinite(dist)
+        idx = np.where(valid, idx, 0)
+        bits = _POPCOUNT[des[:, None, :] ^ self.model.descriptors[idx]].sum(axis=2, dtype=int)
+        bits = np.where(valid, bits, 10 ** 6)
+        order = np.argsort(bits, axis=1)[:, :2]
+        rows = np.arange(len(uv))
+        best, second = bits[rows, order[:, 0]], bits[rows, order[:, 1]]
+        good = (best <= self.MAX_HAMMING) & (best < self.ratio * second)
+        return idx[rows, order[:, 0]][good], uv[good]
+
     def detect(self, image: np.ndarray, windows=None) -> Detection:
-        """The servo points in the full image, or in the window ``[(None, rect)]``."""
+        """The servo points in the full image, or in the window ``[(None, rect[, H, reach])]``
+        (with the last homography ``H`` and the predicted motion ``reach`` px: gated
+        matching, see ``GATE_PX``)."""
         t0 = time.perf_counter()
-        area = _search_area(to_mono8(_colour_image(image)), windows)
+        grey_all = _colour_image(image)
         kps, des, x0, y0 = (), None, 0, 0
-        if area is not None:
-            grey, x0, y0 = area
-            kps, des = self._orb.detectAndCompute(grey, None)
+        gate = None
+        if windows is None:
+            kps, des = self._orb.detectAndCompute(to_mono8(grey_all), None)
+        else:
+            view = _window(grey_all, windows[0][1], min_side=16)
+            if view is not None:
+                sub, x0, y0 = view
+                gate = windows[0][2:] or None
+                orb = self._orb if gate is None else self._orb_track
+                kps, des = orb.detectAndCompute(to_mono8(sub), None)
         quality = {"n_keypoints": len(kps), "n_matches": 0, "n_inliers": 0,
                    "inlier_ratio": 0.0, "reprojection_rms_px": float("nan")}
         empty = Detection("textured", np.zeros((0, 2)), [], _size(image), quality=quality,
@@ -559,18 +596,23 @@ class TexturedDetector:
         if des is None or len(kps) < 4:
             quality["reason"] = "too few keypoints"
             return self._timed(empty, t0)
-        pairs = self._matcher.knnMatch(des, self.model.descriptors, k=2)
-        good = [p[0] for p in pairs if len(p) == 2 and p[0].distance < self.ratio * p[1].distance]
-        quality["n_matches"] = len(good)
-        if len(good) < max(self.min_inliers, 4):
-            quality["reason"] = f"{len(good)} descriptor matches, need {self.min_inliers}"
+        if gate is None:
+            pairs = self._matcher.knnMatch(des, self.model.descriptors, k=2)
+            good = [p[0] for p in pairs
+                    if len(p) == 2 and p[0].distance < self.ratio * p[1].distance]
+            src = self.model.keypoints[[m.trainIdx for m in good]]
+            dst = np.array([kps[m.queryIdx].pt for m in good]).reshape(-1, 2) + (x0, y0)
+        else:
+            model_i, dst = self._gated_matches(kps, des, x0, y0, *gate)
+            src = self.model.keypoints[model_i]
+        quality["n_matches"] = len(dst)
+        if len(dst) < max(self.min_inliers, 4):
+            quality["reason"] = f"{len(dst)} descriptor matches, need {self.min_inliers}"
             return self._timed(empty, t0)
-        src = self.model.keypoints[[m.trainIdx for m in good]]
-        dst = np.array([kps[m.queryIdx].pt for m in good]) + (x0, y0)
         H, inl = cv2.findHomography(src, dst, cv2.RANSAC, self.ransac_px, maxIters=2000,
                                     confidence=0.999)
         inliers = 0 if inl is None else int(inl.sum())
-        quality.update(n_inliers=inliers, inlier_ratio=inliers / len(good))
+        quality.update(n_inliers=inliers, inlier_ratio=inliers / len(dst))
         if H is None or inliers < self.min_inliers:
             quality["reason"] = f"{inliers} homography inliers, need {self.min_inliers}"
             return self._timed(empty, t0)
@@ -593,10 +635,15 @@ class TexturedDetector:
         return det
 
     def windows(self, last: Detection, predicted: np.ndarray) -> list:
-        """One window around the predicted servo points, grown by ``margin`` of their extent."""
+        """One window around the predicted servo points, grown by ``margin`` of their extent,
+        with the last homography and the predicted motion for gated matching."""
         lo, hi = predicted.min(axis=0), predicted.max(axis=0)
         grow = self.margin * (hi - lo).max() + 32.0
-        return [(None, (lo[0] - grow, lo[1] - grow, hi[0] + grow + 1, hi[1] + grow + 1))]
+        rect = (lo[0] - grow, lo[1] - grow, hi[0] + grow + 1, hi[1] + grow + 1)
+        if last.homography is None or len(predicted) != len(last.points):
+            return [(None, rect)]
+        reach = float(np.hypot(*(predicted - last.points).T).max())
+        return [(None, rect, last.homography, reach)]
 
 
 def make_detector(target: Target, model: PlanarModel | None = None):
