@@ -179,19 +179,24 @@ from vservo_node import interface as itf
 from vservo_node import params
 from vservo_node.control import frames
 from vservo_node.control.kinematics import ArmModel
+from vservo_node.control.mounting import mount_from_params
 from vservo_node.episode import servo_config_from_params
 from vservo_node.perception import DepthImage, DepthSettings, Perception, taught_view
 from vservo_node.ros import convert, qos
 from vservo_node.ros.node_main import install_signal_handlers, run_node
+from vservo_node.ros.output_loop import OutputLoop
 from vservo_node.servo import HALT_REASONS, MOVING_STATES, Observation, Servo, ServoSettings
 from vservo_node.vision import image_io
-from vservo_node.vision.reference import load_reference, reference_path, save_reference
+from vservo_node.vision.reference import (joints_at_capture, load_reference, reference_path,
+                                          save_reference)
 from vservo_node.vision.targets import load_target
 
 # Parameters the node is built around (publishers, subscriptions, the arm model).
 READ_ONLY = frozenset({"io.sim_truth",
     "robot.urdf_path", "robot_description", "robot.base_frame", "robot.tool_frame",
     "robot.camera_frame", "robot.hand_eye", "robot.tool_point", "robot.min_joints",
+    "robot.camera_mount", "robot.fixed_camera_pose", "robot.fixed_camera_frame",
+    "robot.target_on_tool",
     "io.command_interface", "io.command_joint_order", "io.output_rate_hz",
     "io.compressed_image", "io.image_rectified"})
 # Parameters that rebuild perception and the taught view: refused while a run moves.
@@ -491,9 +496,13 @@ class ControllerNode(Node):
         self.add_on_set_parameters_callback(self._on_set_parameters)
         self.add_post_set_parameters_callback(self._after_set_parameters)
         self._load_robot_from_parameters()
-        self.create_timer(self._period, self._on_output_timer, clock=steady)
         self.create_timer(DIAGNOSTICS_PERIOD_S, self._on_diagnostics_timer, clock=steady)
+        # The output tick runs on its own steady-clock thread, not as an executor timer that
+        # would queue behind every subscription callback (output_loop.py says why).
+        self._output_loop = OutputLoop(self._period, self._on_output_timer,
+                                       on_error=lambda exc: self._on_output_error(exc))
         self._worker.start()
+        self._output_loop.start()
         problems = self._parameter_problems()
         self.get_logger().info(
             f"{itf.CONTROLLER_NODE} ready: motion disabled; command interface "
@@ -636,7 +645,8 @@ class ControllerNode(Node):
         hand_eye = v["robot.hand_eye"]
         try:
             arm = ArmModel.from_urdf(urdf, v["robot.base_frame"], v["robot.tool_frame"],
-                                     None if hand_eye else v["robot.camera_frame"],
+                                     None if hand_eye or v["robot.camera_mount"] == "fixed"
+                                     else v["robot.camera_frame"],
                                      v["robot.min_joints"])
             if hand_eye:
                 arm.set_hand_eye(frames.transform_from_xyz_quat(hand_eye[:3], hand_eye[3:]))
@@ -670,11 +680,13 @@ class ControllerNode(Node):
             return
         try:
             settings, limits = self._servo_config(self._values)
+            mount = mount_from_params(self._values, self.arm)   # None: wrist camera
         except ValueError as exc:
             self._problems["servo"] = str(exc)
             self.get_logger().error(f"servo not built: {exc}")
             return
-        self.servo = Servo(self.arm, settings, limits, self._values["robot.tool_point"])
+        self.servo = Servo(self.arm, settings, limits, self._values["robot.tool_point"],
+                           mount=mount)
         self._problems["servo"] = ""
         self._rebuild_vision()
 
@@ -693,6 +705,8 @@ class ControllerNode(Node):
         v = self._values
         try:
             target, reference = self._load_vision_files(v)
+            for note in getattr(reference, "notes", ()):   # an older file: what it lacks
+                self.get_logger().info(f"reference {v['reference.file']} {note}")
         except (ValueError, OSError) as exc:
             self._problems["vision"] = str(exc)
             self.get_logger().error(f"target or reference refused: {exc}")
@@ -965,10 +979,13 @@ class ControllerNode(Node):
         try:
             self._output_tick()
         except Exception as exc:  # noqa: BLE001 - the last-resort guard of the output path
-            self._warn("output_tick", f"internal error in the output tick: "
-                       f"{type(exc).__name__}: {exc}", every_s=1.0)
-            with self._lock:
-                self._last_resort(exc)
+            self._on_output_error(exc)
+
+    def _on_output_error(self, exc: BaseException) -> None:
+        self._warn("output_tick", f"internal error in the output tick: "
+                   f"{type(exc).__name__}: {exc}", every_s=1.0)
+        with self._lock:
+            self._last_resort(exc)
 
     def _last_resort(self, exc: Exception) -> None:
         servo = self.servo
@@ -1310,12 +1327,15 @@ class ControllerNode(Node):
             elif perception is None:
                 problems.append(f"perception: {self._problems['vision']}")
             name, directory = self._values["reference.name"], self._values["reference.directory"]
+            q, why = self._pair(last[1]) if last is not None else (None, "")
+            joint_names = self.arm.joint_names if self.arm is not None else None
         if problems:
             return self._refuse(response, "capture_reference", problems)
         image = last[0]
         try:
             path = reference_path(directory, name)
-            reference = perception.capture(image, name)
+            reference, joints_note = joints_at_capture(perception.capture(image, name),
+                                                       joint_names, q, why)
             save_reference(reference, path)
         except (ValueError, OSError) as exc:
             return self._refuse(response, "capture_reference", [f"teach: {exc}"])
@@ -1325,7 +1345,8 @@ class ControllerNode(Node):
                                 [f"load: saved {path} but could not load it: {result.reason}"])
         response.success = True
         response.message = (f"reference {name!r} taught ({len(reference.keys)} features) and "
-                            f"saved to {path}; loaded")
+                            f"saved to {path}; loaded" + (f"; {joints_note}" if joints_note
+                                                          else ""))
         self.get_logger().info(response.message)
         return response
 
@@ -1418,6 +1439,7 @@ class ControllerNode(Node):
         (finish_for_shutdown ran out of time), and wait (bounded) until the arm's controller
         acknowledged the last command."""
         self._shutting_down = True
+        self._output_loop.stop()     # no output tick runs after this (bounded wait)
         self._frames.close()
         self._worker.join(timeout=2.0)
         with self._lock:
@@ -1436,6 +1458,12 @@ class ControllerNode(Node):
                 if not acked:
                     self.get_logger().warning(
                         f"the last command was not acknowledged within {SHUTDOWN_ACK_S} s")
+
+
+    def destroy_node(self) -> None:
+        """Stop the output thread before the publishers go (shutdown() normally did)."""
+        self._output_loop.stop()
+        super().destroy_node()
 
 
 def _no_features() -> Observation:
