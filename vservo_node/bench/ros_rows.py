@@ -156,6 +156,18 @@ def baseline_main(args) -> None:
 
 
 # =============================================================================== orchestrator
+def _run_ended(statuses, first: int) -> bool:
+    """Did the run started after ``statuses[first]`` end? Statuses of the previous run's end
+    still in flight when it started are skipped: only an end after a servoing status counts."""
+    running = False
+    for _, s in statuses[first:]:
+        if s["state"] in SERVO_STATES:
+            running = True
+        elif running and s["state"] in ("converged", "halted"):
+            return True
+    return False
+
+
 def cpu_seconds(pid: int) -> float:
     fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
     return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
@@ -257,18 +269,20 @@ def _measure(tmp: Path, width, height, fps, watch_s, servo_s) -> dict:
             else:
                 raise RuntimeError(f"start refused: {response.message}")
             runs += 1
-            harness.spin_until(node, lambda: any(
-                s["state"] in ("converged", "halted") for _, s in statuses[first:]),
-                30.0, "the end of a run", procs)
+            harness.spin_until(node, lambda: _run_ended(statuses, first), 30.0,
+                               "the end of a run", procs)
             busy_cpu += cpu_seconds(controller) - c0
             busy_s += time.monotonic() - t0
             for rx, s in statuses[first:]:
                 if s["state"] in SERVO_STATES and s["t"] not in seen:
                     seen.add(s["t"])
                     latency.append(1e3 * (rx - s["t"]))
-            ends.append(next(s["state"] + (":" + s["reason"] if s["reason"] else "")
-                             for _, s in statuses[first:]
-                             if s["state"] in ("converged", "halted")))
+            running = False
+            for _, s in statuses[first:]:
+                running |= s["state"] in SERVO_STATES
+                if running and s["state"] in ("converged", "halted"):
+                    ends.append(s["state"] + (":" + s["reason"] if s["reason"] else ""))
+                    break
         procs[2].stop()
         baseline = json.loads(out.read_text()) if out.exists() else {"latency_ms": []}
         return {"width": width, "height": height, "fps": fps,
