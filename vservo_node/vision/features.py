@@ -540,7 +540,7 @@ class TexturedDetector:
     # puts within GATE_PX (+ the predicted motion) of it, at most GATE_CANDIDATES of them;
     # Lowe's ratio among those, and at most MAX_HAMMING bits apart (of 256). Common practice,
     # no source.
-    TRACK_FEATURES, TRACK_LEVELS = 500, 3
+    TRACK_FEATURES, TRACK_LEVELS = 500, 4
     GATE_PX, GATE_CANDIDATES, MAX_HAMMING = 12.0, 8, 64
 
     def __init__(self, model: PlanarModel, *, n_features=1500, ratio=0.8, ransac_px=3.0,
