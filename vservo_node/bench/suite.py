@@ -84,13 +84,35 @@ def servo_rows(ticks: int) -> list:
     from vservo_node.bench.servo_rows import time_servo
     rows = []
     for joints in (6, 7):
-        for n in (4, 16, 64):
+        medians = {"observe": [], "command": []}
+        for n in POINT_COUNTS:
             observe, command = time_servo(joints, n, ticks)
             rows.append(_row("servo", f"Servo.observe {joints} joints N={n}", observe,
                              goal=SERVO_GOALS.get(("observe", n))))
             rows.append(_row("servo", f"Servo.command {joints} joints N={n}", command,
                              goal=SERVO_GOALS.get(("command", n))))
+            medians["observe"].append(rows[-2]["median"])
+            medians["command"].append(rows[-1]["median"])
+        for part, values in medians.items():
+            rows.append(_linear_fit_row(f"Servo.{part} {joints} joints", values))
     return rows
+
+
+POINT_COUNTS = (4, 16, 64)
+
+
+def _linear_fit_row(name: str, medians: list) -> dict:
+    """The medians over POINT_COUNTS fitted as a + b N (least squares): b in us per point as
+    the row's figure, a and the largest residual in the note (linear growth: small residual)."""
+    N = np.asarray(POINT_COUNTS, dtype=float)
+    y = np.asarray(medians, dtype=float)
+    b, a = np.polyfit(N, y, 1)
+    residual = float(np.abs(y - (a + b * N)).max())
+    row = _row("servo", f"{name}: cost per point (fit a + b N)", [1e3 * b], unit="us/pt",
+               note=f"a = {a:.3f} ms, b = {1e3 * b:.2f} us/point, largest residual "
+                    f"{1e3 * residual:.1f} us")
+    row["p95"] = None
+    return row
 
 
 def dds_rows(watch_s: float, servo_s: float) -> tuple[list, list]:

@@ -119,7 +119,7 @@ class DotDetector:
     CHROMA_THRESHOLD = 50.0  # chroma max(R,G,B)-min(R,G,B) on 0..255; common practice, no source
 
     def __init__(self, target: Target, *, min_area_px=12.0, max_area_fraction=0.05,
-                 min_roundness=0.3, fill_range=(0.8, 1.2), window_scale=1.8):
+                 min_roundness=0.3, fill_range=(0.8, 1.2), window_scale=2.5):
         if target.kind != "dots":
             raise ValueError(f"DotDetector needs a dots target, got {target.kind!r}")
         self.mode = target.segmentation
