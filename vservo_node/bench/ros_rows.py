@@ -29,6 +29,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import re
 import sys
 import tempfile
 import threading
@@ -156,16 +157,13 @@ def baseline_main(args) -> None:
 
 
 # =============================================================================== orchestrator
-def _run_ended(statuses, first: int) -> bool:
-    """Did the run started after ``statuses[first]`` end? Statuses of the previous run's end
-    still in flight when it started are skipped: only an end after a servoing status counts."""
-    running = False
+def _run_end(statuses, first: int, run_id: str) -> str:
+    """'' or how the run ``run_id`` ended ('converged' or 'halted:REASON'), from the statuses
+    received since ``statuses[first]`` (the previous run's end may still be in flight)."""
     for _, s in statuses[first:]:
-        if s["state"] in SERVO_STATES:
-            running = True
-        elif running and s["state"] in ("converged", "halted"):
-            return True
-    return False
+        if s.get("run_id") == run_id and s["state"] in ("converged", "halted"):
+            return s["state"] + (":" + s["reason"] if s["reason"] else "")
+    return ""
 
 
 def cpu_seconds(pid: int) -> float:
@@ -269,20 +267,20 @@ def _measure(tmp: Path, width, height, fps, watch_s, servo_s) -> dict:
             else:
                 raise RuntimeError(f"start refused: {response.message}")
             runs += 1
-            harness.spin_until(node, lambda: _run_ended(statuses, first), 30.0,
-                               "the end of a run", procs)
+            found = re.search(r"run (\S+) started", response.message)
+            if not found:
+                raise RuntimeError(f"no run id in the start response {response.message!r}")
+            run_id = found.group(1)
+            harness.spin_until(node, lambda: bool(_run_end(statuses, first, run_id)), 30.0,
+                               f"the end of run {run_id}", procs)
             busy_cpu += cpu_seconds(controller) - c0
             busy_s += time.monotonic() - t0
             for rx, s in statuses[first:]:
-                if s["state"] in SERVO_STATES and s["t"] not in seen:
+                if (s.get("run_id") == run_id and s["state"] in SERVO_STATES
+                        and s["t"] not in seen):
                     seen.add(s["t"])
                     latency.append(1e3 * (rx - s["t"]))
-            running = False
-            for _, s in statuses[first:]:
-                running |= s["state"] in SERVO_STATES
-                if running and s["state"] in ("converged", "halted"):
-                    ends.append(s["state"] + (":" + s["reason"] if s["reason"] else ""))
-                    break
+            ends.append(_run_end(statuses, first, run_id))
         procs[2].stop()
         baseline = json.loads(out.read_text()) if out.exists() else {"latency_ms": []}
         return {"width": width, "height": height, "fps": fps,
