@@ -403,6 +403,13 @@ MAX_PROFILES = 32   # per edge; common practice, no source
 _POPCOUNT = np.array([bin(i).count("1") for i in range(256)], dtype=np.uint8)
 
 
+def _bit_count(words: np.ndarray) -> np.ndarray:
+    """Set bits of each uint64 (NumPy >= 2.0's bitwise_count, else a byte table)."""
+    if hasattr(np, "bitwise_count"):
+        return np.bitwise_count(words)
+    return _POPCOUNT[words.view(np.uint8)].reshape(*words.shape, 8).sum(axis=-1)
+
+
 def _edge_lines(grey, quad, cell_px):
     """Sub-pixel lines (normals (4, 2), offsets (4,): n.x = d; NaN where not found) of the four
     dark-to-light edges of ``quad`` (edge i from corner i to corner i + 1), all four at once.
@@ -553,6 +560,7 @@ class TexturedDetector:
     def __init__(self, model: PlanarModel, *, n_features=1500, ratio=0.8, ransac_px=3.0,
                  min_inliers=15, margin=0.6):
         self.model = model
+        self._model_words = np.ascontiguousarray(model.descriptors).view(np.uint64)
         self._orb = _orb(n_features)
         self._orb_track = cv2.ORB_create(nfeatures=self.TRACK_FEATURES, scaleFactor=1.2,
                                          nlevels=self.TRACK_LEVELS, fastThreshold=20)
@@ -561,24 +569,26 @@ class TexturedDetector:
         self.expected = len(model.keys)
         self.margin = margin
 
-    def _gated_matches(self, kps, des, x0, y0, H, reach, gate_px=None):
-        """(model indices, image points) of the gated matches (see GATE_PX)."""
-        gate_px = self.GATE_PX if gate_px is None else gate_px
+    def _gated_matches(self, uv, words, H, reach, gate_px):
+        """(model indices, image points) of the gated matches (see GATE_PX) of the keypoints
+        at ``uv`` (n, 2) image pixels with descriptors ``words`` (n, 4) uint64."""
         from scipy.spatial import cKDTree
         model_uv = cv2.perspectiveTransform(self.model.keypoints.reshape(-1, 1, 2),
                                             H).reshape(-1, 2)
-        uv = np.array([k.pt for k in kps]) + (x0, y0)
         dist, idx = cKDTree(model_uv).query(uv, k=self.GATE_CANDIDATES,
                                             distance_upper_bound=gate_px + reach)
         valid = np.isfinite(dist)
-        idx = np.where(valid, idx, 0)
-        bits = _POPCOUNT[des[:, None, :] ^ self.model.descriptors[idx]].sum(axis=2, dtype=int)
-        bits = np.where(valid, bits, 10 ** 6)
-        order = np.argsort(bits, axis=1)[:, :2]
+        idx[~valid] = 0
+        # Hamming distances: the 256-bit descriptors as four 64-bit words, XOR, bit count
+        bits = _bit_count(words[:, None, :] ^ self._model_words[idx]).sum(axis=2, dtype=np.int32)
+        bits[~valid] = 10 ** 6
         rows = np.arange(len(uv))
-        best, second = bits[rows, order[:, 0]], bits[rows, order[:, 1]]
+        first = bits.argmin(axis=1)
+        best = bits[rows, first]
+        bits[rows, first] = 10 ** 6
+        second = bits.min(axis=1)
         good = (best <= self.MAX_HAMMING) & (best < self.ratio * second)
-        return idx[rows, order[:, 0]][good], uv[good]
+        return idx[rows, first][good], uv[good]
 
     def detect(self, image: np.ndarray, windows=None) -> Detection:
         """The servo points in the full image, or in the window ``[(None, rect[, H, reach])]``
@@ -611,7 +621,10 @@ class TexturedDetector:
             src = self.model.keypoints[[m.trainIdx for m in good]]
             dst = np.array([kps[m.queryIdx].pt for m in good]).reshape(-1, 2) + (x0, y0)
         else:
-            model_i, dst = self._gated_matches(kps, des, x0, y0, *gate)
+            uv = cv2.KeyPoint_convert(kps).astype(float) + (x0, y0)
+            words = np.ascontiguousarray(des).view(np.uint64)      # (n, 4): 256 bits each
+            H_last, reach = gate
+            model_i, dst = self._gated_matches(uv, words, H_last, reach, self.GATE_PX)
             src = self.model.keypoints[model_i]
         quality["n_matches"] = len(dst)
         if len(dst) < max(self.min_inliers, 4):
@@ -621,8 +634,7 @@ class TexturedDetector:
                                     confidence=0.999)
         if gate is not None and H is not None:
             # second pass: gated again around this frame's own homography, tightly
-            model_i, dst = self._gated_matches(kps, des, x0, y0, H, 0.0,
-                                               gate_px=self.REGATE_PX)
+            model_i, dst = self._gated_matches(uv, words, H, 0.0, self.REGATE_PX)
             src = self.model.keypoints[model_i]
             quality["n_matches"] = len(dst)
             H = inl = None
