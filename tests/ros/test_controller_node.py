@@ -460,6 +460,15 @@ def test_capture_reference_then_enable_arms_without_commanding(rig, processes):
     assert list(taught["joint_positions"]) == list(robot.arm.joint_names)
     np.testing.assert_allclose(list(taught["joint_positions"].values()), robot.home, atol=1e-9)
     assert taught["image"] == "station_t.png" and (path.parent / "station_t.png").is_file()
+    # without joint states the view is still taught; the answer says why it keeps no joints
+    rig.stub(joints=False)
+    rig.spin(0.5)                     # > io.joint_state_timeout_s: images outrun the joints
+    expect(rig.capture(), True, "loaded", "no joint positions kept (image stamped")
+    assert "joint_positions" not in yaml.safe_load(path.read_text())
+    rig.stub(joints=True)
+    rig.spin(0.3)
+    expect(rig.capture(), True, "loaded")
+    assert "joint_positions" in yaml.safe_load(path.read_text())
     expect(rig.enable(True), True, "motion enabled")
     rig.wait_state("armed")
     rig.spin(0.3)
