@@ -183,6 +183,7 @@ from vservo_node.control.mounting import mount_from_params
 from vservo_node.episode import servo_config_from_params
 from vservo_node.perception import DepthImage, DepthSettings, Perception, taught_view
 from vservo_node.ros import convert, qos
+from vservo_node.ros.frame_loss import FrameLossMonitor, cdr_stamp
 from vservo_node.ros.node_main import install_signal_handlers, run_node
 from vservo_node.ros.output_loop import OutputLoop
 from vservo_node.servo import HALT_REASONS, MOVING_STATES, Observation, Servo, ServoSettings
@@ -476,6 +477,8 @@ class ControllerNode(Node):
         self._pending_values = None
         self._truth = {"camera": None, "taught": None}
         self._warned: dict[str, float] = {}
+        # frames lost in transport (README, "Receiving large frames"); checked with diagnostics
+        self._frame_loss = FrameLossMonitor(self._values["io.camera_rate_hz"])
         self._runs = 0
         self._shutting_down = False
         self._command_sent = False      # anything published on the command topic yet
@@ -743,6 +746,7 @@ class ControllerNode(Node):
                tuple(msg.r), tuple(msg.p))
         with self._lock:
             self._rx["camera_info"] = time.monotonic()
+            self._frame_loss.info(convert.time_to_sec(msg.header.stamp), self._rx["camera_info"])
             if key == self._camera_key:
                 return
             first = self._camera_key is None
@@ -773,10 +777,14 @@ class ControllerNode(Node):
 
     def _on_raw_image(self, data: bytes) -> None:
         """Hand the serialized image to the perception thread (newest frame wins)."""
-        self._frames.put((time.monotonic(), data))
+        rx = time.monotonic()
+        self._frame_loss.image(cdr_stamp(data), rx)
+        self._frames.put((rx, data))
 
     def _on_compressed_image(self, msg: CompressedImage) -> None:
-        self._frames.put((time.monotonic(), msg))
+        rx = time.monotonic()
+        self._frame_loss.image(convert.time_to_sec(msg.header.stamp), rx)
+        self._frames.put((rx, msg))
 
     def _perception_loop(self) -> None:
         """The perception thread: decode, perceive and observe the newest frame."""
@@ -1132,6 +1140,9 @@ class ControllerNode(Node):
 
     @_guarded
     def _on_diagnostics_timer(self) -> None:
+        lost = self._frame_loss.check(time.monotonic())
+        if lost:
+            self._warn("frame_loss", lost, every_s=10.0)
         with self._lock:
             servo, last = self.servo, self._last_status
             problems = self._parameter_problems()
