@@ -183,6 +183,7 @@ from vservo_node.episode import servo_config_from_params
 from vservo_node.perception import DepthImage, DepthSettings, Perception, taught_view
 from vservo_node.ros import convert, qos
 from vservo_node.ros.node_main import install_signal_handlers, run_node
+from vservo_node.ros.output_loop import OutputLoop
 from vservo_node.servo import HALT_REASONS, MOVING_STATES, Observation, Servo, ServoSettings
 from vservo_node.vision import image_io
 from vservo_node.vision.reference import load_reference, reference_path, save_reference
@@ -491,9 +492,13 @@ class ControllerNode(Node):
         self.add_on_set_parameters_callback(self._on_set_parameters)
         self.add_post_set_parameters_callback(self._after_set_parameters)
         self._load_robot_from_parameters()
-        self.create_timer(self._period, self._on_output_timer, clock=steady)
         self.create_timer(DIAGNOSTICS_PERIOD_S, self._on_diagnostics_timer, clock=steady)
+        # The output tick runs on its own steady-clock thread, not as an executor timer that
+        # would queue behind every subscription callback (output_loop.py says why).
+        self._output_loop = OutputLoop(self._period, self._on_output_timer,
+                                       on_error=lambda exc: self._on_output_error(exc))
         self._worker.start()
+        self._output_loop.start()
         problems = self._parameter_problems()
         self.get_logger().info(
             f"{itf.CONTROLLER_NODE} ready: motion disabled; command interface "
@@ -965,10 +970,13 @@ class ControllerNode(Node):
         try:
             self._output_tick()
         except Exception as exc:  # noqa: BLE001 - the last-resort guard of the output path
-            self._warn("output_tick", f"internal error in the output tick: "
-                       f"{type(exc).__name__}: {exc}", every_s=1.0)
-            with self._lock:
-                self._last_resort(exc)
+            self._on_output_error(exc)
+
+    def _on_output_error(self, exc: BaseException) -> None:
+        self._warn("output_tick", f"internal error in the output tick: "
+                   f"{type(exc).__name__}: {exc}", every_s=1.0)
+        with self._lock:
+            self._last_resort(exc)
 
     def _last_resort(self, exc: Exception) -> None:
         servo = self.servo
@@ -1418,6 +1426,7 @@ class ControllerNode(Node):
         (finish_for_shutdown ran out of time), and wait (bounded) until the arm's controller
         acknowledged the last command."""
         self._shutting_down = True
+        self._output_loop.stop()     # no output tick runs after this (bounded wait)
         self._frames.close()
         self._worker.join(timeout=2.0)
         with self._lock:
@@ -1436,6 +1445,12 @@ class ControllerNode(Node):
                 if not acked:
                     self.get_logger().warning(
                         f"the last command was not acknowledged within {SHUTDOWN_ACK_S} s")
+
+
+    def destroy_node(self) -> None:
+        """Stop the output thread before the publishers go (shutdown() normally did)."""
+        self._output_loop.stop()
+        super().destroy_node()
 
 
 def _no_features() -> Observation:
