@@ -128,6 +128,7 @@ class InputCallbacks:
             image = self.create_subscription(Image, itf.TOPIC_IMAGE, self._on_raw_image,
                                              qos.SENSOR_DATA, raw=True)
         subs.append(image)
+        self._image_topic = image.topic_name
         if s.depth.source == "depth_image":
             subs.append(self.create_subscription(Image, itf.TOPIC_DEPTH, self._on_depth,
                                                  qos.SENSOR_DATA))
