@@ -10,12 +10,14 @@ module's :class:`PointScene`) and rendered-and-detected images (sim/) plug in al
 from __future__ import annotations
 
 import math
+import time
 from dataclasses import dataclass, field
 from typing import Callable
 
 import numpy as np
 
 from vservo_node.control import frames
+from vservo_node.control.mounting import mount_from_params
 from vservo_node.interface import SENSING_MODES
 from vservo_node.servo import Observation, Servo, ServoSettings, TaughtView
 from vservo_node.settings import Settings, depth_settings, servo_config
@@ -91,6 +93,10 @@ class EpisodeResult:
     statuses: list = field(default_factory=list, repr=False)
     q_trace: np.ndarray | None = field(default=None, repr=False)
     camera_trace: np.ndarray | None = field(default=None, repr=False)
+    # with record=True, one entry per camera frame: (t s, keys, uv (M, 2) px, uv_ref (M, 2) px)
+    # of the features seen that the taught view holds, in the order seen (what the node
+    # publishes on servo/features and servo/feature_error); empty arrays for a frame without
+    feature_trace: list = field(default_factory=list, repr=False)
 
     def summary(self) -> dict:
         keys = ("converged", "reason", "time_s", "final_rms_px", "pose_error_mm",
@@ -112,14 +118,18 @@ def _start(servo: Servo, q0, t: float) -> None:
 class _Meter:
     """What an episode measures at its output ticks: peaks and margins of the true arm motion,
     the first finite RMS error and, with ``record``, the statuses, joints (rad) and camera
-    positions (m, base frame)."""
+    positions (m, base frame). With a fixed camera (``mount``, control.mounting) the judged
+    pose is the tool's: the goal, the depth change and the trace are the tool's, and the
+    "camera" speed is the target origin's (the point the limiter bounds in its place)."""
 
-    def __init__(self, arm_true, T_base_camera_goal, q0, tool_point, record: bool = False):
+    def __init__(self, arm_true, T_base_camera_goal, q0, tool_point, record: bool = False,
+                 mount=None):
         self.arm = arm_true
+        self.mount = mount
         self.tool_point = np.asarray(tool_point, dtype=float)
         self.T_goal = T_base_camera_goal
         self.axis = T_base_camera_goal[:3, 2]
-        self.depth0 = float(self.axis @ arm_true.camera_pose(q0)[:3, 3])
+        self.depth0 = float(self.axis @ self.judged_pose(q0)[:3, 3])
         self.finite = np.isfinite(arm_true.lower)
         self.lower_finite = arm_true.lower[self.finite]
         self.upper_finite = arm_true.upper[self.finite]
@@ -128,7 +138,26 @@ class _Meter:
         self.depth_dev = 0.0
         self.initial_rms = math.nan
         self.record = record
-        self.statuses, self.qs, self.cams = [], [], []
+        self.statuses, self.qs, self.cams, self.features = [], [], [], []
+        self.cycle_ms = math.nan   # compute time of the frame since the last tick, ms
+
+    def frame(self, t: float, obs, reference, compute_s: float = math.nan) -> None:
+        """With ``record``: the features of the frame at ``t`` (s) that the taught view
+        ``reference`` (a TaughtView, or None) holds, and their taught pixels; ``compute_s``:
+        the frame's perception and servo time, the next status record's ``cycle_ms`` (the
+        node's: perception + servo time of the image; NaN on ticks without a frame)."""
+        if not self.record:
+            return
+        self.cycle_ms = 1e3 * compute_s
+        keys, uv, uv_ref = [], [], []
+        index = reference.index() if reference is not None else {}
+        for i, key in enumerate(obs.keys if obs is not None else ()):
+            if key in index:
+                keys.append(key)
+                uv.append(np.asarray(obs.uv[i], float))
+                uv_ref.append(np.asarray(reference.uv[index[key]], float))
+        self.features.append((float(t), tuple(keys), np.reshape(uv, (-1, 2)),
+                              np.reshape(uv_ref, (-1, 2))))
 
     def add(self, q, dq, status: dict) -> None:
         """Account for the true state (q rad, dq rad/s) and the servo's status at this tick."""
@@ -136,21 +165,27 @@ class _Meter:
         p["joint"] = max(p["joint"], float(np.max(np.abs(dq) / arm.velocity_limits)))
         # one kinematics update for the three speeds (the values of point_jacobian_base and
         # jacobian_base); |v| as np.linalg.norm computes it for a vector, sqrt(v . v)
-        J_tool, J_camera, J_angular = arm.cartesian_jacobians(q, self.tool_point)
+        J_tool, J_camera, J_angular = (
+            arm.cartesian_jacobians(q, self.tool_point) if self.mount is None
+            else self.mount.cartesian_jacobians(arm, q, self.tool_point))
         for name, J in (("tool", J_tool), ("camera", J_camera), ("angular", J_angular)):
             v = J @ dq
             p[name] = max(p[name], math.sqrt(v @ v))
         q_finite = q[self.finite]
         self.margin = min(self.margin, float((q_finite - self.lower_finite).min()),
                           float((self.upper_finite - q_finite).min()))
-        T_cam = arm.camera_pose(q)
+        T_cam = self.judged_pose(q)
         self.depth_dev = max(self.depth_dev, abs(float(self.axis @ T_cam[:3, 3]) - self.depth0))
         if math.isnan(self.initial_rms) and not math.isnan(status["rms_px"]):
             self.initial_rms = status["rms_px"]
         if self.record:
-            self.statuses.append(status)
+            self.statuses.append({**status, "cycle_ms": self.cycle_ms})
+            self.cycle_ms = math.nan
             self.qs.append(np.array(q, dtype=float))
             self.cams.append(T_cam[:3, 3].copy())
+
+    def judged_pose(self, q) -> np.ndarray:
+        return self.arm.camera_pose(q) if self.mount is None else self.arm.fk(q)
 
     def result(self, servo: Servo, status: dict, t: float, T_base_camera_end) -> EpisodeResult:
         """The episode's result: the servo's run result (``episode_timeout`` when the run did
@@ -169,7 +204,7 @@ class _Meter:
             camera_depth_change_max=self.depth_dev, statuses=self.statuses,
             q_trace=np.array(self.qs) if self.record else None,
             camera_trace=np.array(self.cams) if self.record else None,
-            **_estimated_pose_error(servo))
+            feature_trace=self.features, **_estimated_pose_error(servo))
 
 
 def _estimated_pose_error(servo: Servo) -> dict:
@@ -199,8 +234,10 @@ def run_episode(servo: Servo, sense, q0, T_base_camera_goal, arm_true, *, rate_h
     steps = int(round(duration_s * rate_hz))
     for k in range(steps + 1):
         t = k * dt
+        t0 = time.perf_counter()
         obs = sense(q, t)
         cmd, status = servo.step(obs, q, t, dt)
+        meter.frame(t, obs, servo.reference, time.perf_counter() - t0)
         meter.add(q, cmd, status)
         if servo.state in ("converged", "halted"):
             break
@@ -299,10 +336,13 @@ def episode_params(overrides: dict | None = None, camera_rate_hz: float | None =
     return checked.values
 
 
-def servo_from_params(arm, values: dict) -> Servo:
-    """A Servo for ``arm`` (the hand-eye it believes) from validated parameter values."""
+def servo_from_params(arm, values: dict, mount=None) -> Servo:
+    """A Servo for ``arm`` (the hand-eye it believes) from validated parameter values;
+    ``mount`` (control.mounting) default: the values' robot.camera_mount."""
     settings, limits = servo_config(Settings.from_values(values), arm)
-    return Servo(arm, settings, limits, values["robot.tool_point"])
+    if mount is None:
+        mount = mount_from_params(values, arm)
+    return Servo(arm, settings, limits, values["robot.tool_point"], mount=mount)
 
 
 def focal_scaled(camera, scale: float):
@@ -339,10 +379,27 @@ def _depth_scaled(view_or_obs, scale: float):
 SENSING = SENSING_MODES
 
 
+def teach_reference(scenario, cell, camera, depth, folder, name: str = "episode"):
+    """Teach reference ``name`` on the simulated ``cell`` as the node's capture service does
+    and save it into ``folder`` (returns the file): the image rendered at the scenario's
+    taught joints (at :data:`TEACH_TIME_S`, rgb8 read as the node reads it), captured through
+    a ``Perception`` on ``camera`` with ``depth`` settings, with the simulated arm's joints at
+    that image; the taught image is saved beside the file."""
+    from vservo_node.perception import Perception
+    from vservo_node.vision import image_io
+    from vservo_node.vision.reference import save_reference, with_joints
+
+    rgb = cell.render_at(scenario.q_taught, TEACH_TIME_S)
+    image = image_io.to_bgr_or_mono(rgb, "rgb8", camera.width, camera.height)
+    reference = with_joints(Perception(scenario.target, camera, None, depth).capture(image, name),
+                            cell.arm_model.joint_names, scenario.q_taught)
+    return save_reference(reference, f"{folder}/{name}.yaml")
+
+
 def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
                          record: bool = False, *, focal_scale: float = 1.0,
-                         sensing: str = "image", noise_px: float | None = None
-                         ) -> EpisodeResult:
+                         sensing: str = "image", noise_px: float | None = None,
+                         trace=None) -> EpisodeResult:
     """One run of a scenario through the node's code path, without ROS or clocks.
 
     ``scenario``: a shipped name, a path or a loaded ``sim.Scenario``. ``overrides``: controller
@@ -353,6 +410,9 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     ``seed``: mixed with the scenario's seed for the image and joint-state noise.
     ``focal_scale``: the controller believes focal lengths ``focal_scale`` times the true ones
     (the scenario format has no entry for it).
+    ``trace``: called as ``trace("frame", t, observation, reported q)`` after each frame and
+    ``trace("command", t, command, reported q)`` after each output period (e.g.
+    ``calib.trace.TraceRecorder``, for the hand-eye check and the delay estimate).
     ``sensing``: ``image`` (render each frame and perceive it, as below) or ``projected``
     (``sim.projected.ProjectedSensor``: the features projected through the true camera with
     ``noise_px`` of pixel noise, default by target kind; no images, no detection; teaching
@@ -373,14 +433,15 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
 
     Speeds, margins and the pose error (mm, deg) are of the true arm: ``peak_*`` from the true
     joint velocities at the output ticks, the pose error between the true camera pose at the
-    end and the true taught camera pose.
+    end and the true taught camera pose (with a fixed camera: the tool's poses, and the
+    controller gets the scenario's believed ``FixedCamera``).
     """
     import tempfile
 
     from vservo_node.perception import Perception, taught_view
     from vservo_node.sim import Scenario, SimCell, load_scenario
     from vservo_node.vision import image_io
-    from vservo_node.vision.reference import load_reference, save_reference
+    from vservo_node.vision.reference import load_reference
 
     if sensing not in SENSING:
         raise ValueError(f"sensing must be one of {SENSING}, got {sensing!r}")
@@ -389,7 +450,7 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     values = episode_params({**sc.controller, **(overrides or {})}, camera_rate_hz=sc.fps)
     cell = SimCell(sc)
     camera = focal_scaled(sc.camera, focal_scale) if focal_scale != 1.0 else sc.camera
-    servo = servo_from_params(sc.arm_model("belief"), values)
+    servo = servo_from_params(sc.arm_model("belief"), values, mount=sc.mount("belief"))
     depth = depth_settings(Settings.from_values(values))
     width, height = camera.width, camera.height
 
@@ -403,25 +464,29 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
         servo.set_reference(_depth_scaled(sensor.taught_view(sc.q_taught, TEACH_TIME_S),
                                           sc.depth_scale_belief))
 
-        def observe(t_frame):
-            return sensor.observe(cell.arm.true_state(t_frame)[0], t_frame)
+        def grab(t_frame):
+            return cell.arm.true_state(t_frame)[0]
+
+        def observe(q_true, t_frame):
+            return sensor.observe(q_true, t_frame)
     else:
         # teach: capture, save and load the reference, then rebuild perception with it (the
         # node's capture_reference service followed by its reference.file update)
-        taught_image = bgr(cell.render_at(sc.q_taught, TEACH_TIME_S))
-        reference = Perception(sc.target, camera, None, depth).capture(taught_image, "episode")
         with tempfile.TemporaryDirectory() as folder:
-            reference = load_reference(save_reference(reference, f"{folder}/episode.yaml"),
+            reference = load_reference(teach_reference(sc, cell, camera, depth, folder),
                                        sc.target)
         perception = Perception(sc.target, camera, reference, depth)
         servo.set_reference(_depth_scaled(taught_view(reference, camera, sc.target),
                                           sc.depth_scale_belief))
 
-        def observe(t_frame):
-            return perception.process(bgr(cell.render(t_frame)), t_frame)[0]
+        def grab(t_frame):
+            return bgr(cell.render(t_frame))
 
-    meter = _Meter(cell.arm_model, cell.taught_camera_pose, sc.q_start,
-                   values["robot.tool_point"], record)
+        def observe(image, t_frame):
+            return perception.process(image, t_frame)[0]
+
+    meter = _Meter(cell.arm_model, cell.taught_judged_pose, sc.q_start,
+                   values["robot.tool_point"], record, mount=cell.mount)
     period = 1.0 / values["io.output_rate_hz"]
     frame_period = 1.0 / sc.fps
     no_features = Observation((), np.zeros((0, 2)), np.zeros((0, 2)))
@@ -433,14 +498,23 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
         while frame * frame_period <= t + 1e-12:
             t_frame = frame * frame_period
             cell.step(max(t_frame - cell.t, 0.0))   # frame and tick times may differ by rounding
-            obs = observe(t_frame)
+            grabbed = grab(t_frame)
+            t0 = time.perf_counter()   # perception + servo, as the node's cycle_ms
+            obs = observe(grabbed, t_frame)
+            q_frame = cell.joint_state(t_frame)[0]
             servo.observe(_depth_scaled(obs, sc.depth_scale_belief) or no_features,
-                          cell.joint_state(t_frame)[0], t_frame)
+                          q_frame, t_frame)
+            meter.frame(t_frame, obs, servo.reference, time.perf_counter() - t0)
+            if trace is not None:
+                trace("frame", t_frame, obs, q_frame)
             frame += 1
         cell.step(max(t - cell.t, 0.0))
-        cmd, status = servo.command(cell.joint_state(t)[0], t, period)
+        q_tick = cell.joint_state(t)[0]
+        cmd, status = servo.command(q_tick, t, period)
         cell.command_velocity(cmd, t)
+        if trace is not None:
+            trace("command", t, cmd, q_tick)
         meter.add(*cell.arm.true_state(t), status)
         if servo.state in ("converged", "halted"):
             break
-    return meter.result(servo, status, t, cell.camera_pose(t))
+    return meter.result(servo, status, t, cell.judged_pose(t))

@@ -64,6 +64,18 @@ SCHEMA: tuple[Param, ...] = (
     _p("robot.hand_eye", list, [], "pose of the camera optical frame in the tool frame "
        "[x, y, z, qx, qy, qz, qw] (m, quaternion x,y,z,w); empty: from the URDF chain",
        item=float, length=(0, 7)),
+    _p("robot.camera_mount", str, "wrist", "where the camera is: wrist (on the tool; "
+       "robot.camera_frame / robot.hand_eye) or fixed (in the cell, watching the target carried "
+       "by the tool; robot.fixed_camera_pose or robot.fixed_camera_frame, and "
+       "robot.target_on_tool): README, Fixed camera", choices=("wrist", "fixed")),
+    _p("robot.fixed_camera_pose", list, [], "fixed camera: pose of its optical frame in "
+       "robot.base_frame [x, y, z, qx, qy, qz, qw] (m, quaternion x,y,z,w); empty: "
+       "robot.fixed_camera_frame", item=float, length=(0, 7)),
+    _p("robot.fixed_camera_frame", str, "", "fixed camera: its optical frame in the URDF (rigid "
+       "to the base, e.g. on a stand); used when robot.fixed_camera_pose is empty"),
+    _p("robot.target_on_tool", list, [], "fixed camera: pose of the target's frame (the target "
+       "file's) in the tool frame [x, y, z, qx, qy, qz, qw] (m, quaternion x,y,z,w)",
+       item=float, length=(0, 7)),
     _p("robot.tool_point", list, [0.0, 0.0, 0.0], "point whose linear speed is limited, in the "
        "tool frame (e.g. the TCP)", unit="m", item=float, length=(3,)),
     _p("robot.min_joints", int, 6, "fewest joints accepted in the servo chain (IBVS of a 6-dof "
@@ -319,6 +331,7 @@ def validate(values: dict[str, Any]) -> CheckResult:
         result.errors.append(
             f"control.scheme decoupled estimates a pose by PnP, which needs 4 points or more: "
             f"control.min_features = {merged['control.min_features']}; expected >= 4")
+    result.errors.extend(_mount_errors(merged))
     if (merged["control.tolerance_px"] <= 0 and merged["control.tolerance_mm"] <= 0
             and merged["control.tolerance_deg"] <= 0):
         result.errors.append("no arrival criterion: control.tolerance_px, tolerance_mm and "
@@ -327,6 +340,26 @@ def validate(values: dict[str, Any]) -> CheckResult:
         result.warnings.append("control.gain_near < control.gain_far: the gain falls near the goal,"
                                " which slows the final approach")
     return result
+
+
+def _mount_errors(merged: dict[str, Any]) -> list[str]:
+    """What a fixed camera mounting lacks (robot.camera_mount fixed)."""
+    if merged["robot.camera_mount"] != "fixed":
+        return []
+    errors = []
+    if len(merged["robot.target_on_tool"]) != 7:
+        errors.append("robot.camera_mount fixed needs robot.target_on_tool: the target's pose "
+                      "in the tool frame [x, y, z, qx, qy, qz, qw]")
+    if not merged["robot.fixed_camera_pose"] and not merged["robot.fixed_camera_frame"]:
+        errors.append("robot.camera_mount fixed needs the camera's pose: robot.fixed_camera_pose"
+                      " [x, y, z, qx, qy, qz, qw] in the base frame, or robot.fixed_camera_frame"
+                      " (a URDF frame rigid to the base)")
+    for name in ("robot.target_on_tool", "robot.fixed_camera_pose"):
+        pose = merged[name]
+        if len(pose) == 7 and math.sqrt(sum(v * v for v in pose[3:])) < 1e-6:
+            errors.append(f"{name}: quaternion {pose[3:]} has (near) zero norm; expected a "
+                          "rotation (qx, qy, qz, qw)")
+    return errors
 
 
 def flatten(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:

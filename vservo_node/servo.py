@@ -269,9 +269,13 @@ class Servo:
     """
 
     def __init__(self, arm, settings: ServoSettings, limits: LimitSet,
-                 tool_point: Sequence[float] = (0.0, 0.0, 0.0)):
+                 tool_point: Sequence[float] = (0.0, 0.0, 0.0), mount=None):
         _check_scheme(settings)
         self.arm = arm
+        # None: the camera on the tool (arm.T_tool_camera); a control.mounting.FixedCamera: a
+        # camera in the cell watching a target on the tool (the image Jacobian, the limiter's
+        # watched point and the pose error follow it)
+        self.mount = mount
         self.settings = settings
         self.limits = limits
         self.tool_point = np.asarray(tool_point, dtype=float)
@@ -371,7 +375,8 @@ class Servo:
         view = self.reference
         depth = view.depth if view.depth is not None else self.settings.constant_depth_m
         try:
-            return PoseErrorEstimator(view.xy, model_points=view.model, taught_depths=depth), ""
+            estimator = PoseErrorEstimator(view.xy, model_points=view.model, taught_depths=depth)
+            return (estimator if self.mount is None else self.mount.pose_errors(estimator)), ""
         except ValueError as exc:
             return None, str(exc)
 
@@ -589,8 +594,10 @@ class Servo:
         self._direction_detail = (
             f"features moved {math.degrees(math.acos(max(-1.0, min(1.0, cosine)))):.0f} deg away "
             f"from the predicted motion (fit residual {residual / max(seen_norm, 1e-300):.2f} of "
-            "the seen motion) for several frames: check the hand-eye (robot.hand_eye), the "
-            "camera's optical frame and the depth source")
+            "the seen motion) for several frames: check " + (
+                "the hand-eye (robot.hand_eye), the camera's optical frame and the depth source"
+                if self.mount is None else "robot.camera_mount, the fixed camera's pose "
+                "(robot.fixed_camera_pose / _frame), robot.target_on_tool and the depth source"))
         run = self._run
         run.wrong_frames = run.wrong_frames + 1 if opposed else 0
         return run.wrong_frames >= s.wrong_direction_frames
@@ -917,11 +924,17 @@ class Servo:
         return run.probe_t0 is None or 0.0 <= t - run.probe_t0 < s.direction_probe_s
 
     def _camera_jacobian(self, q: np.ndarray) -> np.ndarray:
-        """(6, n) camera twist [v; w] in the camera optical frame per joint velocity."""
+        """(6, n) camera twist [v; w] in the camera optical frame per joint velocity (relative
+        to the target: with a fixed camera, control.mounting)."""
+        if self.mount is not None:
+            return self.mount.camera_jacobian(self.arm, q)
         return self.arm.camera_from_tool() @ self.arm.jacobian_tool(q)
 
     def _cartesian_jacobians(self, q):
-        """Tool point, camera origin (linear) and tool angular Jacobians, 3 x n each."""
+        """Tool point, camera origin (linear; a fixed camera's target origin) and tool angular
+        Jacobians, 3 x n each."""
+        if self.mount is not None:
+            return self.mount.cartesian_jacobians(self.arm, q, self.tool_point)
         return self.arm.cartesian_jacobians(q, self.tool_point)
 
     def _end(self, state: str, reason: str, t: float) -> None:

@@ -34,6 +34,10 @@ class RobotSettings:
     tool_frame: str
     camera_frame: str
     hand_eye: tuple[float, ...]
+    camera_mount: str
+    fixed_camera_pose: tuple[float, ...]
+    fixed_camera_frame: str
+    target_on_tool: tuple[float, ...]
     tool_point: tuple[float, ...]
     min_joints: int
 

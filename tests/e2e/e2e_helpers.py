@@ -282,14 +282,22 @@ class Cell:
     # ------------------------------------------------------------------ ground truth
     def truth_errors(self) -> tuple[float, float, float]:
         """(mm, deg, px): true camera pose now against the taught pose, and the RMS distance
-        between the target's feature points projected at both poses."""
+        between the target's feature points projected at both poses. With a fixed camera the
+        simulator's truth topics carry the tool's pose (sim_node): the pose error is the
+        tool's, and the target is projected from the stand at its current and taught poses."""
         truth = self.node.truth
         T_now, T_goal, T_target = truth["camera"], truth["taught"], truth["target"]
         mm = 1e3 * float(np.linalg.norm(T_now[:3, 3] - T_goal[:3, 3]))
         deg = math.degrees(Rotation.from_matrix(T_goal[:3, :3].T @ T_now[:3, :3]).magnitude())
         points = self.scenario.target.model_points()
         cam = self.scenario.camera
-        uv = [_project(points, frames.invert(T) @ T_target, cam) for T in (T_now, T_goal)]
+        fixed = self.scenario.mount("true")
+        if fixed is None:
+            uv = [_project(points, frames.invert(T) @ T_target, cam) for T in (T_now, T_goal)]
+        else:
+            T_camera_base = frames.invert(fixed.T_base_camera)
+            uv = [_project(points, T_camera_base @ T, cam)
+                  for T in (T_target, T_goal @ fixed.T_tool_target)]
         px = float(np.sqrt(np.mean(np.sum((uv[0] - uv[1]) ** 2, axis=1))))
         return mm, deg, px
 

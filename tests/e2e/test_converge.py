@@ -22,6 +22,7 @@ SCENARIOS = [
     "vs6_tray_offset",     # 6 joints
     "tray_tags_offset",    # fiducial board
     "tray_poster_offset",  # textured poster
+    "vs6_stand_offset",    # fixed camera (eye-to-hand): the tool's pose error is judged
 ]
 
 

@@ -453,6 +453,13 @@ def test_capture_reference_then_enable_arms_without_commanding(rig, processes):
     expect(response, True, "5 features", "loaded")
     path = processes[1] / "references" / "station_t.yaml"
     assert path.is_file() and rig.get_params("reference.file") == [str(path)]
+    # the reference keeps the joints at the image's stamp (the stub rests at its home pose)
+    # and the taught image beside it, named relative to the file
+    robot = load_robot("vs7_bench")
+    taught = yaml.safe_load(path.read_text())
+    assert list(taught["joint_positions"]) == list(robot.arm.joint_names)
+    np.testing.assert_allclose(list(taught["joint_positions"].values()), robot.home, atol=1e-9)
+    assert taught["image"] == "station_t.png" and (path.parent / "station_t.png").is_file()
     expect(rig.enable(True), True, "motion enabled")
     rig.wait_state("armed")
     rig.spin(0.3)

@@ -11,8 +11,10 @@ the simulator's truth ``sim/camera_pose_truth`` and ``sim/taught_camera_pose`` (
 (JPEG, rendered by the simulated camera at the first and the last tick's joints);
 ``params.yaml`` (the episode's controller parameters with the scenario's robot frames and the
 believed hand-eye), ``result.json`` (the servo's result and the true pose error) and
-``episode.json`` (where the episode came from). Not recorded: the detected features and their
-errors (the episode loop does not keep them), so the report draws the frames without marks.
+``episode.json`` (where the episode came from); per camera frame with a match, as the node publishes them,
+the features seen ``servo/features`` [u1, v1, ...], their errors from the taught view
+``servo/feature_error`` [du1, dv1, ...] and ``servo/error_rms`` (px), so the report marks the
+start and end frames and plots the error of each feature as for a run of the cell.
 """
 from __future__ import annotations
 
@@ -95,6 +97,17 @@ def write_record(root: Path, name: str, scenario, values: dict, result, notes: d
                           layout=layout, data=np.asarray(status["dq"], float)), ns(t))
             rec.write(itf.TOPIC_SIM_CAMERA_POSE_TRUTH, "geometry_msgs/msg/PoseStamped",
                       pose(t, arm_true.camera_pose(q)), ns(t))
+        for t, _keys, uv, uv_ref in result.feature_trace:
+            if not len(uv):   # the node publishes features only for a frame with a match
+                continue
+            error = uv - uv_ref
+            rec.write(itf.TOPIC_FEATURES, "std_msgs/msg/Float64MultiArray",
+                      T["std_msgs/msg/Float64MultiArray"](layout=layout, data=uv.ravel()), ns(t))
+            rec.write(itf.TOPIC_FEATURE_ERROR, "std_msgs/msg/Float64MultiArray",
+                      T["std_msgs/msg/Float64MultiArray"](layout=layout, data=error.ravel()),
+                      ns(t))
+            rec.write(itf.TOPIC_ERROR_RMS, "std_msgs/msg/Float64", T["std_msgs/msg/Float64"](
+                data=float(np.sqrt(np.mean(np.sum(error ** 2, axis=1))))), ns(t))
         cam = scenario.camera
         cell = SimCell(scenario, q0=result.q_trace[0])
         info = cam.to_dict()

@@ -108,7 +108,12 @@ def arm_of_run(run: RunData) -> ArmModel | None:
     except ValueError:
         arm = ArmModel.from_urdf(urdf, *frame_names, None, min_joints)
     hand_eye = p.get("robot.hand_eye") or []
-    if len(hand_eye) == 7:
+    target = p.get("robot.target_on_tool") or []
+    if p.get("robot.camera_mount") == "fixed" and len(target) == 7:
+        # a fixed camera: the point limits.camera_linear_speed bounds is the target's origin
+        # on the tool (control.mounting), so the "camera" figures are that point's
+        arm.set_hand_eye(transform_from_xyz_quat(target[:3], target[3:]))
+    elif len(hand_eye) == 7:
         arm.set_hand_eye(transform_from_xyz_quat(hand_eye[:3], hand_eye[3:]))
     return arm
 

@@ -5,9 +5,11 @@ What an operator would do, scripted:
    `Perception.capture` the node's `servo/capture_reference` service runs);
 2. start `vservo_sim` (scenario), the controller as a managed node (`vservo_managed`:
    config/vservo_sim.yaml plus the taught reference and the scenario's ``controller_belief``:
-   believed hand-eye as ``robot.hand_eye``, believed depth scale on the taught depths) and,
-   when present, `vservo_recorder`, as child processes;
-3. configure and activate the controller (lifecycle_msgs ChangeState), enable motion, wait until the recorder is ready (so its bag holds the whole run and the
+   believed hand-eye as ``robot.hand_eye`` (a fixed camera: ``robot.camera_mount`` fixed, the
+   believed stand and target poses), believed depth scale on the taught depths) and, when
+   present, `vservo_recorder`, as child processes;
+3. configure and activate the controller (lifecycle_msgs ChangeState), enable motion, wait
+   until the recorder is ready (so its bag holds the whole run and the
    controller's parameters), start the run, follow status and the run result;
 4. print the summary (and write it as JSON), stop the processes.
 
@@ -38,7 +40,7 @@ from vservo_node.perception import Perception
 from vservo_node.ros import harness, qos
 from vservo_node.sim import SimCell, load_scenario
 from vservo_node.vision.image_io import to_bgr_or_mono
-from vservo_node.vision.reference import save_reference
+from vservo_node.vision.reference import save_reference, with_joints
 from vservo_node.yaml_files import dump_yaml
 
 # The summary's figures, by their names and definitions in vservo_node.record.metrics: read
@@ -61,7 +63,8 @@ def teach(scenario, folder: Path) -> Path:
     h, w = rgb.shape[:2]
     image = to_bgr_or_mono(rgb, "rgb8", w, h)       # as the node decodes it
     perception = Perception(scenario.target, scenario.camera)
-    reference = perception.capture(image, f"{scenario.name}_station")
+    reference = with_joints(perception.capture(image, f"{scenario.name}_station"),
+                            cell.arm_model.joint_names, scenario.q_taught)  # the arm as taught
     if reference.depths is not None and scenario.depth_scale_belief != 1.0:
         reference = dataclasses.replace(reference,
                                         depths=reference.depths * scenario.depth_scale_belief)
@@ -81,9 +84,12 @@ def scenario_controller_params(scenario) -> dict:
         "io": {"camera_rate_hz": float(scenario.fps)},
     }
     T_belief = scenario.T_tool_camera_belief
-    if not np.allclose(T_belief, scenario.arm_model("urdf").T_tool_camera, atol=1e-12):
-        values["robot"]["hand_eye"] = [*map(float, T_belief[:3, 3]),
-                                       *map(float, frames.matrix_to_quat(T_belief[:3, :3]))]
+    fixed = scenario.mount("belief")
+    if fixed is not None:     # a camera on a stand: its believed pose and the target's on the tool
+        values["robot"].update(camera_mount="fixed", fixed_camera_pose=_pose7(fixed.T_base_camera),
+                               target_on_tool=_pose7(fixed.T_tool_target))
+    elif not np.allclose(T_belief, scenario.arm_model("urdf").T_tool_camera, atol=1e-12):
+        values["robot"]["hand_eye"] = _pose7(T_belief)
     for name, value in scenario.controller.items():   # the scenario's own settings
         if "." in name:
             section, leaf = name.split(".", 1)
@@ -91,6 +97,11 @@ def scenario_controller_params(scenario) -> dict:
         else:
             values[name] = value
     return values
+
+
+def _pose7(T) -> list:
+    """[x, y, z, qx, qy, qz, qw] of a 4x4 transform (the robot.* pose parameters' format)."""
+    return [*map(float, T[:3, 3]), *map(float, frames.matrix_to_quat(T[:3, :3]))]
 
 
 def controller_overrides(scenario, reference_file: Path, folder: Path,

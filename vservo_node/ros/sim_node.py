@@ -23,6 +23,11 @@ Modes:
   command comes for ``lock_step_resend`` s of wall time the current frame is sent again, so a
   controller that subscribed late still gets a first image.
 
+Ground truth: ``sim/camera_pose_truth`` and the latched ``sim/taught_camera_pose`` carry the
+pose the arrival tolerances judge (``SimCell.judged_pose``): the camera's for a wrist camera,
+the tool's for a scenario with a fixed camera (``mount``; the camera stands still there), so
+the controller's true final pose error (``io.sim_truth``) is the tool's.
+
 Commands (reliable QoS): joint velocities as std_msgs/Float64MultiArray in
 ``command_joint_order`` (default: the arm's chain order), or a single-point
 trajectory_msgs/JointTrajectory (positions or velocities, joints by name). A refused command is
@@ -474,9 +479,9 @@ class SimCellNode(Node):
         t = self.schedule.time(tick)
         stamp = self._stamp(t)
         base = self.cell.base_frame
-        self._pub_camera_truth.publish(convert.matrix_to_pose(self.cell.camera_pose(t), stamp,
+        self._pub_camera_truth.publish(convert.matrix_to_pose(self.cell.judged_pose(t), stamp,
                                                               base))
-        self._pub_target_truth.publish(convert.matrix_to_pose(self.cell.T_base_target, stamp,
+        self._pub_target_truth.publish(convert.matrix_to_pose(self.cell.target_pose(t), stamp,
                                                               base))
         camera_frame = self.cell.camera_frame
         self._pub_info.publish(convert.model_to_camera_info(self.cell.camera_info, stamp,
@@ -490,7 +495,7 @@ class SimCellNode(Node):
                                             qos.LATCHED)
         description.publish(String(data=self.cell.urdf))
         taught = self.create_publisher(PoseStamped, interface.TOPIC_SIM_TAUGHT_POSE, qos.LATCHED)
-        taught.publish(convert.matrix_to_pose(self.cell.taught_camera_pose, self._stamp(0.0),
+        taught.publish(convert.matrix_to_pose(self.cell.taught_judged_pose, self._stamp(0.0),
                                               self.cell.base_frame))
 
 

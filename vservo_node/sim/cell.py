@@ -1,4 +1,5 @@
-"""The simulated cell: an arm with a wrist camera over a planar target, stepped by the caller.
+"""The simulated cell: an arm with a wrist camera over a planar target, or a camera on a stand
+watching a target on the arm's tool (scenario ``mount``), stepped by the caller.
 
 :class:`SimCell` ties a :class:`~vservo_node.sim.scenario.Scenario` together: the drives
 (:class:`~vservo_node.sim.arm.SimArm`) move the true arm, the camera sits on it at the true
@@ -12,7 +13,6 @@ import dataclasses
 
 import numpy as np
 
-from vservo_node.control.frames import invert
 from vservo_node.sim.arm import SimArm
 from vservo_node.sim.camera_sim import SimCamera
 from vservo_node.sim.render import PlanarTexture
@@ -51,7 +51,8 @@ class SimCell:
     ``camera_rate`` (frames per second), ``joint_names``, ``base_frame``, ``camera_frame``,
     ``urdf`` (the robot description text), ``taught_camera_pose`` (true ``T_base_camera`` at
     the taught joints), ``arm`` (the :class:`SimArm`), ``arm_model`` (true kinematics: the
-    true hand-eye transform).
+    true hand-eye transform), ``mount`` (None, or the true ``control.mounting.FixedCamera``),
+    ``taught_judged_pose`` (:meth:`judged_pose` at the taught joints).
     """
 
     def __init__(self, scenario, q0=None, t0: float = 0.0, command_timeout: float | None = None):
@@ -62,8 +63,10 @@ class SimCell:
         self.urdf = scenario.urdf_path.read_text()
         self.camera_info = scenario.camera
         self.camera_rate = scenario.fps
-        self.T_base_target = scenario.T_base_target
-        self.taught_camera_pose = self.arm_model.camera_pose(scenario.q_taught)
+        self.T_base_target = scenario.T_base_target   # None with a fixed camera: target_pose
+        self.mount = scenario.mount("true")
+        self.taught_camera_pose = self._camera_pose(scenario.q_taught)
+        self.taught_judged_pose = scenario.judged_pose(self.arm_model, scenario.q_taught)
         dynamics = scenario.arm_dynamics
         if command_timeout is not None:
             dynamics = dataclasses.replace(dynamics, command_timeout_s=float(command_timeout))
@@ -108,7 +111,23 @@ class SimCell:
 
     def camera_pose(self, t: float | None = None) -> np.ndarray:
         """True ``T_base_camera`` (4x4) at ``t`` (default: now)."""
-        return self.arm_model.camera_pose(self.arm.true_state(t)[0])
+        return self._camera_pose(self.arm.true_state(t)[0])
+
+    def _camera_pose(self, q) -> np.ndarray:
+        if self.mount is not None:
+            return self.mount.T_base_camera.copy()
+        return self.arm_model.camera_pose(q)
+
+    def target_pose(self, t: float | None = None) -> np.ndarray:
+        """True ``T_base_target`` (4x4) at ``t`` (default: now)."""
+        if self.mount is None:
+            return self.T_base_target
+        return self.arm_model.fk(self.arm.true_state(t)[0]) @ self.mount.T_tool_target
+
+    def judged_pose(self, t: float | None = None) -> np.ndarray:
+        """The true pose the arrival tolerances judge at ``t``: the camera's (wrist) or the
+        tool's (fixed camera); compare it with ``taught_judged_pose``."""
+        return self.scenario.judged_pose(self.arm_model, self.arm.true_state(t)[0])
 
     def render(self, t: float | None = None) -> np.ndarray:
         """The image (H, W, 3) uint8 RGB exposed at ``t`` (default: now)."""
@@ -118,15 +137,15 @@ class SimCell:
     def render_at(self, q, t: float) -> np.ndarray:
         """The image the camera takes with the arm at ``q`` (e.g. the taught pose), noise
         drawn for time ``t``."""
-        T_camera_target = invert(self.arm_model.camera_pose(q)) @ self.T_base_target
-        return self.camera.render(T_camera_target, t)
+        return self.camera.render(self.scenario.camera_target(self.arm_model, q), t)
 
     def truth(self, t: float | None = None) -> Truth:
         """Ground truth at ``t`` (default: now): true joints, poses and feature positions."""
         t = self.t if t is None else float(t)
         q, dq = self.arm.true_state(t)
-        truth = frame_truth(t, q, dq, self.camera_info, self.scenario.target,
-                            self.arm_model.camera_pose(q), self.T_base_target)
+        T_base_camera = self._camera_pose(q)
+        truth = frame_truth(t, q, dq, self.camera_info, self.scenario.target, T_base_camera,
+                            T_base_camera @ self.scenario.camera_target(self.arm_model, q))
         return dataclasses.replace(truth, detectable=self._detectable(truth))
 
     def _detectable(self, truth: Truth) -> np.ndarray:

@@ -26,7 +26,6 @@ from __future__ import annotations
 
 import numpy as np
 
-from vservo_node.control.frames import invert
 from vservo_node.servo import Observation, TaughtView
 from vservo_node.sim import seeding
 from vservo_node.sim.truth import unambiguous, inside_image, project_points, unoccluded
@@ -94,7 +93,7 @@ class ProjectedSensor:
 
     def pixels(self, q, t: float):
         """(uv (N, 2) true distorted pixels, Z (N,) m, visible (N,) bool) at joints q, time t."""
-        T_camera_target = invert(self.arm.camera_pose(q)) @ self.scenario.T_base_target
+        T_camera_target = self.scenario.camera_target(self.arm, q)
         points = self.points_target @ T_camera_target[:3, :3].T + T_camera_target[:3, 3]
         uv = project_points(self.true_camera, points)
         visible = inside_image(self.true_camera, uv)

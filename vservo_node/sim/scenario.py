@@ -58,6 +58,26 @@ in the camera's own axes, ``T_tool_camera' = T_tool_camera @ [R(rotation vector)
 true one moves the real camera, the belief one is what the controller is told. Start and taught
 poses are those of the true camera.
 
+Fixed camera (eye-to-hand): the optional ``mount`` entry puts the camera on a stand and the
+target on the tool::
+
+    mount:
+      camera: fixed                  # default: wrist (the camera on the tool, robot.camera_frame)
+      camera_pose: {xyz: [0.45, 0.0, 0.0], rpy_rad: [0.0, 0.0, 1.5708]}  # T_base_camera
+      target_on_tool: {xyz: [0.0, 0.0, 0.02], rpy_rad: [3.14159265, 0.0, 0.0]}  # T_tool_target
+
+Then ``target.pose`` and ``true_hand_eye`` are not given (the target rides on the tool; the
+stand's true pose is ``camera_pose``), ``robot.camera_frame`` is optional, and the
+camera-target geometry reads the same as for a wrist camera: ``above_target`` is the target's
+pose seen from the camera (``T_camera_target = inv([Rz(a) | (ox, oy, -d)])``) and ``offset`` is
+the apparent camera displacement, so the start view is the one a wrist camera moved by the
+offset would see: the target starts at ``T_camera_target = inv(offset) @ T_camera_target_taught``
+(the arm's joints solved for that target pose). ``controller_belief.hand_eye_error`` perturbs
+the believed camera pose on its stand (``T_base_camera' = T_base_camera @ [R | t]``, camera
+axes) and ``controller_belief.target_error`` (same form) the believed target pose on the tool,
+``T_tool_target' = T_tool_target @ [R | t]``. Ground truth and the headless episodes' pose error
+are then the tool's (``SimCell.judged_pose``).
+
 ``controller``: controller parameters (vservo_node.params names, flat) the cell is meant to be
 run with, e.g. a control scheme or a wider motion envelope for a large start offset; headless
 episodes (``episode.run_scenario_episode``) and ``vservo demo`` layer them over
@@ -72,7 +92,8 @@ import numpy as np
 from scipy.spatial.transform import Rotation
 
 from vservo_node import paths
-from vservo_node.control.frames import transform, transform_from_xyz_rpy
+from vservo_node.control.frames import invert, transform, transform_from_xyz_rpy
+from vservo_node.control.mounting import FixedCamera
 from vservo_node.control.kinematics import URDF_MAX_BYTES, ArmModel
 from vservo_node.sim.arm import ArmDynamics
 from vservo_node.sim.camera_sim import Occluder, Photometric
@@ -83,9 +104,12 @@ from vservo_node.yaml_entries import EntryReader
 from vservo_node.yaml_files import YamlFileError, brief, load_yaml, read_bounded
 
 FORMAT = "vservo_scenario/1"
+# the image frame id of a fixed camera (no URDF frame: its pose is mount.camera_pose)
+FIXED_CAMERA_FRAME = "fixed_camera_optical_frame"
 
 _TOP = {"format", "name", "description", "robot", "camera", "target", "taught", "start", "arm",
-        "image", "true_hand_eye", "controller_belief", "controller", "duration_s", "seed"}
+        "image", "true_hand_eye", "controller_belief", "controller", "duration_s", "seed",
+        "mount"}
 _TOP_REQUIRED = {"name", "robot", "camera", "target", "taught", "start"}
 _ROBOT = {"urdf", "base_frame", "tool_frame", "camera_frame", "home"}
 _CAMERA = {"width", "height", "fps", "intrinsics", "distortion_model", "d"}
@@ -99,7 +123,8 @@ _ARM = {"velocity_lag_s", "command_latency_s", "command_timeout_s", "decel_limit
 _IMAGE = {"noise_std", "blur_sigma_px", "gain", "table_rgb", "table_texture", "occlusions"}
 _OCCLUSION = {"rect_px", "colour", "from_s", "until_s"}
 _PERTURBATION = {"translation", "rotation_deg"}
-_BELIEF = {"hand_eye_error", "depth_scale"}
+_BELIEF = {"hand_eye_error", "depth_scale", "target_error"}
+_MOUNT = {"camera", "camera_pose", "target_on_tool"}
 _HIDEABLE = {"dot": "dots", "tag": "markers"}
 # Upper bounds of the image entries (grey levels, pixels, factor): beyond them a picture says
 # nothing and the blur kernel grows without bound (common practice, no source).
@@ -131,24 +156,43 @@ class Scenario:
     camera: CameraModel
     fps: float
     target: object                  # vservo_node.vision.targets.Target
-    T_base_target: np.ndarray
+    T_base_target: np.ndarray | None       # None: a fixed camera's target rides on the tool
     hidden: tuple                   # ((kind, id), ...) features painted over
     q_taught: np.ndarray
     q_start: np.ndarray
     arm_dynamics: ArmDynamics
     photometric: Photometric
-    T_tool_camera_true: np.ndarray
-    T_tool_camera_belief: np.ndarray
+    T_tool_camera_true: np.ndarray | None  # None with a fixed camera
+    T_tool_camera_belief: np.ndarray | None
     depth_scale_belief: float
     duration_s: float
     seed: int
     controller: dict = field(default_factory=dict)   # parameter name -> value (module doc)
+    fixed: FixedCamera | None = None          # mount fixed: the true stand and target on tool
+    fixed_belief: FixedCamera | None = None   # ... as the controller is told
+
+    def mount(self, which: str = "true") -> FixedCamera | None:
+        """None for a wrist camera; the ``"true"`` or ``"belief"`` FixedCamera otherwise."""
+        if which not in ("true", "belief"):
+            raise ValueError(f"which must be 'true' or 'belief', got {which!r}")
+        return self.fixed if which == "true" else self.fixed_belief
+
+    def camera_target(self, arm, q) -> np.ndarray:
+        """True ``T_camera_target`` at joints q of ``arm`` (the scenario's true arm model)."""
+        if self.fixed is not None:
+            return self.fixed.T_camera_target(arm, q)
+        return invert(arm.camera_pose(q)) @ self.T_base_target
+
+    def judged_pose(self, arm, q) -> np.ndarray:
+        """The true pose the arrival tolerances judge, base frame: the camera's (wrist) or the
+        tool's (fixed camera)."""
+        return arm.fk(q) if self.fixed is not None else arm.camera_pose(q)
 
     def arm_model(self, hand_eye: str = "true") -> ArmModel:
         """A fresh ArmModel of the scenario's robot with the ``"true"``, ``"belief"`` or
         ``"urdf"`` hand-eye transform."""
         arm = ArmModel.from_urdf_file(self.urdf_path, self.base_frame, self.tool_frame,
-                                      self.camera_frame)
+                                      None if self.fixed is not None else self.camera_frame)
         choice = {"true": self.T_tool_camera_true, "belief": self.T_tool_camera_belief,
                   "urdf": None}
         if hand_eye not in choice:
@@ -241,8 +285,11 @@ def _camera(r: _Reader, value):
     return camera, r.number(value["fps"], "camera.fps", positive=True)
 
 
-def _target(r: _Reader, value):
-    value = r.mapping(value, "target", _TARGET, {"file", "pose"})
+def _target(r: _Reader, value, fixed: bool = False):
+    value = r.mapping(value, "target", _TARGET, {"file"} if fixed else {"file", "pose"})
+    if fixed and "pose" in value:
+        r.fail("target.pose", "a fixed camera's target rides on the tool: give its pose as "
+                              "mount.target_on_tool, not target.pose")
     path = r.path(value["file"], "target.file")
     try:
         target = load_target(path)
@@ -251,9 +298,7 @@ def _target(r: _Reader, value):
     if not target.has_geometry:
         r.fail("target.file", f"target {target.name!r} gives no feature positions: the "
                               "simulator needs them to draw it")
-    pose = r.mapping(value["pose"], "target.pose", _POSE, _POSE)
-    T = transform_from_xyz_rpy(r.vector(pose["xyz"], "target.pose.xyz", 3),
-                               r.vector(pose["rpy_rad"], "target.pose.rpy_rad", 3))
+    T = None if fixed else _pose(r, value["pose"], "target.pose")
     hidden = []
     hide = value.get("hide") or []
     if not isinstance(hide, list):
@@ -272,6 +317,32 @@ def _target(r: _Reader, value):
             r.fail(entry, f"target {target.name!r} has no {kind} {ident}; ids: {brief(ids)}")
         hidden.append((kind, ident))
     return target, T, tuple(hidden)
+
+
+def _pose(r: _Reader, value, entry) -> np.ndarray:
+    pose = r.mapping(value, entry, _POSE, _POSE)
+    return transform_from_xyz_rpy(r.vector(pose["xyz"], f"{entry}.xyz", 3),
+                                  r.vector(pose["rpy_rad"], f"{entry}.rpy_rad", 3))
+
+
+def _mount(r: _Reader, value) -> FixedCamera | None:
+    """The ``mount`` entry: None for a wrist camera, else the true FixedCamera."""
+    if value is None:
+        return None
+    value = r.mapping(value, "mount", _MOUNT, {"camera"})
+    kind = r.text(value["camera"], "mount.camera")
+    if kind == "wrist":
+        extra = sorted(set(value) - {"camera"})
+        if extra:
+            r.fail("mount", f"{', '.join(extra)} apply to a fixed camera only")
+        return None
+    if kind != "fixed":
+        r.fail("mount.camera", f"{brief(kind)}: expected wrist or fixed")
+    for key in ("camera_pose", "target_on_tool"):
+        if key not in value:
+            r.fail("mount", f"a fixed camera needs mount.{key}")
+    return FixedCamera(_pose(r, value["camera_pose"], "mount.camera_pose"),
+                       _pose(r, value["target_on_tool"], "mount.target_on_tool"))
 
 
 def _taught_pose(r: _Reader, value, T_base_target) -> np.ndarray:
@@ -385,53 +456,81 @@ def scenario_from_dict(data, source: Path | None = None) -> Scenario:
     if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
         r.fail("seed", f"expected a non-negative integer, got {brief(seed)}")
 
+    fixed = _mount(r, data.get("mount"))
     robot = r.mapping(data["robot"], "robot", _ROBOT,
-                      {"urdf", "base_frame", "tool_frame", "camera_frame"})
+                      {"urdf", "base_frame", "tool_frame"} | (set() if fixed else
+                                                              {"camera_frame"}))
     urdf = r.path(robot["urdf"], "robot.urdf")
-    frames = [r.text(robot[k], f"robot.{k}") for k in ("base_frame", "tool_frame",
-                                                        "camera_frame")]
+    frames = [r.text(robot[k], f"robot.{k}") for k in ("base_frame", "tool_frame")]
+    frames.append("" if fixed else r.text(robot["camera_frame"], "robot.camera_frame"))
     text = read_bounded(urdf, URDF_MAX_BYTES, ScenarioError, prefix=f"{r.where}: robot.urdf: ")
     try:
-        arm = ArmModel.from_urdf(text.decode("utf-8"), *frames)
+        arm = ArmModel.from_urdf(text.decode("utf-8"), *frames[:2], frames[2] or None)
     except ValueError as exc:      # UnicodeDecodeError is one too
         r.fail("robot", str(exc))
     q_home = _home(r, robot, urdf, arm)
 
     camera, fps = _camera(r, data["camera"])
-    target, T_base_target, hidden = _target(r, data["target"])
+    target, T_base_target, hidden = _target(r, data["target"], fixed is not None)
 
-    T_urdf = arm.T_tool_camera
-    T_true = T_urdf @ _perturbation(r, data.get("true_hand_eye"), "true_hand_eye")
     belief = r.mapping(data.get("controller_belief"), "controller_belief", _BELIEF)
-    T_belief = T_urdf @ _perturbation(r, belief.get("hand_eye_error"),
-                                      "controller_belief.hand_eye_error")
     depth_scale = r.number(belief.get("depth_scale", 1.0), "controller_belief.depth_scale",
                            positive=True)
-    arm.set_hand_eye(T_true)
+    camera_error = _perturbation(r, belief.get("hand_eye_error"),
+                                 "controller_belief.hand_eye_error")
+    fixed_belief = None
+    if fixed is None:
+        if "target_error" in belief:
+            r.fail("controller_belief.target_error", "applies to a fixed camera only (mount)")
+        T_urdf = arm.T_tool_camera
+        T_true = T_urdf @ _perturbation(r, data.get("true_hand_eye"), "true_hand_eye")
+        T_belief = T_urdf @ camera_error
+        arm.set_hand_eye(T_true)
+        placed = arm                      # the IK places the camera
+    else:
+        if "true_hand_eye" in data:
+            r.fail("true_hand_eye", "a fixed camera's true pose is mount.camera_pose")
+        T_true = T_belief = None
+        fixed_belief = FixedCamera(
+            fixed.T_base_camera @ camera_error,
+            fixed.T_tool_target @ _perturbation(r, belief.get("target_error"),
+                                                "controller_belief.target_error"))
+        placed = ArmModel.from_urdf(text.decode("utf-8"), *frames[:2])
+        placed.set_hand_eye(fixed.T_tool_target)   # the IK places the target
 
     kind, value = _one_of(r, data["taught"], "taught", {"above_target", "joints"})
     if kind == "joints":
         q_taught = _joints(r, value, "taught.joints", arm)
-    else:
+    elif fixed is None:
         q_taught = _solve(r, arm, _taught_pose(r, value, T_base_target), q_home, q_home,
                           "taught.above_target")
+    else:   # the target in front of the still camera, as the wrist camera above it
+        T_target_camera = _taught_pose(r, value, np.eye(4))
+        q_taught = _solve(r, placed, fixed.T_base_camera @ invert(T_target_camera), q_home,
+                          q_home, "taught.above_target")
     kind, value = _one_of(r, data["start"], "start", {"offset", "joints"})
     if kind == "joints":
         q_start = _joints(r, value, "start.joints", arm)
-    else:
+    elif fixed is None:
         T_start = arm.camera_pose(q_taught) @ _start_offset(r, value)
         q_start = _solve(r, arm, T_start, q_taught, q_home, "start.offset")
+    else:   # the apparent camera displacement: the target moves by its inverse
+        T_camera_target = invert(fixed.T_base_camera) @ placed.camera_pose(q_taught)
+        T_goal = fixed.T_base_camera @ invert(_start_offset(r, value)) @ T_camera_target
+        q_start = _solve(r, placed, T_goal, q_taught, q_home, "start.offset")
 
     return Scenario(
         name=r.text(data["name"], "name"), description=str(data.get("description", "")),
         source=source, urdf_path=urdf, base_frame=frames[0], tool_frame=frames[1],
-        camera_frame=frames[2], joint_names=tuple(arm.joint_names), q_home=q_home,
+        camera_frame=frames[2] or FIXED_CAMERA_FRAME, joint_names=tuple(arm.joint_names),
+        q_home=q_home,
         camera=camera, fps=fps, target=target, T_base_target=T_base_target, hidden=hidden,
         q_taught=q_taught, q_start=q_start, arm_dynamics=_dynamics(r, data.get("arm"), seed),
         photometric=_image(r, data.get("image")), T_tool_camera_true=T_true,
         T_tool_camera_belief=T_belief, depth_scale_belief=depth_scale,
         duration_s=r.number(data.get("duration_s", 10.0), "duration_s", positive=True),
-        seed=seed, controller=_controller(r, data.get("controller")))
+        seed=seed, controller=_controller(r, data.get("controller")), fixed=fixed,
+        fixed_belief=fixed_belief)
 
 
 def load_scenario(name_or_path) -> Scenario:

@@ -4,9 +4,14 @@
 their printed colours and layout, markers by id and corner, textured posters through their
 texture) and records per feature: key, pixel, normalized coordinates (when the camera is
 known), measured colour (CIELAB, dots), depth (given, or by PnP when the camera and the
-target's geometry are known); plus the camera, the image size and the target's name. A
-textured reference also keeps the taught image, saved as PNG next to its file, because the
-run-time detector matches to that view.
+target's geometry are known); plus the camera, the image size and the target's name. Every
+reference also keeps the taught image, saved as PNG next to its file (a textured target needs
+it: the run-time detector matches to that view; for the others it shows what was taught), and,
+when the caller knows them (``with_joints``), the arm's joint positions at the image's stamp:
+the node's joint history at the capture, the simulated arm in headless runs. The report
+measures the camera's path against that pose on records without a simulator's ground truth.
+References written before these were kept still load; ``Reference.notes`` says what they lack
+(the node logs it as information).
 
 Reference file (YAML, format ``vservo_reference/1``, our own), one per slot / station
 (``reference_path(directory, name)``)::
@@ -19,7 +24,8 @@ Reference file (YAML, format ``vservo_reference/1``, our own), one per slot / st
     image_size: [640, 480]
     camera: {...}              # CameraModel.to_dict(), or null
     depth_source: pnp          # or given, or null
-    image: station_a.png       # textured only
+    image: station_a.png       # the taught view, beside the file (relative path)
+    joint_positions: {joint_1: 0.1, ...}   # rad (m for prismatic), optional
     features:
       - {key: [dot, 0], pixel: [u, v], normalized: [x, y], colour_lab: [L, a, b], depth: z}
 
@@ -28,7 +34,10 @@ time: ``points_for(camera)`` re-projects the normalized coordinates through the 
 """
 from __future__ import annotations
 
+import dataclasses
 import datetime
+import logging
+import math
 import re
 from collections import Counter
 from dataclasses import dataclass
@@ -46,6 +55,7 @@ from vservo_node.yaml_entries import EntryReader
 from vservo_node.yaml_files import YamlFileError, brief, dump_yaml
 
 FORMAT = "vservo_reference/1"
+_LOG = logging.getLogger(__name__)
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
 
 
@@ -69,8 +79,11 @@ class Reference:
         depths: (N,) metres in the taught camera frame, or None.
         depth_source: how the depths were obtained ('given', 'pnp') or None.
         camera: CameraModel of the taught image, or None.
-        image: the taught image (textured targets), else None.
+        image: the taught image (BGR or mono), or None (a file written without one).
         created: ISO 8601 time of capture.
+        joint_names, joint_positions: the arm's joints at the taught view (rad, m for
+            prismatic joints), by name; None when not known (``with_joints`` sets them).
+        notes: what a loaded file lacks that newer references keep (for a log line).
     """
     name: str
     target: str
@@ -85,6 +98,19 @@ class Reference:
     camera: CameraModel | None = None
     image: np.ndarray | None = None
     created: str = ""
+    joint_names: tuple | None = None
+    joint_positions: np.ndarray | None = None
+    notes: tuple = ()
+
+    def joints_for(self, names) -> np.ndarray | None:
+        """The taught joint positions in the order of ``names`` (joint order is by name,
+        never by position); None when the reference keeps no joints or lacks one of them."""
+        if self.joint_names is None:
+            return None
+        index = {n: i for i, n in enumerate(self.joint_names)}
+        if not all(n in index for n in names):
+            return None
+        return np.array([self.joint_positions[index[n]] for n in names], dtype=float)
 
     def points_for(self, camera: CameraModel | None = None, image_size=None) -> np.ndarray:
         """Reference pixels (N, 2) as the current camera would see them.
@@ -205,8 +231,38 @@ def capture_reference(name: str, target: Target, image: np.ndarray,
         colours_lab=(detection.colours_lab[match.detection_index] if target.kind == "dots"
                      else None),
         depths=depths, depth_source=depth_source, camera=camera,
-        image=np.array(image) if target.kind == "textured" else None,
+        image=np.array(image),
         created=datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds"))
+
+
+def with_joints(reference: Reference, names, positions) -> Reference:
+    """``reference`` with the arm's joint positions at the taught view: ``names`` (joint
+    names) and ``positions`` (rad, m for prismatic joints) in the same order. BadReferenceError
+    (a ValueError) when they do not pair up, repeat a name or hold a non-finite value."""
+    names = tuple(str(n) for n in names)
+    q = np.asarray(positions, dtype=float).ravel()
+    if not names or len(names) != q.size:
+        raise BadReferenceError(f"joint positions of {reference.name!r}: {len(names)} names "
+                                f"for {q.size} positions; expected one position per name")
+    if len(set(names)) != len(names):
+        raise BadReferenceError(f"joint positions of {reference.name!r}: repeated names "
+                                f"{sorted(n for n, c in Counter(names).items() if c > 1)}")
+    if not np.all(np.isfinite(q)):
+        raise BadReferenceError(f"joint positions of {reference.name!r} must be finite, got "
+                                f"{q.tolist()}")
+    return dataclasses.replace(reference, joint_names=names, joint_positions=q)
+
+
+def joints_at_capture(reference: Reference, names, positions, why: str = ""
+                      ) -> tuple[Reference, str]:
+    """(reference, note) for a capture service: ``reference`` with the joints ``names`` at
+    ``positions`` (the joint history at the image's stamp), or, when ``positions`` is None,
+    the reference as it is and a note saying why it keeps no joints (``why``). A view is
+    still taught without joints: servoing does not need them, only the report's path to the
+    taught pose does."""
+    if positions is None or names is None:
+        return reference, f"no joint positions kept ({why or 'no joint state at the image'})"
+    return with_joints(reference, names, positions), ""
 
 
 # ----------------------------------------------------------------------------- files
@@ -227,7 +283,8 @@ def _floats(values):
 
 
 def save_reference(reference: Reference, path) -> Path:
-    """Write the reference YAML (and, for a textured one, the taught image as PNG beside it)."""
+    """Write the reference YAML and, when it holds one, the taught image as PNG beside it
+    (``<stem>.png``, named in the file relative to it); the joint positions when known."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     features = []
@@ -245,11 +302,17 @@ def save_reference(reference: Reference, path) -> Path:
             "image_size": [int(v) for v in reference.image_size],
             "camera": None if reference.camera is None else reference.camera.to_dict(),
             "depth_source": reference.depth_source, "features": features}
-    if reference.kind == "textured":
+    if reference.kind == "textured" and reference.image is None:
+        raise BadReferenceError(f"reference {reference.name!r} is textured but holds no taught "
+                                "image; the run-time detector needs it")
+    if reference.image is not None:
         image_file = path.with_suffix(".png")
         if not cv2.imwrite(str(image_file), reference.image):
             raise BadReferenceError(f"could not write the taught image {image_file}")
         data["image"] = image_file.name
+    if reference.joint_names is not None:
+        data["joint_positions"] = {n: float(q) for n, q in
+                                   zip(reference.joint_names, reference.joint_positions)}
     with open(path, "w") as f:
         dump_yaml(data, f, sort_keys=False, default_flow_style=None)
     return path
@@ -416,30 +479,73 @@ def load_reference(path, target: Target | None = None) -> Reference:
     depths = column("depth", 1, False)
     if depths is not None and not np.all(depths > 0):
         fail("depths must be > 0 metres")
+    notes = []
     image = None
-    if kind == "textured":
-        if "image" not in data:
-            fail("a textured reference needs 'image', the taught view saved beside it")
+    if kind == "textured" and "image" not in data:
+        fail("a textured reference needs 'image', the taught view saved beside it")
+    if "image" in data:
         image_file = r.text(data["image"], "image")
         image_path = path.parent / image_file
-        png = _png_size(image_path)
-        if png is None:
-            fail(f"cannot read the taught image {image_path}: expected a PNG file", "image")
-        if png != tuple(size):    # checked before decoding: no huge image is ever decoded
-            fail(f"taught image is {png[0]}x{png[1]}, image_size is {size}", "image")
-        image = cv2.imread(str(image_path), cv2.IMREAD_COLOR)
-        if image is None:
-            fail(f"cannot read the taught image {image_path}", "image")
-        if (image.shape[1], image.shape[0]) != tuple(size):
-            fail(f"taught image is {image.shape[1]}x{image.shape[0]}, image_size is {size}")
+        if Path(image_file).is_absolute() or ".." in Path(image_file).parts:
+            fail(f"expected a file name beside the reference, got {image_file!r}", "image")
+        if kind != "textured" and not image_path.is_file():
+            notes.append(f"its taught image {image_file} is not beside it (not needed to "
+                         f"servo on {kind})")
+        else:
+            png = _png_size(image_path)
+            if png is None:
+                fail(f"cannot read the taught image {image_path}: expected a PNG file",
+                     "image")
+            if png != tuple(size):    # checked before decoding: no huge image is ever decoded
+                fail(f"taught image is {png[0]}x{png[1]}, image_size is {size}", "image")
+            # textured: the colour view the detector matches to; others: as taught (mono or
+            # BGR, 8 or 16 bit)
+            image = cv2.imread(str(image_path), cv2.IMREAD_COLOR if kind == "textured"
+                               else cv2.IMREAD_UNCHANGED)
+            if image is None:
+                fail(f"cannot read the taught image {image_path}", "image")
+            if image.ndim == 3 and image.shape[2] == 4:
+                image = cv2.cvtColor(image, cv2.COLOR_BGRA2BGR)
+            if (image.shape[1], image.shape[0]) != tuple(size):
+                fail(f"taught image is {image.shape[1]}x{image.shape[0]}, image_size is {size}")
+    else:
+        notes.append("keeps no taught image (written before references kept one)")
+    joint_names, joint_positions = _joints_entry(r, data.get("joint_positions"), fail)
+    if joint_names is None:
+        notes.append("keeps no joint positions (taught before references kept them, or "
+                     "without joint states): reports measure the camera path against its "
+                     "final pose instead of the taught one")
     reference = Reference(
         name=name, target=target_name, kind=kind, keys=keys,
         pixels=pixels, image_size=tuple(size), normalized=normalized, colours_lab=colours,
         depths=depths, depth_source=depth_source, camera=camera, image=image,
-        created=str(data.get("created", "")))
+        created=str(data.get("created", "")), joint_names=joint_names,
+        joint_positions=joint_positions, notes=tuple(notes))
     if target is not None:
         try:
             check_target(reference, target)
         except BadReferenceError as exc:
             fail(str(exc))
+    for note in reference.notes:
+        _LOG.info("reference file %s %s", path, note)
     return reference
+
+
+def _joints_entry(r: EntryReader, value, fail) -> tuple:
+    """(names, positions) of a ``joint_positions: {name: rad}`` entry; (None, None) when
+    absent (null counts as absent); malformed entries refused naming the joint."""
+    if value is None:
+        return None, None
+    if not isinstance(value, dict) or not value:
+        fail(f"expected a mapping {{joint name: position}}, got {brief(value)}",
+             "joint_positions")
+    names, positions = [], []
+    for name, q in value.items():
+        if not isinstance(name, str) or not name:
+            fail(f"joint names must be text, got {brief(name)}", "joint_positions")
+        if not (isinstance(q, (int, float)) and not isinstance(q, bool) and math.isfinite(q)):
+            fail(f"expected a finite number (rad, or m for a prismatic joint), got {brief(q)}",
+                 f"joint_positions.{name}")
+        names.append(name)
+        positions.append(float(q))
+    return tuple(names), np.array(positions)

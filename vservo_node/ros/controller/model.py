@@ -17,6 +17,7 @@ from vservo_node import interface as itf
 from vservo_node import params
 from vservo_node.control import frames
 from vservo_node.control.kinematics import ArmModel
+from vservo_node.control.mounting import mount_from_params
 from vservo_node.perception import Perception, taught_view
 from vservo_node.ros import qos
 from vservo_node.ros.controller.guards import guarded
@@ -65,7 +66,8 @@ class ModelBuilding:
         hand_eye = robot.hand_eye
         try:
             arm = ArmModel.from_urdf(urdf, robot.base_frame, robot.tool_frame,
-                                     None if hand_eye else robot.camera_frame, robot.min_joints)
+                                     None if hand_eye or robot.camera_mount == "fixed"
+                                     else robot.camera_frame, robot.min_joints)
             if hand_eye:
                 arm.set_hand_eye(frames.transform_from_xyz_quat(hand_eye[:3], hand_eye[3:]))
             CommandOutput.check_order(io.command_joint_order, arm.joint_names)
@@ -92,11 +94,13 @@ class ModelBuilding:
             return
         try:
             settings, limits = servo_config(self.settings, self.arm)
+            mount = mount_from_params(self._values, self.arm)   # None: wrist camera
         except ValueError as exc:
             self._problems["servo"] = str(exc)
             self.get_logger().error(f"servo not built: {exc}")
             return
-        self.servo = Servo(self.arm, settings, limits, list(self.settings.robot.tool_point))
+        self.servo = Servo(self.arm, settings, limits, list(self.settings.robot.tool_point),
+                           mount=mount)
         self._problems["servo"] = ""
         self._rebuild_vision()
 
@@ -121,6 +125,8 @@ class ModelBuilding:
                 self._vision_files, self._vision_files_problem = None, str(exc)
                 self.get_logger().error(f"target or reference refused: {exc}")
                 return
+        for note in getattr(files[1], "notes", ()):   # an older file: what it lacks
+            self.get_logger().info(f"reference {self.settings.reference.file} {note}")
         self._vision_files, self._vision_files_problem = files, ""
 
     def _rebuild_vision(self) -> None:

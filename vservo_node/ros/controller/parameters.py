@@ -20,6 +20,8 @@ from vservo_node.settings import Settings, servo_config
 READ_ONLY = frozenset({"io.sim_truth",
     "robot.urdf_path", "robot_description", "robot.base_frame", "robot.tool_frame",
     "robot.camera_frame", "robot.hand_eye", "robot.tool_point", "robot.min_joints",
+    "robot.camera_mount", "robot.fixed_camera_pose", "robot.fixed_camera_frame",
+    "robot.target_on_tool",
     "io.command_interface", "io.command_joint_order", "io.output_rate_hz",
     "io.compressed_image", "io.image_rectified"})
 # Parameters that rebuild perception and the taught view: refused while a run moves.

@@ -18,7 +18,7 @@ from vservo_node import interface as itf
 from vservo_node.ros.controller.guards import guarded_service
 from vservo_node.ros.controller.outputs import rms
 from vservo_node.servo import MOVING_STATES
-from vservo_node.vision.reference import reference_path, save_reference
+from vservo_node.vision.reference import joints_at_capture, reference_path, save_reference
 
 
 class SupervisorServices:
@@ -206,12 +206,15 @@ class SupervisorServices:
             elif perception is None:
                 problems.append(f"perception: {self._problems['vision']}")
             name, directory = self.settings.reference.name, self.settings.reference.directory
+            q, why = self._pair(last[1]) if last is not None else (None, "")
+            joint_names = self.arm.joint_names if self.arm is not None else None
         if problems:
             return self._refuse(response, "capture_reference", problems)
         image = last[0]
         try:
             path = reference_path(directory, name)
-            reference = perception.capture(image, name)
+            reference, joints_note = joints_at_capture(perception.capture(image, name),
+                                                       joint_names, q, why)
             save_reference(reference, path)
         except (ValueError, OSError) as exc:
             return self._refuse(response, "capture_reference", [f"teach: {exc}"])
@@ -221,6 +224,7 @@ class SupervisorServices:
                                 [f"load: saved {path} but could not load it: {result.reason}"])
         response.success = True
         response.message = (f"reference {name!r} taught ({len(reference.keys)} features) and "
-                            f"saved to {path}; loaded")
+                            f"saved to {path}; loaded" + (f"; {joints_note}" if joints_note
+                                                          else ""))
         self.get_logger().info(response.message)
         return response
