@@ -100,9 +100,10 @@ def _assert_braked_to_one_zero(rig, since: tuple[float, int], reason: str):
     commands = _commands_since(rig, t0)
     first = next(i for i, c in enumerate(commands) if c.tolist() == braking["dq"])
     ramp = np.array(commands[first:])
-    assert len(ramp) >= 5, f"{len(ramp)} braking commands: no ramp"
+    # braking from a moving command: no jump to zero (the per-step bound below), however
+    # fast the run was when the transition landed
     speeds = np.max(np.abs(ramp), axis=1)
-    assert speeds[0] > 0.02
+    assert len(ramp) >= 2 and speeds[0] > 0.0, speeds
     assert np.all(np.diff(speeds) <= 1e-12), speeds
     assert np.max(np.abs(np.diff(ramp, axis=0))) <= HALT_ACCELERATION * PERIOD + 1e-9
     assert np.all(ramp[-1] == 0.0)

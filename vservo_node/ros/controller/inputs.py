@@ -29,6 +29,7 @@ from vservo_node.ros.controller.guards import guarded
 from vservo_node.ros.controller import ACTIVE_RUN
 from vservo_node.servo import MOVING_STATES, Observation
 from vservo_node.vision import image_io
+from vservo_node.ros.controller.state import ControllerState
 
 JOINT_HISTORY_S = 1.0      # joint states kept for evaluation at image times
 DEPTH_FRAMES = 4           # depth frames kept for pairing with images
@@ -114,7 +115,7 @@ def no_features() -> Observation:
     return Observation((), np.zeros((0, 2)), np.zeros((0, 2)))
 
 
-class InputCallbacks:
+class InputCallbacks(ControllerState):
     """Mixin of ControllerNode: the input subscriptions and the perception thread."""
 
     # ------------------------------------------------------------------------ subscriptions
@@ -347,7 +348,8 @@ class InputCallbacks:
     def _on_joint_state(self, msg: JointState) -> None:
         rx = time.monotonic()
         with self._lock:
-            if self.arm is None:
+            joints = self._joints
+            if self.arm is None or joints is None:
                 return
             names = set(msg.name)
             if not names & set(self.arm.joint_names):
@@ -370,7 +372,7 @@ class InputCallbacks:
                 self._joint_problem = stamp_problem
                 self._refuse_input("joints", stamp_problem)
                 return
-            self._joints.add(t, q)
+            joints.add(t, q)
             self._rx["joints"] = rx
             self._joint_problem = ""
 

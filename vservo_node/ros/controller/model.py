@@ -27,9 +27,10 @@ from vservo_node.servo import MOVING_STATES, Servo
 from vservo_node.settings import Settings, depth_settings, servo_config
 from vservo_node.vision.reference import load_reference
 from vservo_node.vision.targets import load_target
+from vservo_node.ros.controller.state import ControllerState
 
 
-class ModelBuilding:
+class ModelBuilding(ControllerState):
     """Mixin of ControllerNode: the arm model, the servo and perception."""
 
     # ------------------------------------------------------------------------ robot + servo

@@ -212,9 +212,9 @@ class ControllerNode(ParameterHandling, ModelBuilding, InputCallbacks, Publishin
             self._output_loop.stop()
         with self._lock:
             if self._commanding:     # the brake did not finish in time: the zero now
+                n = self.arm.n if self.arm is not None else 0
                 q = self._joints.latest() if self._joints is not None else None
-                self._publish_command(np.zeros(self.arm.n),
-                                      q if q is not None else np.zeros(self.arm.n))
+                self._publish_command(np.zeros(n), q if q is not None else np.zeros(n))
                 self._commanding = False
                 self.get_logger().warning(f"{why}: run still braking after {BRAKE_WAIT_S} s; "
                                           "explicit zero sent")

@@ -20,9 +20,10 @@ from vservo_node.control import frames
 from vservo_node.ros import convert
 from vservo_node.ros.controller import ACTIVE_RUN
 from vservo_node.servo import HALT_REASONS, MOVING_STATES, Servo
+from vservo_node.ros.controller.state import ControllerState
 
 
-class OutputCycle:
+class OutputCycle(ControllerState):
     """Mixin of ControllerNode: the output tick and the watchdogs."""
 
     def _on_output_tick(self) -> None:
@@ -86,9 +87,10 @@ class OutputCycle:
 
     def _end_run(self, servo: Servo, q: np.ndarray) -> None:
         """The explicit zero after a run, and the run result."""
-        self._publish_command(np.zeros(self.arm.n), q)
+        self._publish_command(np.zeros(len(q)), q)
         self._commanding = False
-        self._output.reset()
+        if self._output is not None:
+            self._output.reset()
         if servo.result is None:
             return
         result = dict(servo.result)
@@ -126,10 +128,10 @@ class OutputCycle:
         servo.halt("internal_error", self._servo_time(), f"{type(exc).__name__}: {exc}")
         cmd, _ = servo.brake_blind(self._servo_time(), self._period)
         try:
-            q = self._joints.latest()
-            self._publish_command(cmd, q if q is not None else np.zeros(self.arm.n))
+            q = self._joints.latest() if self._joints is not None else None
+            self._publish_command(cmd, q if q is not None else np.zeros(len(cmd)))
         except Exception:  # noqa: BLE001 - the plainest zero we can send
-            if self.settings.io.command_interface == "joint_velocity":
+            if self.settings.io.command_interface == "joint_velocity" and self._output:
                 self._pub_command.publish(Float64MultiArray(data=[0.0] * len(self._output.order)))
         self._commanding = servo.state in MOVING_STATES
 

@@ -25,6 +25,7 @@ from vservo_node.control.kinematics import ArmModel
 from vservo_node.ros import convert, qos
 from vservo_node.ros.controller.guards import guarded
 from vservo_node.vision import image_io
+from vservo_node.ros.controller.state import ControllerState
 
 json_safe = itf.json_safe
 
@@ -52,7 +53,7 @@ class CommandOutput:
         self.order = list(joint_order) or list(arm.joint_names)
         self._index = [self.order.index(name) for name in arm.joint_names]
         self.base_frame, self.camera_frame = base_frame, camera_frame
-        self._position = None
+        self._position: np.ndarray | None = None
 
     @staticmethod
     def check_order(joint_order, joint_names) -> None:
@@ -96,7 +97,7 @@ def command_topic_type(kind: str) -> tuple[type, str]:
         kind, (TwistStamped, itf.TOPIC_TWIST_CMD))
 
 
-class Publishing:
+class Publishing(ControllerState):
     """Mixin of ControllerNode: the publishers and what goes on them."""
 
     def _make_publishers(self) -> None:
@@ -123,6 +124,8 @@ class Publishing:
         self._publishers_made = []
 
     def _publish_command(self, cmd: np.ndarray, q: np.ndarray) -> None:
+        if self._output is None:
+            raise RuntimeError("no command output: no robot model")
         self._pub_command.publish(self._output.message(cmd, q, self._now()))
         self._command_sent = True
 

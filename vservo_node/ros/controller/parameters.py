@@ -15,6 +15,7 @@ from rclpy.parameter import Parameter
 from vservo_node import params
 from vservo_node.servo import MOVING_STATES, Servo
 from vservo_node.settings import Settings, servo_config
+from vservo_node.ros.controller.state import ControllerState
 
 # Parameters the node is built around (publishers, subscriptions, the arm model).
 READ_ONLY = frozenset({"io.sim_truth",
@@ -66,10 +67,10 @@ def descriptor(param: params.Param) -> ParameterDescriptor:
                             additional_constraints="; ".join(notes),
                             read_only=param.name in READ_ONLY,
                             dynamic_typing=param.type is not list)
-    if param.type is float and param.low is not None:
+    if param.type is float and param.low is not None and param.high is not None:
         d.floating_point_range = [FloatingPointRange(from_value=float(param.low),
                                                      to_value=float(param.high), step=0.0)]
-    elif param.type is int and param.low is not None:
+    elif param.type is int and param.low is not None and param.high is not None:
         d.integer_range = [IntegerRange(from_value=int(param.low), to_value=int(param.high),
                                         step=1)]
     return d
@@ -95,7 +96,7 @@ def plain(value):
     return list(value) if isinstance(value, (list, tuple)) or hasattr(value, "typecode") else value
 
 
-class ParameterHandling:
+class ParameterHandling(ControllerState):
     """Mixin of ControllerNode: declaration, live-change check and application."""
 
     def _declare_parameters(self) -> None:

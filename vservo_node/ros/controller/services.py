@@ -19,9 +19,10 @@ from vservo_node.ros.controller.guards import guarded_service
 from vservo_node.ros.controller.outputs import rms
 from vservo_node.servo import MOVING_STATES
 from vservo_node.vision.reference import joints_at_capture, reference_path, save_reference
+from vservo_node.ros.controller.state import ControllerState
 
 
-class SupervisorServices:
+class SupervisorServices(ControllerState):
     """Mixin of ControllerNode: the supervisor's services."""
 
     def _make_services(self) -> None:
@@ -119,7 +120,8 @@ class SupervisorServices:
             return out
         s = servo.settings
         obs, info, rx = self._last_obs if self._last_obs else (None, None, None)
-        if info is None or time.monotonic() - rx > self.settings.io.image_timeout_s:
+        if info is None or rx is None or \
+                time.monotonic() - rx > self.settings.io.image_timeout_s:
             return ["features: no fresh image has been processed yet"]
         if obs is None or len(obs.keys) < s.min_features:
             return [f"features: {info.n_matched} matched, control.min_features = "
