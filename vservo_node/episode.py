@@ -97,6 +97,9 @@ class EpisodeResult:
     # of the features seen that the taught view holds, in the order seen (what the node
     # publishes on servo/features and servo/feature_error); empty arrays for a frame without
     feature_trace: list = field(default_factory=list, repr=False)
+    # with record=True and image sensing: the taught reference (vision.reference.Reference:
+    # its image and joints), which the episode's run record keeps as the node's record does
+    reference: object | None = field(default=None, repr=False)
 
     def summary(self) -> dict:
         keys = ("converged", "reason", "time_s", "final_rms_px", "pose_error_mm",
@@ -140,6 +143,7 @@ class _Meter:
         self.record = record
         self.statuses, self.qs, self.cams, self.features = [], [], [], []
         self.cycle_ms = math.nan   # compute time of the frame since the last tick, ms
+        self.reference = None      # the taught Reference, kept with record
 
     def frame(self, t: float, obs, reference, compute_s: float = math.nan) -> None:
         """With ``record``: the features of the frame at ``t`` (s) that the taught view
@@ -204,7 +208,8 @@ class _Meter:
             camera_depth_change_max=self.depth_dev, statuses=self.statuses,
             q_trace=np.array(self.qs) if self.record else None,
             camera_trace=np.array(self.cams) if self.record else None,
-            feature_trace=self.features, **_estimated_pose_error(servo))
+            feature_trace=self.features, reference=self.reference if self.record else None,
+            **_estimated_pose_error(servo))
 
 
 def _estimated_pose_error(servo: Servo) -> dict:
@@ -487,6 +492,7 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
 
     meter = _Meter(cell.arm_model, cell.taught_judged_pose, sc.q_start,
                    values["robot.tool_point"], record, mount=cell.mount)
+    meter.reference = None if sensing == "projected" else reference
     period = 1.0 / values["io.output_rate_hz"]
     frame_period = 1.0 / sc.fps
     no_features = Observation((), np.zeros((0, 2)), np.zeros((0, 2)))

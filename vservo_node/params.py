@@ -354,6 +354,10 @@ def _mount_errors(merged: dict[str, Any]) -> list[str]:
         errors.append("robot.camera_mount fixed needs the camera's pose: robot.fixed_camera_pose"
                       " [x, y, z, qx, qy, qz, qw] in the base frame, or robot.fixed_camera_frame"
                       " (a URDF frame rigid to the base)")
+    if merged["io.command_interface"] == "camera_twist":
+        errors.append("io.command_interface camera_twist commands the camera's motion; with "
+                      "robot.camera_mount fixed the camera stands still: use joint_velocity, "
+                      "joint_trajectory or tool_twist")
     for name in ("robot.target_on_tool", "robot.fixed_camera_pose"):
         pose = merged[name]
         if len(pose) == 7 and math.sqrt(sum(v * v for v in pose[3:])) < 1e-6:

@@ -11,6 +11,7 @@ project's RunRecorder in the topics the cell and the controller publish:
 """
 from __future__ import annotations
 
+import json
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -87,9 +88,13 @@ def write_calibration_bag(root: Path, scenario, qs, rest_s=0.6, move_s=0.5) -> P
     return rec.bag_dir
 
 
-def write_run_bag(root: Path, scenario, recorder, values: dict) -> Path:
+def write_run_bag(root: Path, scenario, recorder, values: dict, perception_s=None,
+                  name: str = "run") -> Path:
     """A run record of a headless episode's ``TraceRecorder`` (controller parameters
-    ``values``: io.output_rate_hz and the rest, with the believed hand-eye)."""
+    ``values``: io.output_rate_hz and the rest, with the believed hand-eye). With
+    ``perception_s`` (one delay per frame, s) the features are logged that long after the
+    frame's capture, as a loaded node publishes them, and a status record with the frame's
+    stamp (``t``, s since the epoch like a node's clock) is logged 1 ms later."""
     trace = recorder.trace()
     names = scenario.joint_names
     T_belief = scenario.T_tool_camera_belief
@@ -98,21 +103,26 @@ def write_run_bag(root: Path, scenario, recorder, values: dict) -> Path:
               "robot.camera_frame": scenario.camera_frame, "robot.hand_eye": xyz_quat(T_belief),
               "target.file": str(scenario.target.source or scenario.target.name)}
     params = {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in params.items()}
-    with RunRecorder(root, "run", params={"/vservo": {"ros__parameters": params}},
+    with RunRecorder(root, name, params={"/vservo": {"ros__parameters": params}},
                      started=datetime(2000, 1, 1, tzinfo=timezone.utc),
-                     folder_name="run") as rec:
+                     folder_name=name) as rec:
         T = rec.typestore.types
         rec.write(itf.TOPIC_CAMERA_INFO, "sensor_msgs/msg/CameraInfo",
                   _camera_info(T, scenario.camera, 0.0), _ns(0))
         layout = T["std_msgs/msg/MultiArrayLayout"](dim=[], data_offset=0)
-        for t, xy, q in zip(trace.t, trace.xy, trace.q):
+        for i, (t, xy, q) in enumerate(zip(trace.t, trace.xy, trace.q)):
             uv = scenario.camera.normalized_to_pixels(xy)
             rec.write(itf.TOPIC_JOINT_STATES, "sensor_msgs/msg/JointState",
                       _joints(T, names, q, t), _ns(t))
+            late = 0.0 if perception_s is None else float(perception_s[i])
             rec.write(itf.TOPIC_FEATURES, "std_msgs/msg/Float64MultiArray",
                       T["std_msgs/msg/Float64MultiArray"](layout=layout,
                                                           data=np.asarray(uv, float).ravel()),
-                      _ns(t))
+                      _ns(t + late))
+            if perception_s is not None:
+                status = {"t": T0_NS * 1e-9 + float(t), "state": "servoing"}
+                rec.write(itf.TOPIC_STATUS, "std_msgs/msg/String",
+                          T["std_msgs/msg/String"](data=json.dumps(status)), _ns(t + late + 1e-3))
         for t, dq in zip(trace.t_cmd, trace.dq_cmd):
             rec.write(itf.TOPIC_JOINT_VELOCITY_CMD, "std_msgs/msg/Float64MultiArray",
                       T["std_msgs/msg/Float64MultiArray"](layout=layout,

@@ -216,6 +216,8 @@ def test_mount_from_params():
     ({"robot.target_on_tool": [0, 0, 0, 0, 0, 0, 1]}, "needs the camera's pose"),
     ({"robot.target_on_tool": [0, 0, 0, 0, 0, 0, 0], "robot.fixed_camera_frame": "stand"},
      "zero norm"),
+    ({"robot.target_on_tool": [0, 0, 0, 0, 0, 0, 1], "robot.fixed_camera_frame": "stand",
+      "io.command_interface": "camera_twist"}, "the camera stands still"),
 ])
 def test_schema_refuses_an_incomplete_fixed_mount(change, message):
     result = params.validate({"robot.camera_mount": "fixed",

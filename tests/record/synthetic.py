@@ -18,6 +18,7 @@ import numpy as np
 from rosbags.typesys import Stores, get_typestore
 
 from vservo_node import interface as itf
+from vservo_node.control import frames
 from vservo_node.control.kinematics import load_robot
 from vservo_node.paths import config_dir
 
@@ -43,6 +44,11 @@ class Spec:
     velocity_scale: float = 0.5        # limits.joint_velocity_scale
     tool_speed_limit: float = 0.10     # limits.tool_linear_speed, m/s
     halt_at: float | None = None       # s after start: braking (image_stale), halted 0.2 s later
+    # the node's pose-error estimate: None records none (an older node); else status records
+    # carry pose_error_mm / _deg = (1 + estimate_bias) x the true camera error to the goal and
+    # the result the last of them as estimated_pose_error_*
+    estimate_bias: float | None = None
+    truth: bool = True                 # record the simulator's truth topics
     acted: dict = field(default_factory=lambda: {"joint_velocity": 10, "joint_acceleration": 3})
     width: int = 64
     height: int = 48
@@ -169,8 +175,10 @@ def messages(spec: Spec, ns: str = "", robot_description: bool = False):
     add(itf.TOPIC_CAMERA_INFO, "sensor_msgs/msg/CameraInfo", _camera_info(T0_NS, spec), 0.0)
     if robot_description:
         add(itf.TOPIC_ROBOT_DESCRIPTION, "std_msgs/msg/String", _string(URDF_PATH.read_text()), 0.0)
-    add(itf.TOPIC_SIM_TAUGHT_POSE, "geometry_msgs/msg/PoseStamped",
-        _pose(T0_NS, arm.camera_pose(home)), 0.0)
+    if spec.truth:
+        add(itf.TOPIC_SIM_TAUGHT_POSE, "geometry_msgs/msg/PoseStamped",
+            _pose(T0_NS, arm.camera_pose(home)), 0.0)
+    estimate = None
     names = list(arm.joint_names) + list(FINGERS)
     for i in range(int(t_end * spec.joint_hz) + 1):
         t = i / spec.joint_hz
@@ -209,6 +217,11 @@ def messages(spec: Spec, ns: str = "", robot_description: bool = False):
                   "damping": 0.0, "speed_scale": 1.0, "limits_acted": acted,
                   "limit_counts": dict(counts), "cycle_ms": float(rng.uniform(2.0, 6.0)),
                   "dq": list(qdot)}
+        if spec.estimate_bias is not None:
+            moved, turned = frames.pose_error(arm.camera_pose(home), arm.camera_pose(q))
+            estimate = ((1 + spec.estimate_bias) * 1e3 * moved,
+                        (1 + spec.estimate_bias) * math.degrees(turned))
+            record.update(pose_error_mm=estimate[0], pose_error_deg=estimate[1])
         add(itf.TOPIC_STATUS, "std_msgs/msg/String", _string(json.dumps(record)), t)
         if t >= ts:
             add(itf.TOPIC_FEATURE_ERROR, "std_msgs/msg/Float64MultiArray", _array(err.ravel()), t)
@@ -218,13 +231,16 @@ def messages(spec: Spec, ns: str = "", robot_description: bool = False):
             add(itf.TOPIC_CAMERA_TWIST, "geometry_msgs/msg/TwistStamped",
                 _twist(t_ns, v_cam, "camera_optical_frame"), t)
             add(itf.TOPIC_JOINT_VELOCITY_CMD, "std_msgs/msg/Float64MultiArray", _array(qdot), t)
-        add(itf.TOPIC_SIM_CAMERA_POSE_TRUTH, "geometry_msgs/msg/PoseStamped",
-            _pose(t_ns, arm.camera_pose(q)), t)
+        if spec.truth:
+            add(itf.TOPIC_SIM_CAMERA_POSE_TRUTH, "geometry_msgs/msg/PoseStamped",
+                _pose(t_ns, arm.camera_pose(q)), t)
         if i % round(spec.status_hz / spec.image_hz) == 0:
             add(itf.TOPIC_IMAGE, "sensor_msgs/msg/Image", _image(t_ns, spec, uv), t)
     result = {"run_id": "synthetic-1", "converged": spec.halt_at is None,
               "reason": "" if spec.halt_at is None else "image_stale", "time_s": t_end - ts,
               "final_rms_px": rms, "final_pose_error_mm": None, "final_pose_error_deg": None}
+    if estimate is not None:
+        result.update(estimated_pose_error_mm=estimate[0], estimated_pose_error_deg=estimate[1])
     add(itf.TOPIC_RUN_RESULT, "std_msgs/msg/String", _string(json.dumps(result)), t_end)
     out.sort(key=lambda m: m[3])
     return out, result

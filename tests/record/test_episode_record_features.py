@@ -79,6 +79,9 @@ def test_failed_episode_records_features_and_errors_of_every_frame(failed):
             assert run.status["rms_px"][k] == pytest.approx(value, rel=1e-9)
             compared += 1
     assert compared >= 10
+    # the taught reference is kept with its image and the scenario's taught joints
+    assert run.reference["joint_positions"] == dict(zip(sc.joint_names, sc.q_taught.tolist()))
+    assert (run.reference_path.parent / run.reference["image"]).is_file()
     # the record's cycle times are the measured ones of the frames, not a placeholder
     cycle = run.status["cycle_ms"][np.isfinite(run.status["cycle_ms"])]
     assert len(cycle) == len(result.feature_trace) and np.all(cycle > 0)
@@ -88,7 +91,7 @@ def test_failed_episode_report_has_the_sections_of_a_converged_one(failed, tmp_p
     _, _, folder = failed
     failed_page, m = write_report(folder)
     assert m["verdict"] == "halted" and m["reason"] == "run_timeout"
-    _, ok_result, ok_folder = _record(tmp_path, "converged", {}, "projected")
+    _, ok_result, ok_folder = _record(tmp_path, "converged", {}, "image")
     assert ok_result.converged
     ok_page, ok = write_report(ok_folder)
     assert ok["verdict"] == "converged"
@@ -96,4 +99,6 @@ def test_failed_episode_report_has_the_sections_of_a_converged_one(failed, tmp_p
     assert _sections(failed_html) == _sections(ok_html)
     assert "Not drawn" not in failed_html and "Not drawn" not in ok_html
     assert "detected features (green, numbered)" in failed_html
+    # the image episode keeps its taught reference as the recorder does: the taught view shows
+    assert "the taught view from the reference copied into the record" in failed_html
     assert "error of each feature" in failed_html

@@ -21,3 +21,22 @@ def test_scenario_controller_entries_reach_the_node_parameters(tmp_path: Path):
     plain = load_params_file(controller_overrides(load_scenario("vs6_tray_offset"),
                                                   tmp_path / "ref.yaml", tmp_path))
     assert "control.scheme" not in plain
+
+
+def test_a_fixed_camera_scenario_passes_its_believed_stand_and_target(tmp_path: Path):
+    # vs6_stand_combined: the controller is told the stand and the board off (controller_belief)
+    import numpy as np
+
+    from vservo_node.control.mounting import mount_from_params
+    from vservo_node.params import validate
+
+    scenario = load_scenario("vs6_stand_combined")
+    values = load_params_file(controller_overrides(scenario, tmp_path / "ref.yaml", tmp_path))
+    assert values["robot.camera_mount"] == "fixed" and "robot.hand_eye" not in values
+    checked = validate({**values, "limits.joint_acceleration": [3.0]})
+    assert checked.ok, checked.errors
+    mount = mount_from_params(checked.values, scenario.arm_model("belief"))
+    belief = scenario.mount("belief")
+    np.testing.assert_allclose(mount.T_base_camera, belief.T_base_camera, atol=1e-12)
+    np.testing.assert_allclose(mount.T_tool_target, belief.T_tool_target, atol=1e-12)
+    assert not np.allclose(mount.T_base_camera, scenario.mount("true").T_base_camera)

@@ -81,3 +81,23 @@ def test_bag_holds_the_whole_run_from_its_first_status(demo):
     assert records[0]["state"] == "servoing" and records[0]["run_id"] == result["run_id"]
     end = next(r for r in records if r["state"] in ("converged", "halted"))
     assert end["t"] - records[0]["t"] == pytest.approx(result["time_s"], abs=SPAN_TOLERANCE_S)
+
+
+def test_bag_keeps_the_taught_reference_with_its_image_and_joints(demo):
+    """The demo teaches on the simulated arm at the scenario's taught joints; the recorder
+    copies the reference and its image into the bag, and the report shows that view."""
+    import numpy as np
+
+    from vservo_node.sim import load_scenario
+    from vservo_node.vision.reference import load_reference
+
+    _, own, bag = demo
+    (copy,) = (bag / "reference").glob("*.yaml")
+    scenario = load_scenario(SCENARIO)
+    reference = load_reference(copy, scenario.target)
+    assert reference.notes == () and reference.image.shape == (480, 640, 3)
+    assert (copy.parent / copy.with_suffix(".png").name).is_file()
+    names = scenario.arm_model("true").joint_names
+    np.testing.assert_array_equal(reference.joints_for(names), scenario.q_taught)
+    report = (bag / "report" / "report.html").read_text()
+    assert "the taught view from the reference copied into the record" in report

@@ -38,6 +38,7 @@ from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
 from vservo_node.control import frames
+from vservo_node.calib.trace import aligned
 from vservo_node.control.interaction import point_interaction_matrix
 
 LARGE_ERROR_DEG = 10.0
@@ -48,6 +49,7 @@ TRANSLATION_OBSERVABLE_MM = 10.0
 # was used. Common practice, no source.
 MIN_FLOW_PX = 0.5
 MAX_SPAN_S = 0.5
+ALIGN_ROUNDS = 3
 
 
 @dataclass
@@ -55,7 +57,8 @@ class HandEyeCheck:
     """The hand-eye error ``E`` (true = believed @ E) estimated from a run: its rotation
     vector (deg, believed camera axes) and angle with one standard deviation, its translation
     (mm) with one standard deviation and whether it is observable; the RMS residual before and
-    after the fit (px per feature coordinate per frame pair); the corrected hand-eye."""
+    after the fit (px per feature coordinate per frame pair); the corrected hand-eye (the
+    translation corrected only when observable)."""
 
     rotation_deg: float
     rotation_std_deg: float
@@ -68,6 +71,7 @@ class HandEyeCheck:
     n_pairs: int
     residual_before_px: float
     residual_after_px: float
+    image_lag_s: float = 0.0
 
     @property
     def large(self) -> bool:
@@ -80,6 +84,8 @@ class HandEyeCheck:
                  "mm" if self.translation_observable else
                  f"translation not observable in this run (+- {self.translation_std_mm:.0f} mm)")
         text = f"{rot}; {trans}; from {self.n_pairs} frame pairs"
+        if self.image_lag_s:
+            text += f" (features {1e3 * self.image_lag_s:.1f} ms after the joints, aligned)"
         if self.large:
             text += (f". An error this large (>= {LARGE_ERROR_DEG:g} deg) is the likely cause of "
                      "a wrong_direction halt or a slow convergence: calibrate the hand-eye "
@@ -96,7 +102,7 @@ class HandEyeCheck:
                 "translation_observable": self.translation_observable,
                 "corrected_hand_eye": [*map(float, self.corrected[:3, 3]),
                                        *map(float, frames.matrix_to_quat(self.corrected[:3, :3]))],
-                "n_pairs": self.n_pairs, "residual_before_px": self.residual_before_px,
+                "n_pairs": self.n_pairs, "image_lag_s": self.image_lag_s, "residual_before_px": self.residual_before_px,
                 "residual_after_px": self.residual_after_px, "large": self.large,
                 "verdict": self.verdict()}
 
@@ -144,17 +150,45 @@ def frame_pairs(trace, min_flow_px: float = MIN_FLOW_PX, max_span_s: float = MAX
 
 
 def check_hand_eye(trace, min_flow_px: float = MIN_FLOW_PX) -> HandEyeCheck:
-    """Estimate the hand-eye error from a run's trace (module doc)."""
+    """Estimate the hand-eye error from a run's trace (module doc). A recorded trace is first
+    aligned in time (``trace.aligned``: features are published after capture); the lag and
+    the error are then estimated in turn (``ALIGN_ROUNDS``), each with the other's latest."""
+    to_camera = None
+    for _ in range(ALIGN_ROUNDS if trace.joint_t is not None else 1):
+        current, lag = aligned(trace, to_camera)
+        fit, ds, cov, r0 = _fit(current, min_flow_px)
+        to_camera = frames.twist_transform(frames.invert(_E_of(fit.x))) @ \
+            trace.arm.camera_from_tool()
+    E = _E_of(fit.x)
+    rot_std = math.degrees(math.sqrt(max(np.trace(cov[:3, :3]), 0.0)))
+    trans_std = 1e3 * math.sqrt(max(np.trace(cov[3:, 3:]), 0.0))
+    X_hat = trace.arm.T_tool_camera
+    observable = trans_std < TRANSLATION_OBSERVABLE_MM
+    # the correction applies the translation only where the run showed it
+    applied = E if observable else frames.transform(E[:3, :3], np.zeros(3))
+    return HandEyeCheck(
+        rotation_deg=math.degrees(float(np.linalg.norm(fit.x[:3]))), rotation_std_deg=rot_std,
+        rotvec_deg=np.degrees(fit.x[:3]), translation_mm=1e3 * float(np.linalg.norm(fit.x[3:])),
+        translation_std_mm=trans_std, translation_observable=observable, E=E,
+        corrected=X_hat @ applied, n_pairs=len(ds),
+        residual_before_px=float(np.sqrt(np.mean(r0 ** 2))),
+        residual_after_px=float(np.sqrt(np.mean(fit.fun ** 2))), image_lag_s=float(lag))
+
+
+def _E_of(p):
+    return frames.transform(Rotation.from_rotvec(p[:3]).as_matrix(), p[3:])
+
+
+def _fit(trace, min_flow_px):
+    """(least-squares fit of E's 6 parameters, observed pair motions, covariance, residuals
+    at E = I)."""
     ds, Ls, Vt, group = frame_pairs(trace, min_flow_px)
     V_hat = Vt @ trace.arm.camera_from_tool().T          # believed camera twists (S, 6)
     f = trace.focal_px
     starts = np.flatnonzero(np.r_[True, group[1:] != group[:-1]])
 
-    def E_of(p):
-        return frames.transform(Rotation.from_rotvec(p[:3]).as_matrix(), p[3:])
-
     def residuals(p):
-        A = frames.twist_transform(frames.invert(E_of(p)))
+        A = frames.twist_transform(frames.invert(_E_of(p)))
         pred = np.add.reduceat(np.einsum("kij,kj->ki", Ls, V_hat @ A.T), starts, axis=0)
         return (pred - ds).ravel() * f
 
@@ -163,15 +197,4 @@ def check_hand_eye(trace, min_flow_px: float = MIN_FLOW_PX) -> HandEyeCheck:
     dof = max(fit.fun.size - 6, 1)
     s2 = float(fit.fun @ fit.fun) / dof
     cov = np.linalg.pinv(fit.jac.T @ fit.jac) * s2
-    E = E_of(fit.x)
-    rot_std = math.degrees(math.sqrt(max(np.trace(cov[:3, :3]), 0.0)))
-    trans_std = 1e3 * math.sqrt(max(np.trace(cov[3:, 3:]), 0.0))
-    X_hat = trace.arm.T_tool_camera
-    return HandEyeCheck(
-        rotation_deg=math.degrees(float(np.linalg.norm(fit.x[:3]))), rotation_std_deg=rot_std,
-        rotvec_deg=np.degrees(fit.x[:3]), translation_mm=1e3 * float(np.linalg.norm(fit.x[3:])),
-        translation_std_mm=trans_std,
-        translation_observable=trans_std < TRANSLATION_OBSERVABLE_MM, E=E,
-        corrected=X_hat @ E, n_pairs=len(ds),
-        residual_before_px=float(np.sqrt(np.mean(r0 ** 2))),
-        residual_after_px=float(np.sqrt(np.mean(fit.fun ** 2))))
+    return fit, ds, cov, r0

@@ -24,8 +24,10 @@ first-order lag (``LAGS_S``, 5 ms steps) and keeps the lag and delay of the best
 the delay reported is their sum, the figure to compare with a simulated cell's
 ``command_latency_s + velocity_lag_s``.
 
-The ``control.loop_delay_s`` to configure is that delay plus one output period (a new image
-acts on the command at the next output tick at the latest). The gain bound printed with it:
+The ``control.loop_delay_s`` to configure is that delay, plus the median time from capture
+to the features (a record whose status records carry the image stamps: calib/trace.py,
+``capture_times``; 0 for a headless episode, which perceives at the frame time), plus one
+output period (a new image acts on the command at the next output tick at the latest). The gain bound printed with it:
 
 - the node's own check (params.py, ``DELAY_GAIN_BOUND``): ``gain x (loop delay + 1/camera
   rate) < 0.3`` (common practice, no source);
@@ -72,6 +74,8 @@ class DelayEstimate:
     n_pairs: int
     latency_s: float = math.nan
     lag_s: float = 0.0
+    perception_s: float = 0.0          # median capture -> features published (records)
+    perception_p95_s: float = 0.0
 
     @property
     def loop_s(self) -> float:
@@ -100,8 +104,12 @@ class DelayEstimate:
         if math.isfinite(self.drives_s):
             out.append(f"command -> reported joint motion: {1e3 * self.drives_s:.1f} ms (images "
                        f"lag the joint states by {1e3 * (self.delay_s - self.drives_s):.1f} ms)")
-        out.append(f"control.loop_delay_s: {self.loop_delay_s:.3f}   (delay + one output period "
-                   f"{1e3 * self.output_period_s:.1f} ms)")
+        if self.perception_s:
+            out.append(f"capture -> features published: median {1e3 * self.perception_s:.1f} ms "
+                       f"(95th percentile {1e3 * self.perception_p95_s:.1f} ms)")
+        out.append(f"control.loop_delay_s: {self.loop_delay_s:.3f}   (delay"
+                   + (" + median perception" if self.perception_s else "")
+                   + f" + one output period {1e3 * self.output_period_s:.1f} ms)")
         out.append(f"gain bound with the frame period {1e3 * self.frame_period_s:.1f} ms: "
                    f"max(control.gain_near, gain_far) < {self.gain_bound_node:.2f} 1/s (the "
                    f"node's check, gain x loop < {DELAY_GAIN_BOUND}); no oscillation below "
@@ -117,6 +125,7 @@ class DelayEstimate:
                 "drives_s": self.drives_s, "loop_delay_s": self.loop_delay_s,
                 "output_period_s": self.output_period_s, "frame_period_s": self.frame_period_s,
                 "latency_s": self.latency_s, "lag_s": self.lag_s,
+                "perception_s": self.perception_s, "perception_p95_s": self.perception_p95_s,
                 "gain_bound_node": self.gain_bound_node,
                 "gain_bound_no_oscillation": self.gain_bound_no_oscillation,
                 "gain_bound_stable": self.gain_bound_stable, "n_pairs": self.n_pairs,
@@ -234,5 +243,9 @@ def estimate_delay(trace, output_period_s: float, frame_period_s: float | None =
         drives = math.nan
     frame = (float(np.median(np.diff(trace.t))) if frame_period_s is None
              else float(frame_period_s))
-    return DelayEstimate(delay, corr, drives, max(delay, 0.0) + output_period_s,
-                         float(output_period_s), frame, len(ds), latency, lag)
+    perception = p95 = 0.0
+    if trace.perception_s is not None and np.isfinite(trace.perception_s).any():
+        perception = float(np.nanmedian(trace.perception_s))
+        p95 = float(np.nanpercentile(trace.perception_s, 95))
+    return DelayEstimate(delay, corr, drives, max(delay, 0.0) + perception + output_period_s,
+                         float(output_period_s), frame, len(ds), latency, lag, perception, p95)

@@ -372,21 +372,23 @@ def matrix_to_rpy(R) -> np.ndarray:
 
 
 def params_snippet(cal: Calibration, node: str = "vservo") -> str:
-    """The result as a parameter file (ROS 2 layout, ``/**/<node>`` like config/vservo_sim.yaml).
-    Hand: ``robot.hand_eye`` in the schema's layout (vservo_node/params.py). Fixed: the camera's
-    pose in the base frame in the same layout under a comment (the fixed mounting's parameter
-    belongs to the mounting's own code)."""
-    values = ", ".join(f"{v:.6f}" for v in xyz_quat(cal.best.X))
+    """The result as a parameter file (ROS 2 layout, ``/**/<node>`` like config/vservo_sim.yaml)
+    in the schema's layout (vservo_node/params.py): hand: ``robot.hand_eye``; fixed:
+    ``robot.camera_mount: fixed``, ``robot.fixed_camera_pose`` (the camera in the base frame)
+    and ``robot.target_on_tool`` (the target on the tool, solved with it)."""
+    def seven(T):
+        return ", ".join(f"{v:.6f}" for v in xyz_quat(T))
+
     head = (f"# hand-eye from {cal.spread.n_samples} samples ({cal.mounting} mounting): "
             f"reprojection {cal.best.reprojection_px:.3f} px RMS, +-{cal.best.std_mm:.3f} mm, "
-            f"+-{cal.best.std_deg:.4f} deg (1 sigma)\n")
+            f"+-{cal.best.std_deg:.4f} deg (1 sigma)\n"
+            f"/**/{node}:\n  ros__parameters:\n    robot:\n")
     if cal.mounting == "hand":
-        return (head + f"/**/{node}:\n  ros__parameters:\n    robot:\n"
-                f"      hand_eye: [{values}]   # x, y, z (m), qx, qy, qz, qw of T_tool_camera\n")
-    return (head + "# T_base_camera [x, y, z, qx, qy, qz, qw] (m): the fixed camera's pose in "
-            f"the base frame\nT_base_camera: [{values}]\n"
-            "# T_tool_target: the target's pose on the tool\n"
-            f"T_tool_target: [{', '.join(f'{v:.6f}' for v in xyz_quat(cal.best.W))}]\n")
+        return (head + f"      hand_eye: [{seven(cal.best.X)}]   # x, y, z (m), qx, qy, qz, qw "
+                "of T_tool_camera\n")
+    return (head + "      camera_mount: fixed\n"
+            f"      fixed_camera_pose: [{seven(cal.best.X)}]   # T_base_camera\n"
+            f"      target_on_tool: [{seven(cal.best.W)}]   # T_tool_target\n")
 
 
 def urdf_snippet(cal: Calibration, parent: str, child: str,

@@ -103,25 +103,36 @@ def propose_views(T_base_camera, distance: float, n: int, seed: int = 0,
 
 def samples_from_sim(scenario, n: int = 12, seed: int = 0, hand_eye: str = "belief",
                      tilt_deg: float = 20.0, twist_deg: float = 45.0) -> tuple[list, dict]:
-    """Samples of the simulated cell, headless: the arm is put at joints that bring the camera
-    (as the controller believes it, ``hand_eye``) to each of ``propose_views`` around the
-    taught view, the true camera renders, the image is perceived. Returns (samples, info) with
-    the views that gave no sample and why. ``scenario``: a name, path or ``sim.Scenario``."""
+    """Samples of the simulated cell, headless: the arm is put at joints that bring the view
+    to each of ``propose_views`` around the taught view as the controller believes the
+    geometry (``hand_eye``: ``belief`` or ``true``); the true camera renders, the image is
+    perceived. A wrist camera moves with the tool to the proposed camera poses; with a fixed
+    camera (scenario ``mount``) the tool carries the target to where a wrist camera at those
+    poses would have seen it. Returns (samples, info) with the views that gave no sample and
+    why, and ``mounting`` (hand or fixed). ``scenario``: a name, path or ``sim.Scenario``."""
     from vservo_node.sim import Scenario, SimCell, load_scenario
     from vservo_node.sim.ik import solve_camera_pose
     from vservo_node.vision import image_io
 
     sc = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
     cell = SimCell(sc)
-    believed = sc.arm_model(hand_eye)
-    T_taught = believed.camera_pose(sc.q_taught)
-    distance = float(np.linalg.norm(
-        (frames.invert(T_taught) @ sc.T_base_target)[:3, 3]))
+    fixed = sc.mount(hand_eye)
+    believed = sc.arm_model(hand_eye if fixed is None else "urdf")
+    if fixed is None:
+        T_view = believed.camera_pose(sc.q_taught)                 # the taught camera
+        T_ct = frames.invert(T_view) @ sc.T_base_target
+    else:
+        T_view = np.eye(4)                          # views relative to the taught camera
+        T_ct = fixed.T_camera_target(believed, sc.q_taught)
+        believed.set_hand_eye(np.eye(4))            # IK on the tool frame itself
+    distance = float(np.linalg.norm(T_ct[:3, 3]))
     samples, skipped = [], []
-    q_seed = sc.q_taught
-    for k, view in enumerate(propose_views(T_taught, distance, n, seed, tilt_deg, twist_deg)):
+    for k, view in enumerate(propose_views(T_view, distance, n, seed, tilt_deg, twist_deg)):
+        goal = view if fixed is None else (
+            fixed.T_base_camera @ frames.invert(view) @ T_ct
+            @ frames.invert(fixed.T_tool_target))
         try:
-            q = solve_camera_pose(believed, view, q_seed, sc.q_taught)
+            q = solve_camera_pose(believed, goal, sc.q_taught, sc.q_taught)
         except (ValueError, RuntimeError) as exc:
             skipped.append((k, f"no joint solution: {exc}"))
             continue
@@ -137,7 +148,8 @@ def samples_from_sim(scenario, n: int = 12, seed: int = 0, hand_eye: str = "beli
             samples.append(make_sample(believed, reported, bgr, sc.target, sc.camera, t))
         except NoTargetPose as exc:
             skipped.append((k, str(exc)))
-    return samples, {"skipped": skipped, "views": n}
+    return samples, {"skipped": skipped, "views": n,
+                     "mounting": "hand" if fixed is None else "fixed"}
 
 
 # ----------------------------------------------------------------------------- bag

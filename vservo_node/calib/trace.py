@@ -27,7 +27,10 @@ class Trace:
     """``t`` (F,) s; ``xy`` (F, N, 2) normalized; ``depth`` (F, N) m (NaN unknown); ``q``
     (F, n) reported joints at the frame times, chain order; ``t_cmd`` (C,) s and ``dq_cmd``
     (C, n) rad/s, each held until the next; ``focal_px``; ``arm``: ArmModel with the hand-eye
-    the controller believed."""
+    the controller believed. ``joint_t`` (J,), ``joint_q`` (J, n): the joint states as
+    recorded (a bag), for :func:`aligned`; None when ``q`` is already at the frames' capture
+    times (a headless episode). ``perception_s``: how long after capture each frame's
+    features were published (a bag whose status records carry the image stamps), else None."""
 
     t: np.ndarray
     xy: np.ndarray
@@ -38,6 +41,9 @@ class Trace:
     focal_px: float
     arm: object
     source: str = ""
+    joint_t: np.ndarray | None = None
+    joint_q: np.ndarray | None = None
+    perception_s: np.ndarray | None = None   # per frame: capture -> features published, s
 
     @property
     def n_frames(self) -> int:
@@ -133,7 +139,9 @@ def trace_from_run(run, arm=None, camera=None, target=None) -> Trace:
     if keep.sum() < 3:
         raise ValueError(f"fewer than 3 frames matched every feature ({full // 2}) of the "
                          "reference")
-    t = run.features.t[keep]
+    captured = capture_times(run)
+    t = captured[keep]
+    perception = (run.features.t - captured)[keep]
     uv = values[keep][:, :full].reshape(-1, full // 2, 2)
     xy = np.array([camera.pixels_to_normalized(p) for p in uv])
     depth = np.full(xy.shape[:2], np.nan)
@@ -174,4 +182,130 @@ def trace_from_run(run, arm=None, camera=None, target=None) -> Trace:
             raise ValueError(f"io.command_joint_order {order} does not name the chain {names}")
         dq_cmd = dq_cmd[:, [order.index(n) for n in names]]
     return Trace(t, xy, depth, q, run.joint_cmd.t, dq_cmd[:, :len(names)],
-                 float(0.5 * (camera.K[0, 0] + camera.K[1, 1])), arm, str(run.path))
+                 float(0.5 * (camera.K[0, 0] + camera.K[1, 1])), arm, str(run.path),
+                 run.joint_t[ok], jq[ok],
+                 perception if np.any(np.abs(perception) > 1e-9) else None)
+
+
+# a features message and the status record of its frame are published within this of each
+# other (the next output tick, 8 ms at 125 Hz, plus transport); common practice, no source
+STATUS_MATCH_S = 0.015
+
+
+def capture_times(run) -> np.ndarray:
+    """The capture time of each ``servo/features`` message on the record's clock.
+
+    Features are logged when published, after perception, whose duration varies with the
+    load (measured: 18-168 ms after capture on a loaded 2-core machine). The node's status
+    record of each frame carries the image's stamp (``t``) and is published at the next
+    output tick: for each features message the status record logged nearest to it (within
+    ``STATUS_MATCH_S``) with a newer stamp gives its capture time. The other messages
+    keep their log time less the median lag of the matched ones; when too few match (another
+    recorder, a clock other than the log's), :func:`regular_times` of the log times."""
+    L = np.asarray(run.features.t, dtype=float)
+    t_status = run.status.get("t") if run.status else None
+    if t_status is None or len(run.status_t) == 0 or len(L) == 0:
+        return regular_times(L)
+    stamps = np.asarray(t_status, dtype=float) - run.start_ns * 1e-9
+    logs = np.asarray(run.status_t, dtype=float)
+    # the node sets a frame's status and publishes its features; its output thread publishes
+    # the status at its next tick, before or after the features: each features message takes
+    # the status record logged nearest to it whose stamp is newer than the last one taken
+    out = np.full(len(L), np.nan)
+    last = -np.inf
+    for k, Lk in enumerate(L):
+        near = np.flatnonzero((np.abs(logs - Lk) <= STATUS_MATCH_S) & (stamps > last)
+                              & (stamps < Lk) & (Lk - stamps < 0.5))
+        if len(near):
+            i = near[np.argmin(np.abs(logs[near] - Lk))]
+            out[k] = last = float(stamps[i])
+    ok = np.isfinite(out)
+    if ok.sum() < 0.5 * len(L):
+        return regular_times(L)
+    out = np.where(ok, out, L - float(np.median(L[ok] - out[ok])))
+    # a frame's stamp cannot come before the previous frame's: keep the order
+    return np.maximum.accumulate(out)
+
+
+def regular_times(t) -> np.ndarray:
+    """Frame times without the jitter of when each was published: a camera takes frames at a
+    steady rate, so the recorded times (publication after perception, whose duration varies
+    by milliseconds) are replaced by the straight line ``a + b k`` fitted over the frame
+    numbers ``k`` (frames dropped leave gaps in ``k``). Kept as recorded when they do not fit
+    a steady rate (residuals beyond a quarter period). Common practice, no source."""
+    t = np.asarray(t, dtype=float)
+    if len(t) < 10:
+        return t
+    period = float(np.median(np.diff(t)))
+    if not period > 0:
+        return t
+    k = np.round((t - t[0]) / period)
+    A = np.column_stack([np.ones_like(k), k])
+    coef, *_ = np.linalg.lstsq(A, t, rcond=None)
+    fitted = A @ coef
+    if np.abs(fitted - t).max() > 0.25 * period or len(np.unique(k)) != len(k):
+        return t
+    return fitted
+
+
+# how far the image features may lag (or lead) the joint states in a record, s
+LAG_SEARCH_S = (-0.05, 0.2)
+
+
+def image_lag(trace, to_camera=None) -> tuple[float, float]:
+    """``(lag s, correlation)``: how long after the joint motion the recorded features show it.
+
+    In a record the features carry the time they were published (after the image was
+    captured, transported and perceived) while the joint states carry theirs; pairing them as
+    recorded compares feature motion with a later joint motion. The lag is the shift of the
+    joint states that best correlates the feature motion they predict (URDF chain, believed
+    hand-eye, interaction matrix) with the motion seen, on a 1 ms grid refined by a parabola
+    (as calib/delay.py). ``to_camera``: the tool-to-camera twist transform to predict with
+    (default the believed hand-eye's); a hand-eye error turns the predicted motion, which
+    biases the lag a little, so the check alternates the two estimates."""
+    from vservo_node.calib.delay import GRID_S, _search
+    from vservo_node.control.interaction import point_interaction_matrix
+
+    if trace.joint_t is None:
+        return 0.0, math.nan
+    if to_camera is None:
+        to_camera = trace.arm.camera_from_tool()
+    Ms, ds, ta, tb = [], [], [], []
+    for k in range(trace.n_frames - 1):
+        xy_mid = 0.5 * (trace.xy[k] + trace.xy[k + 1])
+        Z = 0.5 * (trace.depth[k] + trace.depth[k + 1])
+        q_mid = 0.5 * (trace.q[k] + trace.q[k + 1])
+        if not (np.isfinite(xy_mid).all() and np.isfinite(Z).all() and np.all(Z > 0)
+                and np.isfinite(q_mid).all()):
+            continue
+        Ms.append(point_interaction_matrix(xy_mid, Z) @ to_camera @ trace.arm.jacobian_tool(q_mid))
+        ds.append((trace.xy[k + 1] - trace.xy[k]).ravel())
+        ta.append(trace.t[k])
+        tb.append(trace.t[k + 1])
+    if len(ds) < 3:
+        raise ValueError(f"{len(ds)} frame pairs with all features and depths; expected 3 or "
+                         "more")
+    Ms, ds, ta, tb = np.array(Ms), np.array(ds), np.array(ta), np.array(tb)
+
+    def joints(t):
+        return np.column_stack([np.interp(t, trace.joint_t, trace.joint_q[:, j])
+                                for j in range(trace.joint_q.shape[1])])
+
+    def predicted(lag):
+        return np.einsum("kij,kj->ki", Ms, joints(tb - lag) - joints(ta - lag))
+
+    taus = np.arange(LAG_SEARCH_S[0], LAG_SEARCH_S[1] + GRID_S / 2, GRID_S)
+    return _search(ds, predicted, taus)
+
+
+def aligned(trace, to_camera=None):
+    """``(trace, lag s)``: the trace with its joints re-sampled ``lag`` earlier than each frame's
+    recorded time (:func:`image_lag`), so each frame meets the joints of its capture."""
+    import dataclasses
+
+    lag, _ = image_lag(trace, to_camera)
+    if trace.joint_t is None or lag == 0.0:
+        return trace, lag
+    q = np.column_stack([np.interp(trace.t - lag, trace.joint_t, trace.joint_q[:, j])
+                         for j in range(trace.joint_q.shape[1])])
+    return dataclasses.replace(trace, q=q), lag

@@ -38,7 +38,7 @@ def register(subparsers) -> None:
     c.add_argument("--out", required=True, help="samples file to write (YAML)")
     c.add_argument("--mounting", choices=("hand", "fixed"), default="hand",
                    help="hand: camera on the tool (default); fixed: camera in the cell, "
-                   "target on the tool")
+                   "target on the tool (--scenario: the scenario's)")
     c.add_argument("--target", help="target file (shipped name or path); default: the "
                    "scenario's, else tray_dots")
     c.add_argument("--urdf", help="URDF file (default: the bag's robot_description)")
@@ -109,13 +109,14 @@ def _collect(args) -> int:
             from vservo_node.sim import load_scenario
 
             sc = load_scenario(args.scenario)
-            if args.mounting != "hand":
-                raise ValueError("--scenario collects for the hand mounting only (the "
-                                 "simulated cell has no fixed camera here)")
             samples, info = cs.samples_from_sim(sc, args.views, args.seed)
             for k, why in info["skipped"]:
                 print(f"  view {k}: no sample ({why})")
-            arm, camera = sc.arm_model("belief"), sc.camera
+            if info["mounting"] != args.mounting:
+                print(f"  {sc.name} has a {info['mounting']} camera: --mounting "
+                      f"{info['mounting']}")
+                args.mounting = info["mounting"]
+            arm, camera = sc.arm_model("urdf" if sc.mount() else "belief"), sc.camera
         elif args.bag:
             arm = _arm_for_bag(args)
             target = load_target(args.target or "tray_dots")
@@ -241,7 +242,8 @@ def _check(args) -> int:
     print(f"residual of the feature motion: {check.residual_before_px:.3f} px before, "
           f"{check.residual_after_px:.3f} px after the correction")
     corrected = check.as_dict()["corrected_hand_eye"]
-    print("corrected robot.hand_eye (rotation reliable; translation only if observable): "
+    print("corrected robot.hand_eye (translation kept where the run does not show it; a "
+          "calibration is better): "
           f"[{', '.join(f'{v:.6f}' for v in corrected)}]")
     return 0
 

@@ -10,7 +10,11 @@ definitions as the report), then writes into one folder:
   curves overlaid and the final camera positions in the goal camera's axes;
 - ``repeatability.csv``: the repeatability table; ``runs.csv``: every metric of every run;
 - ``series.csv``: the time series of every run in long form (run, time since its start, RMS
-  error, camera position and orientation error to its goal where known).
+  error, camera position and orientation error to its goal where known, source ``camera``;
+  the node's own per-frame estimate of them, source ``estimate``).
+
+Without ground truth (a real cell) the pose rows of the study are the node's estimate
+(result ``estimated_pose_error_*``, the mean over the last dwell; else the last status value).
 
 Runs are labelled #1, #2, ... in the order given; the tables name each label's record.
 """
@@ -24,8 +28,9 @@ from pathlib import Path
 import numpy as np
 
 from vservo_node.record.bag import load_run
-from vservo_node.record.metrics import (arm_of_run, command_of_run, compute_metrics, fmt,
-                                        goal_path, motion_of_run, run_params, start_index)
+from vservo_node.record.metrics import (GOAL_FROM_FINAL_POSE, arm_of_run, command_of_run,
+                                        compute_metrics, fmt, goal_path, motion_of_run,
+                                        pose_estimate_series, run_params, start_index)
 from vservo_node.record.report import _legend, _log_y, figure_html, html_page, new_figure
 
 # figures of the repeatability table: (metrics key, label, unit, scale)
@@ -162,6 +167,10 @@ def compare_runs(bags: list, out_dir: str | Path, tolerance_px: float | None = N
                 for t, mm, deg in zip(path[0], path[1], path[2]):
                     writer.writerow([label, m["run"], "camera", repr(float(t - t0)), "",
                                      repr(float(mm)), repr(float(deg))])
+            estimate = pose_estimate_series(run)
+            for t, mm, deg in zip(*(estimate or ((), (), ()))):
+                writer.writerow([label, m["run"], "estimate", repr(float(t - t0)), "",
+                                 repr(float(mm)), repr(float(deg))])
 
     # --- page
     body = [f"<p>{len(runs)} runs; {sum(m['verdict'] == 'converged' for m in all_metrics)} "
@@ -237,7 +246,7 @@ def _fig_final_positions(paths, labels, all_metrics):
     """x-y and x-z of each run's final camera position in the goal camera's axes (mm)."""
     points = [(k, label, p[3][-1]) for k, (label, p, m) in enumerate(zip(labels, paths,
                                                                        all_metrics))
-              if p is not None and "final pose" not in p[4]   # against itself: always 0
+              if p is not None and p[4] != GOAL_FROM_FINAL_POSE   # against itself: always 0
               and m["verdict"] == "converged"]
     if not points:
         return None

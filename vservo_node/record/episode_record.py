@@ -10,11 +10,15 @@ the simulator's truth ``sim/camera_pose_truth`` and ``sim/taught_camera_pose`` (
 ``robot_description`` (the scenario's URDF), ``camera/camera_info`` and two camera frames
 (JPEG, rendered by the simulated camera at the first and the last tick's joints);
 ``params.yaml`` (the episode's controller parameters with the scenario's robot frames and the
-believed hand-eye), ``result.json`` (the servo's result and the true pose error) and
-``episode.json`` (where the episode came from); per camera frame with a match, as the node publishes them,
-the features seen ``servo/features`` [u1, v1, ...], their errors from the taught view
-``servo/feature_error`` [du1, dv1, ...] and ``servo/error_rms`` (px), so the report marks the
-start and end frames and plots the error of each feature as for a run of the cell.
+believed hand-eye), ``result.json`` (the servo's result, its own pose-error estimate and the
+true pose error) and ``episode.json`` (where the episode came from); per camera frame with a
+match, as the node publishes them, the features seen ``servo/features`` [u1, v1, ...], their
+errors from the taught view ``servo/feature_error`` [du1, dv1, ...] and ``servo/error_rms``
+(px), so the report marks the start and end frames and plots the error of each feature as for
+a run of the cell. The status records' ``cycle_ms`` is the measured perception + servo time
+of the frame before them (NaN on output ticks without a frame). With image sensing the taught
+reference (its image and the taught joints) is kept in ``reference/`` as the recorder copies
+it; a projected-sensing episode has no taught image to keep.
 """
 from __future__ import annotations
 
@@ -28,7 +32,7 @@ import numpy as np
 
 from vservo_node import interface as itf
 from vservo_node.control import frames
-from vservo_node.record.bag import COMPRESSED_IMAGE, RunRecorder
+from vservo_node.record.bag import COMPRESSED_IMAGE, REFERENCE_DIR, RunRecorder
 
 T0_NS = 10**9   # log time of t = 0 (rosbag2 readers dislike a zero start)
 
@@ -132,7 +136,14 @@ def write_record(root: Path, name: str, scenario, values: dict, result, notes: d
             "run_id": name, "converged": bool(result.converged), "reason": result.reason,
             "time_s": result.time_s, "final_rms_px": result.final_rms_px,
             "final_pose_error_mm": result.pose_error_mm,
-            "final_pose_error_deg": result.pose_error_deg}))
+            "final_pose_error_deg": result.pose_error_deg,
+            # the servo's own estimate over its last dwell, as the node's run result has it
+            **{k: getattr(result, k) for k in (
+                "estimated_pose_error_mm", "estimated_pose_error_deg",
+                "estimated_pose_error_spread_mm", "estimated_pose_error_spread_deg")}}))
+    if getattr(result, "reference", None) is not None:
+        from vservo_node.vision.reference import save_reference
+        save_reference(result.reference, recorder.bag_dir / REFERENCE_DIR / "episode.yaml")
     (recorder.bag_dir / "episode.json").write_text(json.dumps(_json_safe(notes or {}),
                                                               indent=2) + "\n")
     return recorder.bag_dir

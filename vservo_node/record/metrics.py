@@ -54,6 +54,8 @@ DEFINITIONS = {
                             "and taught orientations",
     "estimated_pose_error_mm": "the node's estimate of the final camera position error",
     "estimated_pose_error_deg": "the node's estimate of the final camera orientation error",
+    "tolerance_mm": "control.tolerance_mm of the run (0 or None: arrival not judged in mm)",
+    "tolerance_deg": "control.tolerance_deg of the run (0 or None: arrival not judged in deg)",
     "peak_joint_speed_ratio": "largest measured |joint speed| over its limit in use (URDF "
                               "velocity x limits.joint_velocity_scale); 1 = at the limit",
     "peak_joint_accel_ratio": "largest commanded |joint acceleration| (command change per "
@@ -331,6 +333,11 @@ def pose_of(row: np.ndarray) -> np.ndarray:
     return transform_from_xyz_quat(row[:3], row[3:7])
 
 
+# goal_path's source when the record tells no goal: the path is then to where the camera stopped
+GOAL_FROM_FINAL_POSE = ("forward kinematics: camera against its final pose (no taught pose "
+                        "recorded)")
+
+
 def goal_path(run: RunData, motion: Motion | None):
     """The camera's position (mm) and orientation (deg) error from its goal over time:
     ``(t, mm, deg, xyz_goal_mm (T, 3) in the goal camera's axes, source)`` or None.
@@ -353,7 +360,7 @@ def goal_path(run: RunData, motion: Motion | None):
             source = "forward kinematics: camera against the joints the reference was taught at"
         else:
             goal = poses[-1]
-            source = "forward kinematics: camera against its final pose (no taught pose recorded)"
+            source = GOAL_FROM_FINAL_POSE
         if goal is None:
             return None
     else:
@@ -366,6 +373,21 @@ def goal_path(run: RunData, motion: Motion | None):
         deg.append(math.degrees(turned))
         local.append(1e3 * (goal_inv @ T)[:3, 3])
     return np.asarray(t), np.array(mm), np.array(deg), np.array(local), source
+
+
+def pose_estimate_series(run: RunData):
+    """The node's own pose-error estimate over time: ``(t, mm, deg)`` over the status records
+    where it was estimated (``pose_error_mm`` / ``pose_error_deg``, control.pose_error: PnP of
+    the target model or the plane homography from the features of that frame); None when no
+    record holds one (an older node, or a run the node could not estimate: no target model
+    and no taught depths)."""
+    mm, deg = run.status.get("pose_error_mm"), run.status.get("pose_error_deg")
+    if mm is None or deg is None:
+        return None
+    mm = np.array([v if isinstance(v, (int, float)) else np.nan for v in mm], float)
+    deg = np.array([v if isinstance(v, (int, float)) else np.nan for v in deg], float)
+    ok = np.isfinite(mm) & np.isfinite(deg)
+    return (run.status_t[ok], mm[ok], deg[ok]) if ok.any() else None
 
 
 def _taught_joints(run: RunData, names: list) -> np.ndarray | None:
@@ -440,6 +462,8 @@ def compute_metrics(run: RunData, tolerance_px: float | None = None,
     if result.get("final_rms_px") is not None:
         out["final_rms_px"] = _num(result["final_rms_px"])
     out.update(_pose_errors(run, result))
+    out.update(tolerance_mm=_num(p.get("control.tolerance_mm")),
+               tolerance_deg=_num(p.get("control.tolerance_deg")))
     cycle = st["cycle_ms"][np.isfinite(st["cycle_ms"])]
     out.update(
         n_halts=len(halts), halts=halts, limit_activations=limit_activations(st["limits_acted"]),
@@ -634,16 +658,20 @@ def headline(m: dict) -> list[tuple[str, str]]:
         rows.append(("verdict", "no end of the run in this record"))
     if m.get("detail"):
         rows.append(("what fired", m["detail"]))
-    rows.append(("final image error", f"{fmt(m['final_rms_px'], '.3f', 'px')} RMS (tolerance "
-                                      f"{fmt(m['tolerance_px'], '.3g', 'px')})"))
+    rows.append(("final image error", f"{fmt(m['final_rms_px'], '.3f', 'px')} RMS " + (
+        f"(tolerance {fmt(m['tolerance_px'], '.3g', 'px')})" if m.get("tolerance_px")
+        else "(no pixel tolerance)" if m.get("tolerance_px") == 0 else "(tolerance n/a)")))
     if m.get("final_pose_error_mm") is not None:
         rows.append(("pose error (ground truth)",
                      f"{fmt(m['final_pose_error_mm'], '.3f', 'mm')}, "
                      f"{fmt(m['final_pose_error_deg'], '.3f', 'deg')}"))
     if m.get("estimated_pose_error_mm") is not None:
+        tol = ((m.get("tolerance_mm") or 0) > 0 or (m.get("tolerance_deg") or 0) > 0)
         rows.append(("pose error (node's estimate)",
                      f"{fmt(m['estimated_pose_error_mm'], '.3f', 'mm')}, "
-                     f"{fmt(m.get('estimated_pose_error_deg'), '.3f', 'deg')}"))
+                     f"{fmt(m.get('estimated_pose_error_deg'), '.3f', 'deg')}"
+                     + (f" (tolerance {fmt(m.get('tolerance_mm'), '.3g', 'mm')}, "
+                        f"{fmt(m.get('tolerance_deg'), '.3g', 'deg')})" if tol else "")))
     if m.get("peak_joint_speed_ratio") is not None:
         rows.append(("peak joint speed", f"{fmt(100 * m['peak_joint_speed_ratio'], '.0f')} % "
                                          f"of its limit in use ({m['peak_joint_speed_joint']})"))

@@ -29,10 +29,11 @@ from vservo_node import params as schema
 from vservo_node.interface import SUPERVISOR_STATES
 from vservo_node.record import halts
 from vservo_node.record.bag import RunData, load_run
-from vservo_node.record.metrics import (DEFINITIONS, Command, Motion, arm_of_run,
-                                        command_of_run, compute_metrics, envelope_path, fmt,
-                                        goal_path, headline, ideal_decay, motion_of_run,
-                                        run_params, start_index)
+from vservo_node.record.metrics import (DEFINITIONS, GOAL_FROM_FINAL_POSE, Command, Motion,
+                                        arm_of_run, command_of_run, compute_metrics,
+                                        envelope_path, fmt, goal_path, headline, ideal_decay,
+                                        motion_of_run, pose_estimate_series, run_params,
+                                        start_index)
 
 STATE_COLOURS = dict(zip(SUPERVISOR_STATES, ("#9e9e9e", "#90caf9", "#1e88e5", "#26a69a",
                                              "#43a047", "#fb8c00", "#e53935")))
@@ -140,11 +141,32 @@ def _nice_scale(largest_px: float, wanted_px: float = 40.0) -> float:
     return float(max(m * k for m in (1, 2, 5) if m * k <= raw))
 
 
+def taught_view(run: RunData):
+    """(RGB image, taught pixels (N, 2)) of the reference copied into the record, or None: a
+    record without one, a reference written before references kept their image, or a copy
+    that does not read (``vision.reference.load_reference`` checks it, image size included)."""
+    if run.reference_path is None:
+        return None
+    from vservo_node.vision.reference import load_reference
+    try:
+        reference = load_reference(run.reference_path)
+    except (ValueError, OSError):
+        return None
+    image = reference.image
+    if image is None:
+        return None
+    if image.dtype != np.uint8:      # 16-bit mono: shown scaled to 8 bits
+        image = (image / max(float(image.max()), 1.0) * 255).astype(np.uint8)
+    rgb = np.repeat(image[..., None], 3, axis=2) if image.ndim == 2 else image[..., ::-1]
+    return rgb, reference.pixels
+
+
 # ----------------------------------------------------------------------------- figures
-def fig_frames(run: RunData, metrics: dict) -> Figure | None:
+def fig_frames(run: RunData, metrics: dict, taught=None) -> Figure | None:
     """The camera at the start and at the end: detected features (green circles), reference
     marks (blue squares, s - e), error vectors from each feature toward its mark (yellow,
-    lengthened when tiny, the factor in the title), the feature paths on the end frame."""
+    lengthened when tiny, the factor in the title), the feature paths on the end frame; and,
+    given ``taught`` (``taught_view``), the taught image with its taught features."""
     frames = run.frames
     if not frames and run.features is None:
         return None
@@ -157,9 +179,23 @@ def fig_frames(run: RunData, metrics: dict) -> Figure | None:
     if size is None:
         return None
     aspect = size[1] / size[0]
-    fig = new_figure(WIDTH_IN, (WIDTH_IN / 2 - 0.8) * aspect + 0.95, right=0.2, left=0.7,
-                     wspace=0.15)
-    axes = fig.subplots(1, len(shots), squeeze=False)[0]
+    panels = len(shots) + (taught is not None)
+    fig = new_figure(WIDTH_IN, (WIDTH_IN / panels - 0.8) * aspect + 0.95, right=0.2, left=0.7,
+                     wspace=0.15 if panels < 3 else 0.25)
+    axes = fig.subplots(1, panels, squeeze=False)[0]
+    if taught is not None:
+        ax, (rgb, uv) = axes[-1], taught
+        h, w = rgb.shape[:2]
+        ax.imshow(rgb, extent=(-0.5, w - 0.5, h - 0.5, -0.5))
+        ax.plot(uv[:, 0], uv[:, 1], "s", mfc="none", mec="#2979ff", ms=9, mew=1.5,
+                label="taught feature")
+        for k, (u, v) in enumerate(uv):
+            ax.annotate(str(k + 1), (u, v), xytext=(6, 6), textcoords="offset points",
+                        color="#2979ff", fontsize=8)
+        ax.set(xlim=(-0.5, w - 0.5), ylim=(h - 0.5, -0.5), xlabel="u (px)", ylabel="v (px)",
+               title=f"taught view (reference image, {w}x{h})")
+        ax.title.set_fontsize(10)
+        ax.legend(fontsize=7, loc="lower right", framealpha=0.8)
     paths = None
     if run.features is not None:
         paths = run.features.values.reshape(len(run.features.t), -1, 2)
@@ -249,10 +285,12 @@ def fig_error(run: RunData, metrics: dict) -> Figure | None:
     return fig
 
 
-def fig_camera_path(run: RunData, motion: Motion | None, metrics: dict) -> Figure | None:
+def fig_camera_path(run: RunData, motion: Motion | None, metrics: dict,
+                    path=None) -> Figure | None:
     """Position (mm) and orientation (deg) error of the camera from its goal over time, and
-    the position error's components in the goal camera's axes."""
-    path = goal_path(run, motion)
+    the position error's components in the goal camera's axes. ``path``: ``goal_path``'s
+    answer when the caller has it."""
+    path = goal_path(run, motion) if path is None else path
     if path is None:
         return None
     t, mm, deg, local, source = path
@@ -270,6 +308,41 @@ def fig_camera_path(run: RunData, motion: Motion | None, metrics: dict) -> Figur
     for ax in (ax1, ax2):
         _halt_marks(ax, metrics)
     _legend(ax2)
+    return fig
+
+
+def fig_pose_estimate(run: RunData, metrics: dict, path, estimate) -> Figure | None:
+    """The node's pose-error estimate per frame (``metrics.pose_estimate_series``) against the
+    camera's measured error to its goal (``goal_path``: ground truth, or forward kinematics
+    against the taught joints), position (mm) and orientation (deg), log scale, with
+    control.tolerance_mm / _deg. None without an estimate."""
+    if estimate is None:
+        return None
+    t_est, mm_est, deg_est = estimate
+    known = path is not None and path[4] != GOAL_FROM_FINAL_POSE
+    fig = new_figure(WIDTH_IN, 5.2)
+    axes = fig.subplots(2, 1, sharex=True)
+    floor = {"mm": 1e-3, "deg": 1e-4}   # below: drawn at the floor (a log axis has no zero)
+    for ax, unit, est, col, tol_key, label in (
+            (axes[0], "mm", mm_est, 1, "tolerance_mm", "position error (mm)"),
+            (axes[1], "deg", deg_est, 2, "tolerance_deg", "orientation error (deg)")):
+        if known:
+            ax.plot(path[0], np.maximum(path[col], floor[unit]), color="k", lw=1.2, zorder=3,
+                    label="ground truth" if path[4].startswith("ground truth")
+                    else "forward kinematics")   # on top: the estimate's dots hug it
+        ax.plot(t_est, np.maximum(est, floor[unit]), ".", ms=3, color="#1e88e5",
+                label="node's estimate (per frame)")
+        if metrics.get(tol_key):
+            ax.axhline(metrics[tol_key], color="g", ls=":", label=f"tolerance "
+                       f"{metrics[tol_key]:g} {unit}")
+        _log_y(ax)
+        ax.set(ylabel=label)
+        _halt_marks(ax, metrics)
+        _legend(ax)
+    axes[0].set_title(f"Pose error: the node's estimate against {path[4]}" if known else
+                      "Pose error: the node's estimate (the record holds no measured goal to "
+                      "compare it with)", fontsize=10)
+    axes[1].set_xlabel("time (s)")
     return fig
 
 
@@ -592,20 +665,29 @@ def write_report(bag: str | Path, out_dir: str | Path | None = None,
     motion = motion_of_run(run, arm)
     command = command_of_run(run, motion.joint_names) if motion is not None else None
     metrics = compute_metrics(run, tolerance_px, motion, command)
+    path, estimate = goal_path(run, motion), pose_estimate_series(run)
+    taught = taught_view(run)
     (out / "metrics.json").write_text(json.dumps(metrics, indent=2) + "\n", encoding="utf8")
     sections = [
         ("Camera view at the start and at the end", [
-            ("Camera frames with the detected features (green, numbered), their reference "
-             "marks (blue) and error vectors (yellow, toward the mark); white: the feature "
-             "paths" if run.features is not None else
-             "Camera frames (the record holds no detected features to mark on them)",
-             fig_frames(run, metrics), "jpeg")]),
+            (("Camera frames with the detected features (green, numbered), their reference "
+              "marks (blue) and error vectors (yellow, toward the mark); white: the feature "
+              "paths" if run.features is not None else
+              "Camera frames (the record holds no detected features to mark on them)")
+             + ("; right: the taught view from the reference copied into the record, its "
+                "features numbered in the reference's order" if taught is not None else ""),
+             fig_frames(run, metrics, taught), "jpeg")]),
         ("Image error", [("RMS image error against the ideal exponential decay for the "
                           "recorded gain, and the error of each feature", fig_error(run, metrics),
                           "png")]),
         ("Camera path to the goal", [("Position and orientation error of the camera from its "
-                                      "goal over time", fig_camera_path(run, motion, metrics),
-                                      "png")]),
+                                      "goal over time", fig_camera_path(run, motion, metrics,
+                                                                        path), "png")]
+         + ([] if estimate is None else [   # only when the node estimated its pose error
+             ("The node's pose-error estimate of each frame (from the features: PnP of the "
+              "target model or the plane homography) against the measured error to the goal, "
+              "position and orientation", fig_pose_estimate(run, metrics, path, estimate),
+              "png")])),
         ("Limits against their bounds", [
             ("Joint speed, acceleration and position against their limits (red ticks: "
              "records where the limit acted)",
@@ -628,6 +710,8 @@ def write_report(bag: str | Path, out_dir: str | Path | None = None,
     if missing:
         body.append(f"<p class='sub'>Not drawn (data not in the record): "
                     f"{html.escape('; '.join(missing))}</p>")
+    from vservo_node.calib.run_report import section_html   # hand-eye check, loop delay
+    body.append(section_html(run))
     body.append(f"<h2>Parameters used</h2>{params_table(run)}")
     body.append(f"<h2>All figures (metrics.json)</h2>{metrics_table(metrics)}")
     topics = "".join(f"<tr><td>{html.escape(name)}</td><td>{html.escape(kind)}</td>"
