@@ -186,3 +186,40 @@ def test_shutdown_during_a_moving_run_brakes_to_one_zero_and_finalizes(setup):
     assert _state(rig) == "finalized"
     _assert_braked_to_one_zero(rig, since, "shutdown")
     assert rig.controller.alive()    # finalized, not dead: the process ends on a signal
+
+
+def test_a_transition_that_raises_ends_unconfigured_through_on_error(ros_node):
+    """A transition callback that raises goes to error processing (ROS 2 managed-node state
+    machine, from memory; rclpy's LifecycleNode implements it); on_error brings the node to
+    rest, drops what configure made and returns it to unconfigured. In-process node, its own
+    namespace (not the managed process's)."""
+    from rclpy.lifecycle import TransitionCallbackReturn
+    from rclpy.parameter import Parameter
+
+    from test_controller_node import URDF
+    from vservo_node.ros.controller.node import ControllerNode
+
+    node = ControllerNode(namespace="/on_error", parameter_overrides=[
+        Parameter("robot.urdf_path", value=str(URDF)),
+        Parameter("limits.joint_acceleration", value=[HALT_ACCELERATION])])
+    try:
+        assert node.trigger_configure() == TransitionCallbackReturn.SUCCESS
+        assert node._lifecycle_label() == "inactive" and node._publishers_made
+        assert node.servo is not None
+
+        def broken():
+            raise RuntimeError("subscription failed (test)")
+        node._make_subscriptions = broken
+        assert node.trigger_activate() == TransitionCallbackReturn.ERROR
+        assert node._lifecycle_label() == "unconfigured"
+        assert node.servo is None and not node._publishers_made and not node._services_made
+        assert node._output_loop is None or not node._output_loop.running
+        del node._make_subscriptions             # configure and activate work again
+        assert node.trigger_configure() == TransitionCallbackReturn.SUCCESS
+        assert node.trigger_activate() == TransitionCallbackReturn.SUCCESS
+        assert node._output_loop is not None and node._output_loop.running
+        assert node.trigger_shutdown() == TransitionCallbackReturn.SUCCESS
+        assert node._lifecycle_label() == "finalized"
+        assert not node._output_loop.running
+    finally:
+        node.destroy_node()

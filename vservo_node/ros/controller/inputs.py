@@ -121,7 +121,8 @@ class InputCallbacks(ControllerState):
     # ------------------------------------------------------------------------ subscriptions
     def _make_subscriptions(self) -> None:
         s = self.settings
-        subs = []
+        subs: list = []
+        self._subscriptions_active = subs   # filled as made: a failure part-way leaves them listed
         if s.io.compressed_image:
             image = self.create_subscription(CompressedImage, itf.TOPIC_IMAGE_COMPRESSED,
                                              self._on_compressed_image, qos.SENSOR_DATA)
@@ -149,7 +150,6 @@ class InputCallbacks(ControllerState):
                      self.create_subscription(PoseStamped, itf.TOPIC_SIM_TAUGHT_POSE,
                                               functools.partial(self._on_truth, "taught"),
                                               qos.LATCHED)]
-        self._subscriptions_active = subs
         self._frames = FrameSlot()
         self._worker = threading.Thread(target=self._perception_loop, args=(self._frames,),
                                         name="perception", daemon=True)

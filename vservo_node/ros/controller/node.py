@@ -244,7 +244,15 @@ class ControllerNode(ParameterHandling, ModelBuilding, InputCallbacks, Publishin
                 f"the last command was not acknowledged within {SHUTDOWN_ACK_S} s")
 
     def _teardown(self) -> None:
-        """What cleanup drops (module table); safe on a partly configured node."""
+        """What cleanup drops (module table); safe on a partly configured or partly
+        activated node (the error path): threads, timer and inputs first, outside the lock
+        (the perception thread may be waiting for it)."""
+        if self._output_loop is not None:
+            self._output_loop.stop()
+        if self._diagnostics_timer is not None:
+            self.destroy_timer(self._diagnostics_timer)
+            self._diagnostics_timer = None
+        self._destroy_subscriptions()
         with self._lock:
             self._configured = False
             self._destroy_publishers()
