@@ -15,7 +15,7 @@ ROS2_STAMP := $(VENV_ROS2)/.installed
 VENV_JAZZY := .venv-ros2-jazzy
 JAZZY_STAMP := $(VENV_JAZZY)/.installed
 
-.PHONY: venv venv-ros2 venv-ros2-jazzy demo lint test test-core test-install bench soak clean
+.PHONY: venv venv-ros2 venv-ros2-jazzy demo lint test test-core test-install bench bench-scripts soak clean
 
 venv: $(STAMP)
 
@@ -82,7 +82,12 @@ test-install: venv venv-ros2 venv-ros2-jazzy
 soak: venv
 	$(ISOLATED) $(PY) tools/soak.py --minutes $(or $(SOAK_MINUTES),10)
 
+# The performance table (a few minutes; DDS rows through tools/isolated): bench.json beside it.
 bench: venv
+	$(PY) -m vservo_node.cli bench --json bench.json
+
+# The older single-purpose benchmark scripts, one after the other.
+bench-scripts: venv
 	@for b in benchmarks/*.py; do echo "== $$b"; $(ISOLATED) $(PY) $$b || exit 1; done
 
 clean:

@@ -187,14 +187,21 @@ def test_default_constructed_law_and_settings_agree_with_the_schema():
     """The objects a caller gets without arguments are the schema's (the issue: GainSchedule()
     0.8 / 0.3 / 30 against 1.0 / 0.5 / 60, DampingSchedule() 0.05 against 0.003,
     LawConfig().null_space_gain 0.1 against 0.5, LimitSet.angular_max 0.5 against 0.6)."""
+    from vservo_node.control.kinematics import load_robot
     from vservo_node.control.law import LawConfig
     from vservo_node.servo_settings import ServoSettings
+    from vservo_node.settings import Settings, limits_for, servo_config
 
     assert ServoSettings().law_config() == LawConfig()
     assert ServoSettings().depth_source == "taught" == params.default("depth.source")
     every = params.defaults()
     every["limits.joint_acceleration"] = [2.0]
-    assert ServoSettings.from_params(params.validate(every).values) == ServoSettings()
+    arm = load_robot("vs7_bench").arm
+    servo, limits = servo_config(Settings.from_values(params.validate(every).values), arm)
+    assert servo == ServoSettings()
+    default_limits = limits_for(arm)
+    for name in ("velocity_scale", "tool_linear_max", "camera_linear_max", "angular_max"):
+        assert getattr(limits, name) == getattr(default_limits, name), name
 
 
 def test_every_servo_setting_is_a_schema_parameter_and_every_supervisor_entry_is_used():
@@ -208,12 +215,15 @@ def test_every_servo_setting_is_a_schema_parameter_and_every_supervisor_entry_is
         assert p.low is not None and p.high is not None and len(p.description) > 20, name
 
 
-def test_from_params_converts_the_observed_depth_sources():
-    from vservo_node.servo_settings import ServoSettings
+def test_servo_config_converts_the_observed_depth_sources():
+    from vservo_node.control.kinematics import load_robot
+    from vservo_node.settings import Settings, servo_config
 
+    arm = load_robot("vs7_bench").arm
     for source, mode in (("constant", "constant"), ("taught", "taught"),
                          ("target_model", "observed"), ("depth_image", "observed")):
-        assert ServoSettings.from_params({"depth.source": source}).depth_source == mode
+        values = {"depth.source": source, "limits.joint_acceleration": [2.0]}
+        assert servo_config(Settings.from_values(values), arm)[0].depth_source == mode
 
 
 def test_core_modules_import_first_in_a_fresh_interpreter():
@@ -228,13 +238,17 @@ def test_core_modules_import_first_in_a_fresh_interpreter():
 
 
 def test_every_servo_setting_reads_its_own_parameter():
-    """Wired through: a value other than the default, given under the field's parameter name,
-    arrives in exactly that field (and the depth source through its conversion)."""
+    """Wired through settings.servo_config (the one mapping): a value other than the default,
+    given under the field's parameter name, arrives in exactly that field (the depth source
+    through its conversion); supervisor.* included."""
     import dataclasses
 
-    from vservo_node.servo_settings import PARAM_OF_FIELD, ServoSettings
+    from vservo_node.control.kinematics import load_robot
+    from vservo_node.servo_settings import PARAM_OF_FIELD
+    from vservo_node.settings import Settings, servo_config
 
-    base = ServoSettings()
+    arm = load_robot("vs7_bench").arm
+    base = servo_config(Settings.from_values({"limits.joint_acceleration": [2.0]}), arm)[0]
     for field_name, name in PARAM_OF_FIELD.items():
         p = params.BY_NAME[name]
         if p.type is bool:
@@ -245,7 +259,8 @@ def test_every_servo_setting_reads_its_own_parameter():
             value = p.type(p.high if p.default != p.high else p.low)
         else:
             continue
-        got = ServoSettings.from_params({name: value})
+        got = servo_config(Settings.from_values({name: value,
+                                                 "limits.joint_acceleration": [2.0]}), arm)[0]
         changed = {f.name for f in dataclasses.fields(got)
                    if getattr(got, f.name) != getattr(base, f.name)}
         assert changed == {field_name}, (name, value, changed)

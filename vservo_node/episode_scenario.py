@@ -12,6 +12,7 @@ from vservo_node.episode import (TEACH_TIME_S, EpisodeResult, _Meter, _start, ep
                                  servo_from_params)
 from vservo_node.interface import ENDED_STATES, SENSING_MODES
 from vservo_node.servo import Observation
+from vservo_node.settings import Settings, depth_settings
 
 
 def focal_scaled(camera, scale: float):
@@ -107,7 +108,7 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     """
     import tempfile
 
-    from vservo_node.perception import DepthSettings, Perception, taught_view
+    from vservo_node.perception import Perception, taught_view
     from vservo_node.sim import Scenario, SimCell, load_scenario
     from vservo_node.vision import image_io
     from vservo_node.vision.reference import load_reference
@@ -120,7 +121,7 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     cell = SimCell(sc)
     camera = focal_scaled(sc.camera, focal_scale) if focal_scale != 1.0 else sc.camera
     servo = servo_from_params(sc.arm_model("belief"), values, mount=sc.mount("belief"))
-    depth = DepthSettings.from_params(values)
+    depth = depth_settings(Settings.from_values(values))
     width, height = camera.width, camera.height
 
     def bgr(rgb):  # the node reads the sim's rgb8 images this way

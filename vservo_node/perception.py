@@ -35,7 +35,6 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
 
@@ -55,11 +54,6 @@ class DepthSettings:
     """``source``: one of ``vservo_node.params.DEPTH_SOURCES``; ``constant_m``: metres."""
     source: str = default("depth.source")
     constant_m: float = default("depth.constant_m")
-
-    @classmethod
-    def from_params(cls, values: dict[str, Any]) -> "DepthSettings":
-        return cls(values.get("depth.source", cls.source),
-                   values.get("depth.constant_m", cls.constant_m))
 
 
 @dataclass(frozen=True)

@@ -117,7 +117,7 @@ class Servo(SupervisorChecks):
         self.limiter.limits = limits
 
     # --- supervisor commands -------------------------------------------------------------
-    def set_reference(self, view: TaughtView) -> None:
+    def set_reference(self, view: TaughtView | None) -> None:
         if self.state in MOVING_STATES:
             raise RuntimeError("cannot change the reference while moving; stop first")
         self.reference = view

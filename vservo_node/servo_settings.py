@@ -1,9 +1,9 @@
 """The servo's tunables, each bound to its parameter in ``vservo_node.params.SCHEMA``.
 
 Every field of :class:`ServoSettings` takes its default from the schema entry named in its
-metadata (``param``), so the schema is the one definition of each default and
-:meth:`ServoSettings.from_params` needs no hand-written mapping. ``PARAM_OF_FIELD`` lists the
-binding (tests/test_params.py checks it against the schema).
+metadata (``param``), so the schema is the one definition of each default.
+``PARAM_OF_FIELD`` lists the binding (tests/test_params.py checks it against the schema);
+``settings.servo_config`` is the one mapping from parameter values to a ServoSettings.
 """
 from __future__ import annotations
 
@@ -26,7 +26,7 @@ def _param(name: str, convert: Callable[[Any], Any] | None = None) -> Any:
     """A dataclass field whose default is the schema's default of parameter ``name``."""
     value = default(name)
     return dataclasses.field(default=convert(value) if convert else value,
-                             metadata={"param": name, "convert": convert})
+                             metadata={"param": name})
 
 
 @dataclass(frozen=True)
@@ -77,17 +77,6 @@ class ServoSettings:
     border_margin_px: float = _param("supervisor.border_margin_px")
     joint_zone_rad: float = _param("supervisor.joint_zone_rad")
     envelope_zone: float = _param("supervisor.envelope_zone")
-
-    @classmethod
-    def from_params(cls, values: dict[str, Any]) -> ServoSettings:
-        """Build from validated parameter values (vservo_node.params names); a name missing
-        from ``values`` keeps the field's default."""
-        kwargs = {}
-        for f in dataclasses.fields(cls):
-            name, convert = f.metadata["param"], f.metadata["convert"]
-            if name in values:
-                kwargs[f.name] = convert(values[name]) if convert else values[name]
-        return cls(**kwargs)
 
     @property
     def pose_tolerance(self) -> PoseTolerance:

@@ -467,3 +467,58 @@ def test_window_rotation_mean_is_scipys_chordal_mean():
     assert s.deg == pytest.approx(math.degrees(mean.magnitude()), abs=1e-9)
     spread = math.degrees(math.sqrt(np.mean((mean.inv() * rots).magnitude() ** 2)))
     assert s.spread_deg == pytest.approx(spread, rel=1e-9)
+
+
+def test_window_quaternions_match_scipys_conversion():
+    """The window's own matrix -> quaternion conversion (Shepperd 1978) against SciPy's
+    Rotation.as_quat (reference library), up to the quaternion's sign, over rotations that
+    exercise each of Shepperd's four branches."""
+    from vservo_node.control.pose_error import _quat
+    rng = np.random.default_rng(7)
+    rotations = list(Rotation.random(200, random_state=rng)) + [
+        Rotation.from_rotvec(np.pi * np.eye(3)[k]) for k in range(3)]
+    for rot in rotations:
+        q, ref = _quat(rot.as_matrix()), rot.as_quat()
+        assert min(np.abs(q - ref).max(), np.abs(q + ref).max()) < 1e-12
+
+
+def test_warm_started_pnp_equals_the_full_solve_and_falls_back():
+    """PoseErrorEstimator's warm start (Gauss-Newton from the last frame's pose) reaches the
+    same least-squares pose as OpenCV's IPPE + solvePnPRefineLM (reference library) on a
+    moving sequence with pixel noise, and a jump too large for it (or points that fit no pose)
+    goes to the full solve or an invalid estimate, never to a wrong pose."""
+    rng = np.random.default_rng(3)
+    model = np.array([[x, y, 0.0] for x in (-0.05, 0.0, 0.05) for y in (-0.04, 0.04)])
+    T_taught = frames.transform(Rotation.from_rotvec([0.1, -0.05, 0.2]).as_matrix(),
+                                [0.01, 0.0, 0.4])
+
+    def view(T):
+        p = model @ T[:3, :3].T + T[:3, 3]
+        return p[:, :2] / p[:, 2:] + rng.normal(0, 0.3 / 600, (len(p), 2))
+
+    warm = PoseErrorEstimator(view(T_taught), model_points=model)
+    cold = PoseErrorEstimator(warm.xy_taught, model_points=model, warm_start=False)
+    used = []
+    for k in range(30):
+        T = frames.transform(Rotation.from_rotvec([0.1, -0.05, 0.2 - 0.005 * k]).as_matrix(),
+                             [0.01 + 0.001 * k, 0.0, 0.4 + 0.002 * k])
+        xy = view(T)
+        a, b = warm.estimate(xy), cold.estimate(xy)
+        assert a.valid and b.valid
+        used.append(a.info["warm_start"])
+        assert not b.info["warm_start"]
+        moved, turned = frames.pose_error(a.T_taught_current, b.T_taught_current)
+        assert moved < 1e-6 and turned < 1e-6, (k, moved, turned)
+    assert not used[0] and all(used[1:])    # the first frame has no pose to start from
+    # a jump of 20 deg and 10 cm: the warm start may not converge; either way the same pose
+    T = frames.transform(Rotation.from_rotvec([0.3, 0.2, -0.2]).as_matrix(), [0.1, 0.05, 0.5])
+    xy = view(T)
+    a, b = warm.estimate(xy), cold.estimate(xy)
+    moved, turned = frames.pose_error(a.T_taught_current, b.T_taught_current)
+    assert moved < 1e-6 and turned < 1e-6
+    # points that fit no pose: invalid with its reason, and the next frame starts cold
+    bad = xy.copy()
+    bad[0] += 0.05
+    result = warm.estimate(bad)
+    assert not result.valid and "does not fit" in result.reason
+    assert not warm.estimate(xy).info["warm_start"]

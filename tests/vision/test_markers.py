@@ -69,8 +69,46 @@ def test_tracker_windows_agree_and_fall_back():
         tracked, full = tracker.detect(image), MarkerDetector(target).detect(image)
         assert tracked.windowed == (i > 0) and tracked.keys == full.keys
         # the edge fit starts from the coarse corners, which differ slightly in a window
-        assert np.abs(tracked.points - full.points).max() < 0.01
+        assert np.abs(tracked.points - full.points).max() < 0.03
     # the target jumps out of the predicted window: full-frame search finds it again
     T = vs.pose((0, 0, 0), (0.12, 0.08, 0.5))
     det = tracker.detect(vs.render(target, K, SIZE, T))
     assert not det.windowed and len(det) == 16
+
+
+def test_tracked_quads_are_refined_in_place_and_an_occluded_marker_falls_back():
+    """After the first frame each marker is found by refining its predicted corners in its own
+    window (no ArUco run: counted by wrapping the detector's ArUco object), at the full-frame
+    detection's corners (OpenCV ArUco + the same edge fit) on the same frames; a marker
+    covered in the next frame sends the tracker to the full frame, which reports the others."""
+    target = load_target("tray_tags")
+    detector = MarkerDetector(target)
+    calls = []
+
+    class Counting:
+        def __init__(self, inner):
+            self.inner = inner
+
+        def detectMarkers(self, grey):
+            calls.append(grey.shape)
+            return self.inner.detectMarkers(grey)
+
+    detector._aruco = Counting(detector._aruco)
+    tracker = Tracker(detector)
+    reference = MarkerDetector(target)
+    for i in range(4):
+        T = vs.pose((10 + i, -5, 5 + i), (0.002 * i, 0.001 * i, 0.45))
+        image = vs.render(target, K, SIZE, T, noise=2.0, seed=20 + i)
+        calls.clear()
+        tracked, full = tracker.detect(image), reference.detect(image)
+        assert tracked.keys == full.keys and len(tracked) == 16
+        assert np.abs(tracked.points - full.points).max() < 0.03
+        assert np.abs(tracked.points - ground_truth(target, tracked.keys, T)).max() < 0.3
+        assert len(calls) == (1 if i == 0 else 0), calls
+    # cover one marker (its predicted window turns plain grey): full frame, 3 markers
+    first = tracked.points[:4]
+    lo, hi = first.min(axis=0).astype(int) - 6, first.max(axis=0).astype(int) + 7
+    image[lo[1]:hi[1], lo[0]:hi[0]] = 128
+    det = tracker.detect(image)
+    assert not det.windowed and len(det) == 12
+    assert tracked.keys[0] not in det.keys

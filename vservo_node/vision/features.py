@@ -286,92 +286,207 @@ class MarkerDetector:
         self.ids = [m.id for m in target.markers]
         self.expected = 4 * len(self.ids)
         self.margin = margin
+        # each marker's cells (border included) as 0 (black) / 1 (white), row by row, for
+        # checking a tracked quad without running the detector (``_cells_match``)
+        self._cells = {i: cv2.aruco.generateImageMarker(dictionary, i, self.cells, borderBits=1)
+                       > 127 for i in self.ids}
+        c = np.arange(self.cells) + 0.5
+        self._cell_centres = np.stack(np.meshgrid(c, c), axis=-1).reshape(-1, 1, 2)
+
+    # Window search: a marker larger than this many pixels a side is looked for in its window
+    # shrunk to about this size (the quad search costs by area; ~6 px per cell of a 6x6 tag
+    # still decodes), then its corners are refined on the full-resolution pixels. Common
+    # practice, no source.
+    WINDOW_SIDE_PX = 48.0
+    # A tracked quad refined from its predicted corners is fitted again from the result while
+    # a corner moved by more than REFIT_PX (the edge profiles reach only +-1.5..4 px across
+    # the edges they start from), at most MAX_FITS times, and kept only when the last fit
+    # moved no corner further than that. Common practice, no source.
+    REFIT_PX = 0.5
+    MAX_FITS = 3
 
     def detect(self, image: np.ndarray, windows=None) -> Detection:
-        """Markers in the full image, or in the single window ``[(None, (x0, y0, x1, y1))]``."""
+        """Markers in the full image, or one per window ``(marker_id, (x0, y0, x1, y1)[,
+        predicted corners (4, 2)])``: the marker of that id inside its window (``marker_id``
+        None: any of the target's). With predicted corners they are refined directly and
+        checked by reading the marker's cells; the detector runs in the window only when
+        that fails."""
         t0 = time.perf_counter()
-        area = _search_area(to_mono8(_colour_image(image, allow16=True)), windows)
-        corners, ids, x0, y0 = (), None, 0, 0
-        if area is not None:
-            grey, x0, y0 = area
+        image = _colour_image(image, allow16=True)
+        found = []          # (id, corners (4, 2) in image pixels)
+        ids_seen = []
+        if windows is None:
+            grey = to_mono8(image)
             corners, ids, _ = self._aruco.detectMarkers(grey)
-        ids = [] if ids is None else ids.ravel().tolist()
+            ids = [] if ids is None else ids.ravel().tolist()
+            ids_seen += ids
+            for marker_id, quad in zip(ids, corners):
+                found.append((marker_id, grey, quad.reshape(4, 2), 0, 0))
+        else:
+            for want, rect, *guess in windows:
+                view = _window(image, rect, min_side=16)
+                if view is None:
+                    continue
+                sub, x0, y0 = view
+                grey = to_mono8(sub)       # only the window's pixels are converted
+                if guess and want is not None:
+                    # the predicted corners refined directly, kept when all four edges fit and
+                    # the cells read the marker's id; else the detector runs in the window
+                    quad = guess[0] - (x0, y0)
+                    refined, n_fit = refine_quad(grey, quad, self.cells, return_found=True)
+                    moved, fits = np.abs(refined - quad).max(), 1
+                    while n_fit == 4 and moved > self.REFIT_PX and fits < self.MAX_FITS:
+                        # far from the prediction: the profiles were off-centre; fit again
+                        again, n_fit = refine_quad(grey, refined, self.cells, return_found=True)
+                        moved, refined, fits = np.abs(again - refined).max(), again, fits + 1
+                    if (n_fit == 4 and moved <= self.REFIT_PX
+                            and self._cells_match(grey, refined, want)):
+                        found.append((want, None, refined + (x0, y0), 0, 0))
+                        continue
+                side = max(sub.shape[0], sub.shape[1]) / (1.0 + 2.0 * self.margin)
+                scale = min(1.0, self.WINDOW_SIDE_PX / max(side, 1.0))
+                small = grey if scale >= 1.0 else cv2.resize(
+                    grey, None, fx=scale, fy=scale, interpolation=cv2.INTER_AREA)
+                corners, ids, _ = self._aruco.detectMarkers(small)
+                ids = [] if ids is None else ids.ravel().tolist()
+                ids_seen += ids
+                for marker_id, quad in zip(ids, corners):
+                    if want is None or marker_id == want:
+                        # pixel centres: u_full = (u_small + 0.5) / scale - 0.5
+                        quad = (quad.reshape(4, 2) + 0.5) / scale - 0.5
+                        found.append((marker_id, grey, quad, x0, y0))
         seen, keys, points = set(), [], []
-        for marker_id, quad in zip(ids, corners):
+        for marker_id, grey, quad, x0, y0 in found:
             if marker_id in self.ids and marker_id not in seen:
                 seen.add(marker_id)
                 keys += [("tag", marker_id, c) for c in range(4)]
-                points.append(refine_quad(grey, quad.reshape(4, 2), self.cells) + (x0, y0))
+                points.append(quad if grey is None else
+                              refine_quad(grey, quad, self.cells) + (x0, y0))
         return Detection("markers", np.array(points, dtype=float).reshape(-1, 2), keys,
                          _size(image), windowed=windows is not None,
                          quality={"marker_ids": sorted(seen),
-                                  "foreign_ids": sorted(set(ids) - set(self.ids)),
-                                  "duplicate_ids": sorted({i for i in ids if ids.count(i) > 1})},
+                                  "foreign_ids": sorted(set(ids_seen) - set(self.ids)),
+                                  "duplicate_ids": sorted({i for i in ids_seen
+                                                           if ids_seen.count(i) > 1})},
                          timings={"detect_ms": 1e3 * (time.perf_counter() - t0)})
 
     def windows(self, last: Detection, predicted: np.ndarray) -> list:
-        """One window around all predicted corners, grown by ``margin`` of their extent."""
-        lo, hi = predicted.min(axis=0), predicted.max(axis=0)
-        grow = self.margin * (hi - lo).max() + 16.0
-        return [(None, (lo[0] - grow, lo[1] - grow, hi[0] + grow + 1, hi[1] + grow + 1))]
+        """One window per marker of ``last`` around its predicted corners, grown by ``margin``
+        of the marker's extent and 8 px (the detector needs a quiet zone inside the window)."""
+        out = []
+        for j in range(0, len(last.keys), 4):
+            quad = predicted[j:j + 4]
+            lo, hi = quad.min(axis=0), quad.max(axis=0)
+            grow = self.margin * (hi - lo).max() + 8.0
+            out.append((last.keys[j][1],
+                        (lo[0] - grow, lo[1] - grow, hi[0] + grow + 1, hi[1] + grow + 1),
+                        quad))
+        return out
+
+    def _cells_match(self, grey, quad, marker_id, max_wrong=1) -> bool:
+        """Do the cells inside ``quad`` (corners in the detector's order) read marker
+        ``marker_id``? Cell centres sampled through the quad's homography, split at the mean
+        grey; at most ``max_wrong`` cells may disagree (common practice, no source)."""
+        side = float(self.cells)
+        square = np.array([[0, 0], [side, 0], [side, side], [0, side]], np.float32)
+        H = cv2.getPerspectiveTransform(square, quad.astype(np.float32))
+        uv = cv2.perspectiveTransform(self._cell_centres, H).reshape(self.cells, self.cells, 2)
+        grey_at = cv2.remap(grey, uv[..., 0].astype(np.float32), uv[..., 1].astype(np.float32),
+                            cv2.INTER_LINEAR, borderMode=cv2.BORDER_REPLICATE).astype(float)
+        if grey_at.max() - grey_at.min() < 20.0:
+            return False
+        wrong = np.count_nonzero((grey_at > grey_at.mean()) != self._cells[marker_id])
+        return wrong <= max_wrong
 
 
-def _edge_line(grey, a, b, centre, cell_px):
-    """Sub-pixel line (normal n, offset d: n.x = d) of the dark-to-light edge from a to b.
+MAX_PROFILES = 32   # per edge; common practice, no source
+_POPCOUNT = np.array([bin(i).count("1") for i in range(256)], dtype=np.uint8)
 
-    Profiles across the edge are read by bilinear interpolation; on each, the edge is where
-    the intensity crosses the mean of its dark and light ends (the midpoint of a symmetric
-    blur); a total-least-squares line is fitted to those points. Returns None if the edge is
-    too short or faint.
+
+def _bit_count(words: np.ndarray) -> np.ndarray:
+    """Set bits of each uint64 (NumPy >= 2.0's bitwise_count, else a byte table)."""
+    if hasattr(np, "bitwise_count"):
+        return np.bitwise_count(words)
+    return _POPCOUNT[words.view(np.uint8)].reshape(*words.shape, 8).sum(axis=-1)
+
+
+def _edge_lines(grey, quad, cell_px):
+    """Sub-pixel lines (normals (4, 2), offsets (4,): n.x = d; NaN where not found) of the four
+    dark-to-light edges of ``quad`` (edge i from corner i to corner i + 1), all four at once.
+
+    Profiles across each edge are read by bilinear interpolation (one ``cv2.remap`` for the
+    four); on each, the edge is where the intensity crosses the mean of its dark and light
+    ends (the midpoint of a symmetric blur); a total-least-squares line is fitted to those
+    points per edge. An edge too short or faint (fewer than 3 profiles with 20 grey levels of
+    contrast) gives NaN.
     """
-    length = np.hypot(*(b - a))
-    d = (b - a) / length
-    n = np.array([d[1], -d[0]])
-    if n @ ((a + b) / 2 - centre) < 0:
-        n = -n  # outward: towards the white quiet zone
+    a, b = quad, np.roll(quad, -1, axis=0)
+    length = np.hypot(*(b - a).T)                                   # (4,)
+    d = (b - a) / length[:, None]
+    n = np.column_stack([d[:, 1], -d[:, 0]])
+    centre = quad.mean(axis=0)
+    flip = np.einsum("ij,ij->i", n, (a + b) / 2 - centre) < 0
+    n[flip] = -n[flip]                         # outward: towards the white quiet zone
     half = float(np.clip(0.45 * cell_px, 1.5, 4.0))
-    end = max(0.12 * length, 1.5 * half)
-    if length - 2 * end < 3:
-        return None
-    along = np.linspace(end, length - end, max(4, int((length - 2 * end) / 1.5)))
-    across = np.arange(-half, half + 1e-9, 0.25)
-    pts = (a + along[:, None, None] * d + across[None, :, None] * n).astype(np.float32)
-    prof = cv2.remap(grey, pts[..., 0], pts[..., 1], cv2.INTER_LINEAR,
-                     borderMode=cv2.BORDER_REPLICATE).astype(float)
+    end = np.maximum(0.12 * length, 1.5 * half)
+    usable = length - 2 * end
+    # one profile per 1.5 px of edge, at most MAX_PROFILES (a line from 32 edge points is
+    # as good as the sub-pixel crossings allow; longer edges only cost time)
+    count = min(MAX_PROFILES, max(4, int(usable.max() / 1.5)))
+    t = np.linspace(0.0, 1.0, count)
+    along = end[:, None] + t[None, :] * np.maximum(usable, 0.0)[:, None]     # (4, K)
+    across = np.arange(-half, half + 1e-9, 0.25)                              # (A,)
+    pts = (a[:, None, None, :] + along[:, :, None, None] * d[:, None, None, :]
+           + across[None, None, :, None] * n[:, None, None, :]).astype(np.float32)
+    k, m = count, len(across)
+    prof = cv2.remap(grey, pts[..., 0].reshape(4 * k, m), pts[..., 1].reshape(4 * k, m),
+                     cv2.INTER_LINEAR, borderMode=cv2.BORDER_REPLICATE).astype(float)
     dark, light = prof[:, :2].mean(axis=1), prof[:, -2:].mean(axis=1)
     ok = light - dark > 20.0
     mid = (dark + light) / 2
-    above = prof >= mid[:, None]
-    j = np.argmax(above, axis=1)
+    j = np.argmax(prof >= mid[:, None], axis=1)
     ok &= j > 0
     j = np.maximum(j, 1)
-    rows = np.arange(len(along))
+    rows = np.arange(4 * k)
     p0, p1 = prof[rows, j - 1], prof[rows, j]
-    s = across[j - 1] + (mid - p0) / np.maximum(p1 - p0, 1e-9) * (across[1] - across[0])
-    if ok.sum() < 3:
-        return None
-    edge = a + along[ok, None] * d + s[ok, None] * n
-    c = edge.mean(axis=0)
-    normal = np.linalg.svd(edge - c)[2][1]
-    return normal, normal @ c
+    off = across[j - 1] + (mid - p0) / np.maximum(p1 - p0, 1e-9) * (across[1] - across[0])
+    ok = ok.reshape(4, k) & (usable[:, None] >= 3)
+    edge = (a[:, None, :] + along[:, :, None] * d[:, None, :]
+            + off.reshape(4, k)[:, :, None] * n[:, None, :])               # (4, K, 2)
+    w = ok.astype(float)
+    cnt = w.sum(axis=1)
+    c = (edge * w[:, :, None]).sum(axis=1) / np.maximum(cnt, 1)[:, None]
+    r = (edge - c[:, None, :]) * w[:, :, None]
+    sxx, syy = (r[..., 0] ** 2).sum(axis=1), (r[..., 1] ** 2).sum(axis=1)
+    sxy = (r[..., 0] * r[..., 1]).sum(axis=1)
+    # normal of the TLS line: eigenvector of the smaller eigenvalue of [[sxx, sxy], [sxy, syy]]
+    theta = 0.5 * np.arctan2(2 * sxy, sxx - syy)             # direction of the line
+    normal = np.column_stack([-np.sin(theta), np.cos(theta)])
+    offset = np.einsum("ij,ij->i", normal, c)
+    bad = cnt < 3
+    normal[bad], offset[bad] = np.nan, np.nan
+    return normal, offset
 
 
-def refine_quad(grey: np.ndarray, quad: np.ndarray, cells: int) -> np.ndarray:
+def refine_quad(grey: np.ndarray, quad: np.ndarray, cells: int,
+                return_found: bool = False):
     """Corners (4, 2) of a marker's outer black square, refined by fitting its four edges
     with sub-pixel edge points and intersecting adjacent lines; corners whose edges cannot be
-    fitted keep the detector's estimate. ``cells``: marker side in cells (bits + border)."""
+    fitted keep the given estimate. ``cells``: marker side in cells (bits + border).
+    ``return_found``: also return how many corners were refined (0..4)."""
     quad = np.asarray(quad, dtype=float)
-    centre = quad.mean(axis=0)
     cell_px = np.mean(np.hypot(*(np.roll(quad, -1, axis=0) - quad).T)) / cells
-    lines = [_edge_line(grey, quad[i], quad[(i + 1) % 4], centre, cell_px) for i in range(4)]
+    normal, offset = _edge_lines(grey, quad, cell_px)
     out = quad.copy()
+    found = 0
+    nl, dl = normal.tolist(), offset.tolist()     # 2x2 solves by Cramer's rule, in floats
     for i in range(4):
-        before, after = lines[i - 1], lines[i]
-        if before is not None and after is not None:
-            A = np.array([before[0], after[0]])
-            if abs(np.linalg.det(A)) > 1e-3:
-                out[i] = np.linalg.solve(A, [before[1], after[1]])
-    return out
+        (a, b), (c, e) = nl[i - 1], nl[i]
+        det = a * e - b * c
+        if math.isfinite(det) and abs(det) > 1e-3:
+            out[i] = ((dl[i - 1] * e - b * dl[i]) / det, (a * dl[i] - c * dl[i - 1]) / det)
+            found += 1
+    return (out, found) if return_found else out
 
 
 # ============================================================================ textured
@@ -427,23 +542,71 @@ class TexturedDetector:
     """
     kind = "textured"
 
+    # Tracking: keypoints of the window only (fewer, fewer pyramid levels: the scale changes
+    # little between frames; the window keeps its 0.6 margin: keypoints beyond the servo
+    # points' hull hold the homography, and with 0.25 the tray_poster_offset episode's pose
+    # estimates spread 1.1 mm / 0.21 deg per frame and it never arrived; with 0.6 0.24 mm /
+    # 0.045 deg, against 0.08 mm / 0.015 deg for 1500 keypoints matched by brute force at
+    # ~27 ms a frame), each compared only with the model keypoints the last homography
+    # puts within GATE_PX (+ the predicted motion) of it, at most GATE_CANDIDATES of them;
+    # Lowe's ratio among those, and at most MAX_HAMMING bits apart (of 256). Common practice,
+    # no source.
+    TRACK_FEATURES, TRACK_LEVELS = 500, 4
+    GATE_PX, GATE_CANDIDATES, MAX_HAMMING = 24.0, 8, 64
+    # ... then again around the homography of the first pass within REGATE_PX (a mismatch
+    # that passed the wide gate is then no candidate); common practice, no source
+    REGATE_PX = 4.0
+
     def __init__(self, model: PlanarModel, *, n_features=1500, ratio=0.8, ransac_px=3.0,
                  min_inliers=15, margin=0.6):
         self.model = model
+        self._model_words = np.ascontiguousarray(model.descriptors).view(np.uint64)
         self._orb = _orb(n_features)
+        self._orb_track = cv2.ORB_create(nfeatures=self.TRACK_FEATURES, scaleFactor=1.2,
+                                         nlevels=self.TRACK_LEVELS, fastThreshold=20)
         self._matcher = cv2.BFMatcher(cv2.NORM_HAMMING)
         self.ratio, self.ransac_px, self.min_inliers = ratio, ransac_px, min_inliers
         self.expected = len(model.keys)
         self.margin = margin
 
+    def _gated_matches(self, uv, words, H, reach, gate_px):
+        """(model indices, image points) of the gated matches (see GATE_PX) of the keypoints
+        at ``uv`` (n, 2) image pixels with descriptors ``words`` (n, 4) uint64."""
+        from scipy.spatial import cKDTree
+        model_uv = cv2.perspectiveTransform(self.model.keypoints.reshape(-1, 1, 2),
+                                            H).reshape(-1, 2)
+        dist, idx = cKDTree(model_uv).query(uv, k=self.GATE_CANDIDATES,
+                                            distance_upper_bound=gate_px + reach)
+        valid = np.isfinite(dist)
+        idx[~valid] = 0
+        # Hamming distances: the 256-bit descriptors as four 64-bit words, XOR, bit count
+        bits = _bit_count(words[:, None, :] ^ self._model_words[idx]).sum(axis=2, dtype=np.int32)
+        bits[~valid] = 10 ** 6
+        rows = np.arange(len(uv))
+        first = bits.argmin(axis=1)
+        best = bits[rows, first]
+        bits[rows, first] = 10 ** 6
+        second = bits.min(axis=1)
+        good = (best <= self.MAX_HAMMING) & (best < self.ratio * second)
+        return idx[rows, first][good], uv[good]
+
     def detect(self, image: np.ndarray, windows=None) -> Detection:
-        """The servo points in the full image, or in the window ``[(None, rect)]``."""
+        """The servo points in the full image, or in the window ``[(None, rect[, H, reach])]``
+        (with the last homography ``H`` and the predicted motion ``reach`` px: gated
+        matching, see ``GATE_PX``)."""
         t0 = time.perf_counter()
-        area = _search_area(to_mono8(_colour_image(image)), windows)
+        grey_all = _colour_image(image)
         kps, des, x0, y0 = (), None, 0, 0
-        if area is not None:
-            grey, x0, y0 = area
-            kps, des = self._orb.detectAndCompute(grey, None)
+        gate = None
+        if windows is None:
+            kps, des = self._orb.detectAndCompute(to_mono8(grey_all), None)
+        else:
+            view = _window(grey_all, windows[0][1], min_side=16)
+            if view is not None:
+                sub, x0, y0 = view
+                gate = windows[0][2:] or None
+                orb = self._orb if gate is None else self._orb_track
+                kps, des = orb.detectAndCompute(to_mono8(sub), None)
         quality = {"n_keypoints": len(kps), "n_matches": 0, "n_inliers": 0,
                    "inlier_ratio": 0.0, "reprojection_rms_px": float("nan")}
         empty = Detection("textured", np.zeros((0, 2)), [], _size(image), quality=quality,
@@ -451,18 +614,35 @@ class TexturedDetector:
         if des is None or len(kps) < 4:
             quality["reason"] = "too few keypoints"
             return self._timed(empty, t0)
-        pairs = self._matcher.knnMatch(des, self.model.descriptors, k=2)
-        good = [p[0] for p in pairs if len(p) == 2 and p[0].distance < self.ratio * p[1].distance]
-        quality["n_matches"] = len(good)
-        if len(good) < max(self.min_inliers, 4):
-            quality["reason"] = f"{len(good)} descriptor matches, need {self.min_inliers}"
+        if gate is None:
+            pairs = self._matcher.knnMatch(des, self.model.descriptors, k=2)
+            good = [p[0] for p in pairs
+                    if len(p) == 2 and p[0].distance < self.ratio * p[1].distance]
+            src = self.model.keypoints[[m.trainIdx for m in good]]
+            dst = np.array([kps[m.queryIdx].pt for m in good]).reshape(-1, 2) + (x0, y0)
+        else:
+            uv = cv2.KeyPoint_convert(kps).astype(float) + (x0, y0)
+            words = np.ascontiguousarray(des).view(np.uint64)      # (n, 4): 256 bits each
+            H_last, reach = gate
+            model_i, dst = self._gated_matches(uv, words, H_last, reach, self.GATE_PX)
+            src = self.model.keypoints[model_i]
+        quality["n_matches"] = len(dst)
+        if len(dst) < max(self.min_inliers, 4):
+            quality["reason"] = f"{len(dst)} descriptor matches, need {self.min_inliers}"
             return self._timed(empty, t0)
-        src = self.model.keypoints[[m.trainIdx for m in good]]
-        dst = np.array([kps[m.queryIdx].pt for m in good]) + (x0, y0)
         H, inl = cv2.findHomography(src, dst, cv2.RANSAC, self.ransac_px, maxIters=2000,
                                     confidence=0.999)
+        if gate is not None and H is not None:
+            # second pass: gated again around this frame's own homography, tightly
+            model_i, dst = self._gated_matches(uv, words, H, 0.0, self.REGATE_PX)
+            src = self.model.keypoints[model_i]
+            quality["n_matches"] = len(dst)
+            H = inl = None
+            if len(dst) >= max(self.min_inliers, 4):
+                H, inl = cv2.findHomography(src, dst, cv2.RANSAC, self.ransac_px,
+                                            maxIters=2000, confidence=0.999)
         inliers = 0 if inl is None else int(inl.sum())
-        quality.update(n_inliers=inliers, inlier_ratio=inliers / len(good))
+        quality.update(n_inliers=inliers, inlier_ratio=inliers / len(dst))
         if H is None or inliers < self.min_inliers:
             quality["reason"] = f"{inliers} homography inliers, need {self.min_inliers}"
             return self._timed(empty, t0)
@@ -485,10 +665,15 @@ class TexturedDetector:
         return det
 
     def windows(self, last: Detection, predicted: np.ndarray) -> list:
-        """One window around the predicted servo points, grown by ``margin`` of their extent."""
+        """One window around the predicted servo points, grown by ``margin`` of their extent,
+        with the last homography and the predicted motion for gated matching."""
         lo, hi = predicted.min(axis=0), predicted.max(axis=0)
         grow = self.margin * (hi - lo).max() + 32.0
-        return [(None, (lo[0] - grow, lo[1] - grow, hi[0] + grow + 1, hi[1] + grow + 1))]
+        rect = (lo[0] - grow, lo[1] - grow, hi[0] + grow + 1, hi[1] + grow + 1)
+        if last.homography is None or len(predicted) != len(last.points):
+            return [(None, rect)]
+        reach = float(np.hypot(*(predicted - last.points).T).max())
+        return [(None, rect, last.homography, reach)]
 
 
 def make_detector(target: Target, model: PlanarModel | None = None):
