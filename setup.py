@@ -42,6 +42,7 @@ setup(
         "console_scripts": [
             "vservo = vservo_node.cli:main",
             "vservo_node = vservo_node.ros.controller_node:main",
+            "vservo_managed = vservo_node.ros.controller_node:main_managed",
             "vservo_sim = vservo_node.ros.sim_node:main",
             "vservo_recorder = vservo_node.ros.recorder_node:main",
         ],

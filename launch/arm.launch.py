@@ -15,6 +15,9 @@ Start from config/real_arm_template.yaml (keyed ``/**/vservo``, so it also appli
   servo/twist_cmd).
 - ``command_interface``: overrides ``io.command_interface`` of the file (empty: the file's,
   else the parameter's default).
+- ``autostart`` (default true): the controller is a managed (lifecycle) node; launch
+  configures and activates it. false: it stays unconfigured for a lifecycle manager
+  (``ros2 lifecycle set /vservo configure``, then ``activate``).
 - ``namespace``; ``use_sim_time`` (default false: a real arm; true under an external
   simulator that publishes /clock).
 - ``enclave``: SROS2 enclave every node runs in (``--enclave``; empty: none). Create it with
@@ -25,7 +28,7 @@ Start from config/real_arm_template.yaml (keyed ``/**/vservo``, so it also appli
   to ~/.ros), ``record:=true`` adds the run recorder, writing under ``output_dir`` (default
   ``$ROS_HOME/vservo/runs``). Neither depends on the folder launch was started from.
 
-The node starts with motion disabled. Read the README's safety section first.
+The node starts with motion disabled, also once active. Read the README's safety section first.
 """
 import os
 
@@ -36,7 +39,8 @@ from launch.substitutions import LaunchConfiguration
 from launch_ros.actions import Node
 
 from vservo_node import interface
-from vservo_node.ros.launch_support import COMMAND_TOPICS, command_interface, ros_home_folder
+from vservo_node.ros.launch_support import (COMMAND_TOPICS, command_interface,
+                                             managed_controller, ros_home_folder)
 
 PACKAGE = "vservo_node"
 
@@ -57,9 +61,10 @@ def _nodes(context):
     overrides = {"use_sim_time": use_sim_time, "reference.directory": arg("reference_dir")}
     if arg("command_interface"):
         overrides["io.command_interface"] = kind
-    nodes = [Node(package=PACKAGE, executable="vservo_node", name=interface.CONTROLLER_NODE,
-                  output="screen", namespace=namespace, parameters=[params_file, overrides],
-                  remappings=remaps, ros_arguments=ros_arguments)]
+    nodes = managed_controller(arg("autostart"), name=interface.CONTROLLER_NODE,
+                               output="screen", namespace=namespace,
+                               parameters=[params_file, overrides], remappings=remaps,
+                               ros_arguments=ros_arguments)
     if arg("record").lower() in ("true", "1", "yes"):
         nodes.append(Node(package=PACKAGE, executable="vservo_recorder",
                           name=interface.RECORDER_NODE,
@@ -88,6 +93,9 @@ def generate_launch_description():
                               description="joint_velocity, joint_trajectory, tool_twist or "
                                           "camera_twist (empty: the parameter file's)"),
         DeclareLaunchArgument("namespace", default_value=""),
+        DeclareLaunchArgument("autostart", default_value="true",
+                              description="configure and activate the controller (a managed "
+                                          "node); false: leave it unconfigured"),
         DeclareLaunchArgument("use_sim_time", default_value="false",
                               description="follow /clock (an external simulator)"),
         DeclareLaunchArgument("enclave", default_value="",

@@ -24,6 +24,8 @@ Arguments:
   are written (default ``$ROS_HOME/vservo/references``, ROS_HOME defaulting to ~/.ros).
 - ``record`` (default true) and ``output_dir`` (default ``$ROS_HOME/vservo/runs``): one bag per
   run. Neither folder depends on where launch was started.
+- ``autostart`` (default true): configure and activate the controller, a managed
+  (lifecycle) node; false leaves it unconfigured (see arm.launch.py).
 - ``enclave``: SROS2 enclave every node runs in (``--enclave``; empty: none), see
   arm.launch.py.
 
@@ -42,7 +44,7 @@ from launch_ros.actions import Node
 from vservo_node import interface
 from vservo_node.params import flatten
 from vservo_node.ros.demo_run import scenario_controller_params
-from vservo_node.ros.launch_support import ros_home_folder
+from vservo_node.ros.launch_support import managed_controller, ros_home_folder
 from vservo_node.sim import load_scenario
 
 PACKAGE = "vservo_node"
@@ -68,9 +70,9 @@ def _nodes(context):
                          {"scenario": scenario_ref, "use_sim_time": use_sim_time,
                           "publish_clock": use_sim_time}],
              ros_arguments=ros_arguments),
-        Node(package=PACKAGE, executable="vservo_node", name=interface.CONTROLLER_NODE,
-             output="screen", parameters=[arg("controller_params"), controller],
-             ros_arguments=ros_arguments),
+        *managed_controller(arg("autostart"), name=interface.CONTROLLER_NODE, namespace="",
+                            output="screen", parameters=[arg("controller_params"), controller],
+                            ros_arguments=ros_arguments),
     ] + ([Node(package=PACKAGE, executable="vservo_recorder", name=interface.RECORDER_NODE,
                # the recorder closes its bag and writes the report of a run that just ended
                # on SIGINT: up to ~10 s on a busy machine, longer than launch's default 5 s
@@ -103,6 +105,9 @@ def generate_launch_description():
                               description="record each run as a rosbag2 bag (MCAP)"),
         DeclareLaunchArgument("output_dir", default_value=ros_home_folder("vservo", "runs"),
                               description="folder for recorded runs"),
+        DeclareLaunchArgument("autostart", default_value="true",
+                              description="configure and activate the controller (a managed "
+                                          "node); false: leave it unconfigured"),
         DeclareLaunchArgument("enclave", default_value="",
                               description="SROS2 enclave of the nodes, e.g. /vservo (empty: none)"),
         OpaqueFunction(function=_nodes),

@@ -19,7 +19,8 @@ from hypothesis import strategies as st
 from vservo_node import params
 from vservo_node.control.kinematics import load_robot
 from vservo_node.control.safety import LimitSet, limit_command
-from vservo_node.episode import PointScene, limits_for, servo_config_from_params
+from vservo_node.episode import PointScene, limits_for
+from vservo_node.settings import Settings, servo_config
 from vservo_node.servo import Observation, Servo, ServoSettings
 from vservo_node.vision.camera import CameraModel
 
@@ -211,7 +212,7 @@ def test_every_in_range_value_applies_without_raising(rig, data):
     arm = robot.arm
     values = params.defaults()
     values["limits.joint_acceleration"] = [2.0]
-    servo = Servo(arm, *servo_config_from_params(arm, values), values["robot.tool_point"])
+    servo = Servo(arm, *servo_config(Settings.from_values(values), arm), values["robot.tool_point"])
     chosen = data.draw(st.lists(st.sampled_from(SWEPT), min_size=1, max_size=4,
                                      unique_by=lambda p: p.name))
     for param in chosen:
@@ -220,7 +221,7 @@ def test_every_in_range_value_applies_without_raising(rig, data):
         values[param.name] = params.check_value(param, value)[0]
     if not params.validate(values).ok:
         return            # refused as a whole (e.g. gain x delay bound): nothing is applied
-    settings_, limits = servo_config_from_params(arm, values)
+    settings_, limits = servo_config(Settings.from_values(values), arm)
     Servo.check_config(arm, settings_, limits)
     servo.reconfigure(settings_, limits)
     servo.set_reference(scene.taught_view(robot.home))

@@ -23,16 +23,16 @@ import pytest
 from scipy.spatial.transform import Rotation
 
 sys.path.insert(0, str(Path(__file__).parent / "calib"))
-import calib_bags  # noqa: E402
+import calib_bags
 
-from vservo_node import params  # noqa: E402
-from vservo_node.calib import handeye as he  # noqa: E402
-from vservo_node.calib import samples as cs  # noqa: E402
-from vservo_node.calib.check import check_hand_eye  # noqa: E402
-from vservo_node.calib.trace import TraceRecorder  # noqa: E402
-from vservo_node.control import frames  # noqa: E402
-from vservo_node.episode import run_scenario_episode  # noqa: E402
-from vservo_node.sim import load_scenario  # noqa: E402
+from vservo_node import params
+from vservo_node.calib import handeye as he
+from vservo_node.calib import samples as cs
+from vservo_node.calib.check import check_hand_eye
+from vservo_node.calib.trace import TraceRecorder
+from vservo_node.control import frames
+from vservo_node.episode import run_scenario_episode
+from vservo_node.sim import load_scenario
 
 SCENARIO = "tray_offset"
 ERROR = frames.transform(Rotation.from_rotvec(np.radians([12.0, -16.0, 0.0])).as_matrix(),
@@ -64,9 +64,9 @@ def calibrate_cell(tmp_path: Path):
     cal_bag = he.calibrate(bag_samples, "hand", cal.focal_px)
     r_cal, _ = _run(sc, T_loaded)
     r_true, _ = _run(sc, sc.T_tool_camera_true)
-    return dict(sc=sc, wrong=r_wrong, check=check, samples=samples, info=info, cal=cal,
-                cal_bag=cal_bag, bag_samples=bag_samples, T_loaded=T_loaded,
-                calibrated=r_cal, true=r_true)
+    return {"sc": sc, "wrong": r_wrong, "check": check, "samples": samples, "info": info,
+            "cal": cal, "cal_bag": cal_bag, "bag_samples": bag_samples, "T_loaded": T_loaded,
+            "calibrated": r_cal, "true": r_true}
 
 
 @pytest.fixture(scope="module")

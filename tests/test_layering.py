@@ -5,7 +5,7 @@ from pathlib import Path
 PACKAGE = Path(__file__).resolve().parent.parent / "vservo_node"
 CORE = ["vision", "control", "sim", "record", "calib", "servo.py", "episode.py", "params.py",
         "perception.py", "yaml_entries.py", "yaml_files.py",
-        "interface.py", "paths.py"]
+        "interface.py", "paths.py", "settings.py"]
 
 
 def _imports(path: Path):

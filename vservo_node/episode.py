@@ -18,9 +18,10 @@ import numpy as np
 
 from vservo_node.control import frames
 from vservo_node.control.mounting import mount_from_params
-from vservo_node.control.safety import LimitSet
 from vservo_node.interface import SENSING_MODES
 from vservo_node.servo import Observation, Servo, ServoSettings, TaughtView
+from vservo_node.settings import Settings, depth_settings, servo_config
+from vservo_node.settings import limits_for  # noqa: F401 - re-exported: callers import it here
 
 
 @dataclass
@@ -249,16 +250,6 @@ def run_episode(servo: Servo, sense, q0, T_base_camera_goal, arm_true, *, rate_h
     return meter.result(servo, status, t, arm_true.camera_pose(q))
 
 
-def limits_for(arm, *, velocity_scale: float = 0.5, acceleration=2.0, position_margin=0.03,
-               tool_linear_max=0.10, camera_linear_max=0.10, angular_max=0.6) -> LimitSet:
-    """A LimitSet for ``arm`` from URDF velocity/position limits and the given settings."""
-    accel = np.broadcast_to(np.asarray(acceleration, dtype=float), (arm.n,)).copy()
-    return LimitSet(velocity=arm.velocity_limits.copy(), acceleration=accel,
-                    lower=arm.lower + position_margin, upper=arm.upper - position_margin,
-                    velocity_scale=velocity_scale, tool_linear_max=tool_linear_max,
-                    camera_linear_max=camera_linear_max, angular_max=angular_max)
-
-
 @dataclass(frozen=True)
 class PointCase:
     """A core closed-loop case: the camera starts offset from its taught pose above four points.
@@ -350,27 +341,10 @@ def episode_params(overrides: dict | None = None, camera_rate_hz: float | None =
     return checked.values
 
 
-def servo_config_from_params(arm, values: dict) -> tuple[ServoSettings, LimitSet]:
-    """(ServoSettings, LimitSet) for ``arm`` from validated parameter values (``limits.*``
-    entries); ValueError saying what does not fit the arm. The node and the headless runs
-    share it, so they judge the same settings."""
-    acceleration = values["limits.joint_acceleration"]
-    if len(acceleration) not in (1, arm.n):
-        raise ValueError(f"limits.joint_acceleration has {len(acceleration)} values; expected 1 "
-                         f"or {arm.n} (one per joint of {', '.join(arm.joint_names)})")
-    limits = limits_for(arm, velocity_scale=values["limits.joint_velocity_scale"],
-                        acceleration=acceleration,
-                        position_margin=values["limits.position_margin"],
-                        tool_linear_max=values["limits.tool_linear_speed"],
-                        camera_linear_max=values["limits.camera_linear_speed"],
-                        angular_max=values["limits.angular_speed"])
-    return ServoSettings.from_params(values), limits
-
-
 def servo_from_params(arm, values: dict, mount=None) -> Servo:
     """A Servo for ``arm`` (the hand-eye it believes) from validated parameter values;
     ``mount`` (control.mounting) default: the values' robot.camera_mount."""
-    settings, limits = servo_config_from_params(arm, values)
+    settings, limits = servo_config(Settings.from_values(values), arm)
     if mount is None:
         mount = mount_from_params(values, arm)
     return Servo(arm, settings, limits, values["robot.tool_point"], mount=mount)
@@ -469,7 +443,7 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     """
     import tempfile
 
-    from vservo_node.perception import DepthSettings, Perception, taught_view
+    from vservo_node.perception import Perception, taught_view
     from vservo_node.sim import Scenario, SimCell, load_scenario
     from vservo_node.vision import image_io
     from vservo_node.vision.reference import load_reference
@@ -482,7 +456,7 @@ def run_scenario_episode(scenario, overrides: dict | None = None, seed: int = 0,
     cell = SimCell(sc)
     camera = focal_scaled(sc.camera, focal_scale) if focal_scale != 1.0 else sc.camera
     servo = servo_from_params(sc.arm_model("belief"), values, mount=sc.mount("belief"))
-    depth = DepthSettings.from_params(values)
+    depth = depth_settings(Settings.from_values(values))
     width, height = camera.width, camera.height
 
     def bgr(rgb):  # the node reads the sim's rgb8 images this way

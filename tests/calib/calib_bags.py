@@ -12,7 +12,7 @@ project's RunRecorder in the topics the cell and the controller publish:
 from __future__ import annotations
 
 import json
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
@@ -26,7 +26,7 @@ T0_NS = 10**9
 
 
 def _ns(t):
-    return T0_NS + int(round(t * 1e9))
+    return T0_NS + round(t * 1e9)
 
 
 def _header(T, t, frame=""):
@@ -69,7 +69,7 @@ def write_calibration_bag(root: Path, scenario, qs, rest_s=0.6, move_s=0.5) -> P
                 s = k / (move_s * 100)
                 plan.append((t + k * 0.01, (1 - s) * q + s * qs[i + 1]))
             t += move_s
-    with RunRecorder(root, "calibration", started=datetime(2000, 1, 1, tzinfo=timezone.utc),
+    with RunRecorder(root, "calibration", started=datetime(2000, 1, 1, tzinfo=UTC),
                      folder_name="calibration") as rec:
         T = rec.typestore.types
         rec.write(itf.TOPIC_ROBOT_DESCRIPTION, "std_msgs/msg/String",
@@ -104,7 +104,7 @@ def write_run_bag(root: Path, scenario, recorder, values: dict, perception_s=Non
               "target.file": str(scenario.target.source or scenario.target.name)}
     params = {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in params.items()}
     with RunRecorder(root, name, params={"/vservo": {"ros__parameters": params}},
-                     started=datetime(2000, 1, 1, tzinfo=timezone.utc),
+                     started=datetime(2000, 1, 1, tzinfo=UTC),
                      folder_name=name) as rec:
         T = rec.typestore.types
         rec.write(itf.TOPIC_CAMERA_INFO, "sensor_msgs/msg/CameraInfo",

@@ -14,11 +14,13 @@ import numpy as np
 import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))
-import calib_bags  # noqa: E402
+from datetime import UTC
 
-from vservo_node.calib import handeye as he  # noqa: E402
-from vservo_node.calib import samples as cs  # noqa: E402
-from vservo_node.sim import load_scenario  # noqa: E402
+import calib_bags
+
+from vservo_node.calib import handeye as he
+from vservo_node.calib import samples as cs
+from vservo_node.sim import load_scenario
 
 SCENARIO = "tray_offset"
 
@@ -72,11 +74,11 @@ def test_a_bag_gives_one_sample_per_rest_and_none_in_motion(sim_samples, tmp_pat
 
 
 def test_a_bag_without_images_is_refused_in_words(tmp_path):
-    from datetime import datetime, timezone
+    from datetime import datetime
 
     from vservo_node.record.bag import RunRecorder
 
-    with RunRecorder(tmp_path, "empty", started=datetime(2000, 1, 1, tzinfo=timezone.utc),
+    with RunRecorder(tmp_path, "empty", started=datetime(2000, 1, 1, tzinfo=UTC),
                      folder_name="empty") as rec:
         T = rec.typestore.types
         rec.write("joint_states", "sensor_msgs/msg/JointState", T["sensor_msgs/msg/JointState"](

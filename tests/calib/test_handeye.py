@@ -15,11 +15,11 @@ import numpy as np
 import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))
-import handeye_synthetic as hs  # noqa: E402
+import handeye_synthetic as hs
 
-from vservo_node import params  # noqa: E402
-from vservo_node.calib import handeye as he  # noqa: E402
-from vservo_node.control import frames  # noqa: E402
+from vservo_node import params
+from vservo_node.calib import handeye as he
+from vservo_node.control import frames
 
 AX_XB = list(he.HAND_EYE_METHODS)
 

@@ -4,11 +4,14 @@ then print one JSON object with its publishers, subscriptions, services, enclave
 of the parameters asked for.
 
     python graph_probe.py /cell1/vservo [--params a.b c.d] [--publishes TOPIC ...]
-                          [--subscribes TOPIC ...]                          [--message TOPIC] [--timeout S]
+                          [--subscribes TOPIC ...] [--message TOPIC] [--state LABEL]
+                          [--timeout S]
 
 ``--publishes`` / ``--subscribes`` also wait until the node's publishers / subscriptions include
 those topics (a node announces its endpoints a moment after its name); ``--message`` until one message arrived on that topic
-(of the type the graph names, best-effort so any publisher matches). Exit 0 with the JSON; 1 with a message on timeout.
+(of the type the graph names, best-effort so any publisher matches); ``--state`` until the
+node's lifecycle state (lifecycle_msgs GetState on <node>/get_state) is LABEL, e.g. active.
+Exit 0 with the JSON; 1 with a message on timeout.
 Run it inside tools/isolated like every ROS process of the tests.
 """
 import argparse
@@ -31,6 +34,7 @@ def main():
     parser.add_argument("--publishes", nargs="*", default=[])
     parser.add_argument("--subscribes", nargs="*", default=[])
     parser.add_argument("--message", default=None)
+    parser.add_argument("--state", default=None)
     parser.add_argument("--timeout", type=float, default=60.0)
     args = parser.parse_args()
     namespace, _, name = args.node.rpartition("/")
@@ -72,7 +76,23 @@ def main():
         probe.create_subscription(msg_class, args.message, received.append,
                                   qos_profile_sensor_data)
         wait(f"a message on {args.message}", lambda: bool(received))
+    state = None
+    if args.state:
+        from lifecycle_msgs.srv import GetState
+        client = probe.create_client(GetState, f"{args.node}/get_state")
+        wait("the get_state service", client.service_is_ready)
+
+        def reached():
+            nonlocal state
+            future = client.call_async(GetState.Request())
+            wait("the lifecycle state", future.done)
+            state = future.result().current_state.label
+            if state != args.state:
+                time.sleep(0.2)
+            return state == args.state
+        wait(f"{args.node} to be {args.state} (last seen: {state})", reached)
     out = {
+        "state": state,
         "publishers": publishers(),
         "subscriptions": subscriptions(),
         "services": dict(probe.get_service_names_and_types_by_node(name, namespace)),

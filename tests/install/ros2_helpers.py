@@ -148,7 +148,7 @@ class Launch:
 
 
 def probe(ros2: Ros2, node: str, *, params=(), publishes=(), subscribes=(), message=None,
-          timeout=90.0) -> dict:
+          state=None, timeout=90.0) -> dict:
     """tests/install/graph_probe.py against a running node (from the tool venv)."""
     import json
     command = [ros2.python(), str(Path(__file__).with_name("graph_probe.py")), node,
@@ -161,5 +161,7 @@ def probe(ros2: Ros2, node: str, *, params=(), publishes=(), subscribes=(), mess
         command += ["--subscribes", *subscribes]
     if message:
         command += ["--message", message]
+    if state:
+        command += ["--state", state]
     proc = ros2.run(command, timeout=timeout + 30)
     return json.loads(proc.stdout.strip().splitlines()[-1])

@@ -30,7 +30,7 @@ def test_colcon_build_on_jazzy(ros2_jazzy, workspace_jazzy):
     out = ros2_jazzy.run(Ros2.sourced(workspace_jazzy, "ros2", "pkg", "executables",
                                       "vservo_node")).stdout
     assert {line.split()[1] for line in out.splitlines() if line.strip()} == {
-        "vservo", "vservo_node", "vservo_sim", "vservo_recorder"}
+        "vservo", "vservo_node", "vservo_managed", "vservo_sim", "vservo_recorder"}
     version = ros2_jazzy.run(Ros2.sourced(workspace_jazzy, "python", "-c", (
         "import importlib.metadata as m; print(m.version('ros-rclpy'), "
         "m.version('ros-fastrtps'))"))).stdout.split()

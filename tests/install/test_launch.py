@@ -1,6 +1,7 @@
 """The launch files through `ros2 launch` from a colcon install, network-isolated.
 
-- arm.launch.py with each command interface: `command:=` moves whichever topic the interface
+- arm.launch.py brings the managed controller to active (autostart; `autostart:=false` leaves
+  it unconfigured); with each command interface: `command:=` moves whichever topic the interface
   publishes on (seen in the graph), under `namespace:=` the shipped template's values apply
   (speed scale 0.2 and the permit, not the defaults 0.5 and off: its keys are `/**/vservo`),
   `enclave:=` reaches the node, use_sim_time defaults to false, references go under ROS_HOME.
@@ -43,6 +44,7 @@ def test_arm_launch_remaps_every_command_interface(ros2, workspace):
                 "image:=/wrist/image_raw"], ros2.scratch / f"arm_{kind}.log")
         for kind, launch in launches.items():
             seen = probe(ros2, f"/cell_{kind}/vservo", publishes=[f"/arm_{kind}/commands"],
+                         state="active",   # launch configures and activates it (autostart)
                          subscribes=["/wrist/image_raw"],
                          params=["limits.joint_velocity_scale", "io.require_permit",
                                  "io.command_interface", "use_sim_time",
@@ -65,6 +67,22 @@ def test_arm_launch_remaps_every_command_interface(ros2, workspace):
     finally:
         for launch in launches.values():
             launch.kill()
+
+
+def test_arm_launch_autostart_false_leaves_the_controller_unconfigured(ros2, workspace):
+    """autostart:=false: the managed controller waits unconfigured (no supervisor services,
+    no command publisher) for a lifecycle manager; a group SIGINT still ends it cleanly."""
+    launch = Launch(ros2, workspace, ["arm.launch.py", "namespace:=idle", "autostart:=false"],
+                    ros2.scratch / "arm_idle.log")
+    try:
+        seen = probe(ros2, "/idle/vservo", state="unconfigured")
+        assert "/idle/vservo/change_state" in seen["services"]
+        assert not any(name.startswith("/idle/servo/") for name in seen["services"]), seen
+        assert "/idle/servo/joint_velocity_cmd" not in seen["publishers"]
+        rc = launch.interrupt()
+    finally:
+        launch.kill()
+    assert_stopped_cleanly(launch, rc, expected=1)
 
 
 def test_sim_cell_launch_scenario_clock_and_clean_stop(stack, request):

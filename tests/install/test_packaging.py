@@ -18,7 +18,7 @@ import pytest
 from ros2_helpers import ROOT, Ros2, make_workspace
 
 DISTROS = ("jazzy", "kilted")
-EXECUTABLES = {"vservo", "vservo_node", "vservo_sim", "vservo_recorder"}
+EXECUTABLES = {"vservo", "vservo_node", "vservo_managed", "vservo_sim", "vservo_recorder"}
 
 
 def manifest_keys():

@@ -9,7 +9,6 @@ from __future__ import annotations
 import types
 
 import numpy as np
-
 from sim_helpers import config_scenario, start_sim, stop_sim
 
 from vservo_node.calib import handeye as he
@@ -24,7 +23,7 @@ def test_live_sample_at_rest_is_the_true_target_pose(ros_node):
         args = types.SimpleNamespace(namespace="", urdf=None, base_frame=sc.base_frame,
                                      tool_frame=sc.tool_frame)
         printed = []
-        samples, arm, camera = collect_live(args, sc.target, lines=iter(["\n", "q\n"]),
+        samples, _arm, _camera = collect_live(args, sc.target, lines=iter(["\n", "q\n"]),
                                             out=printed.append)
     finally:
         stop_sim(proc)

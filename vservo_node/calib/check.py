@@ -9,13 +9,18 @@ matrix: Chaumette & Hutchinson, "Visual servo control, Part I: Basic approaches"
 ``X = X^ @ E`` (``E``: the error, expressed in the believed camera frame, the convention of the
 scenario files' ``hand_eye_error``), then ``V = Ad(inv(E)) V^`` (the adjoint of a rigid
 transform: Lynch & Park, Modern Robotics, 2017, sec. 3.3.2; ``frames.twist_transform``).
+With a fixed camera (``robot.camera_mount: fixed``) ``V^ = -Ad(inv(Y^) T_base_tool) V_tool``
+with the believed camera pose ``Y^`` (``robot.fixed_camera_pose``; the eye-to-hand Jacobian of
+control/mounting.py), and a camera pose error ``Y = Y^ @ E`` gives the same ``V = Ad(inv(E))
+V^``: the check and its correction then concern ``robot.fixed_camera_pose``
+(``Trace.camera_jacobian``).
 
 ``E`` is the least-squares fit (SciPy ``least_squares``) of the observed ``ds`` of every frame
 pair of the run, the start nod included, to ``L Ad(inv(E)) V^``, summed over the frames of a pair; the pairs lie back to back
 (no frame in two), each the shortest span whose predicted motion reaches ``MIN_FLOW_PX``, so
 the joint and feature noise of nearly still frames does not dominate. The standard deviations
 come from the covariance ``s^2 (J^T J)^-1`` at the optimum (Hartley & Zisserman, Multiple View
-Geometry, 2nd ed. 2003, sec. 5.2.3), the pairs treated as independent (neighbours share their
+Geometry, 2nd ed. 2003, ch. 5; from memory), the pairs treated as independent (neighbours share their
 end frame, so the figure is somewhat optimistic). The rotation of ``E`` shows in
 every motion and is always observable; its translation only through the camera's rotation
 (the twist transform's ``[t]x R`` block), so it is reported only when its standard deviation
@@ -37,8 +42,8 @@ import numpy as np
 from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
-from vservo_node.control import frames
 from vservo_node.calib.trace import aligned
+from vservo_node.control import frames
 from vservo_node.control.interaction import point_interaction_matrix
 
 LARGE_ERROR_DEG = 10.0
@@ -72,13 +77,15 @@ class HandEyeCheck:
     residual_before_px: float
     residual_after_px: float
     image_lag_s: float = 0.0
+    parameter: str = "robot.hand_eye"     # what ``corrected`` is a value of
 
     @property
     def large(self) -> bool:
         return self.rotation_deg - 2.0 * self.rotation_std_deg >= LARGE_ERROR_DEG
 
     def verdict(self) -> str:
-        rot = (f"hand-eye rotation error {self.rotation_deg:.2f} +- {self.rotation_std_deg:.2f}"
+        what = "hand-eye" if self.parameter == "robot.hand_eye" else "fixed camera pose"
+        rot = (f"{what} rotation error {self.rotation_deg:.2f} +- {self.rotation_std_deg:.2f}"
                f" deg (1 sigma; axis {np.round(self.rotvec_deg, 2).tolist()} deg in the camera)")
         trans = (f"translation error {self.translation_mm:.1f} +- {self.translation_std_mm:.1f} "
                  "mm" if self.translation_observable else
@@ -100,8 +107,9 @@ class HandEyeCheck:
                 "translation_mm": self.translation_mm,
                 "translation_std_mm": self.translation_std_mm,
                 "translation_observable": self.translation_observable,
-                "corrected_hand_eye": [*map(float, self.corrected[:3, 3]),
-                                       *map(float, frames.matrix_to_quat(self.corrected[:3, :3]))],
+                "parameter": self.parameter,
+                "corrected": [*map(float, self.corrected[:3, 3]),
+                              *map(float, frames.matrix_to_quat(self.corrected[:3, :3]))],
                 "n_pairs": self.n_pairs, "image_lag_s": self.image_lag_s, "residual_before_px": self.residual_before_px,
                 "residual_after_px": self.residual_after_px, "large": self.large,
                 "verdict": self.verdict()}
@@ -110,10 +118,8 @@ class HandEyeCheck:
 def frame_pairs(trace, min_flow_px: float = MIN_FLOW_PX, max_span_s: float = MAX_SPAN_S):
     """Frame pairs ``(a, b)`` of the run, back to back, each spanning the fewest frames whose
     predicted feature motion reaches ``min_flow_px`` (RMS over the features; at most
-    ``max_span_s``): ``(ds (K, 2N), L (S, 2N, 6), V_tool (S, 6), group (S,))``, the observed
+    ``max_span_s``): ``(ds (K, 2N), L (S, 2N, 6), V^ (S, 6), group (S,))``, the observed
     motion of each pair and the per-frame steps that make it up (``group`` numbers the pair)."""
-    arm = trace.arm
-    to_camera = arm.camera_from_tool()
     steps_L, steps_V, steps_g, ds = [], [], [], []
     pending_L, pending_V, flow, a = [], [], None, None
     for k in range(trace.n_frames - 1):
@@ -127,11 +133,11 @@ def frame_pairs(trace, min_flow_px: float = MIN_FLOW_PX, max_span_s: float = MAX
         if a is None:
             a, flow = k, 0.0
         q_mid = 0.5 * (trace.q[k] + trace.q[k + 1])
-        V = arm.jacobian_tool(q_mid) @ dq
+        V = trace.camera_jacobian(q_mid) @ dq       # believed camera twist
         L = point_interaction_matrix(xy_mid, Z)
         pending_L.append(L)
         pending_V.append(V)
-        flow = flow + L @ (to_camera @ V)
+        flow = flow + L @ V
         if trace.t[k + 1] - trace.t[a] > max_span_s:       # too slow: start afresh
             pending_L, pending_V, flow, a = [], [], None, None
             continue
@@ -153,16 +159,15 @@ def check_hand_eye(trace, min_flow_px: float = MIN_FLOW_PX) -> HandEyeCheck:
     """Estimate the hand-eye error from a run's trace (module doc). A recorded trace is first
     aligned in time (``trace.aligned``: features are published after capture); the lag and
     the error are then estimated in turn (``ALIGN_ROUNDS``), each with the other's latest."""
-    to_camera = None
+    correction = None
     for _ in range(ALIGN_ROUNDS if trace.joint_t is not None else 1):
-        current, lag = aligned(trace, to_camera)
+        current, lag = aligned(trace, correction)
         fit, ds, cov, r0 = _fit(current, min_flow_px)
-        to_camera = frames.twist_transform(frames.invert(_E_of(fit.x))) @ \
-            trace.arm.camera_from_tool()
+        correction = frames.twist_transform(frames.invert(_E_of(fit.x)))
     E = _E_of(fit.x)
     rot_std = math.degrees(math.sqrt(max(np.trace(cov[:3, :3]), 0.0)))
     trans_std = 1e3 * math.sqrt(max(np.trace(cov[3:, 3:]), 0.0))
-    X_hat = trace.arm.T_tool_camera
+    X_hat = trace.arm.T_tool_camera if trace.fixed is None else trace.fixed.T_base_camera
     observable = trans_std < TRANSLATION_OBSERVABLE_MM
     # the correction applies the translation only where the run showed it
     applied = E if observable else frames.transform(E[:3, :3], np.zeros(3))
@@ -172,7 +177,8 @@ def check_hand_eye(trace, min_flow_px: float = MIN_FLOW_PX) -> HandEyeCheck:
         translation_std_mm=trans_std, translation_observable=observable, E=E,
         corrected=X_hat @ applied, n_pairs=len(ds),
         residual_before_px=float(np.sqrt(np.mean(r0 ** 2))),
-        residual_after_px=float(np.sqrt(np.mean(fit.fun ** 2))), image_lag_s=float(lag))
+        residual_after_px=float(np.sqrt(np.mean(fit.fun ** 2))), image_lag_s=float(lag),
+        parameter="robot.hand_eye" if trace.fixed is None else "robot.fixed_camera_pose")
 
 
 def _E_of(p):
@@ -182,8 +188,7 @@ def _E_of(p):
 def _fit(trace, min_flow_px):
     """(least-squares fit of E's 6 parameters, observed pair motions, covariance, residuals
     at E = I)."""
-    ds, Ls, Vt, group = frame_pairs(trace, min_flow_px)
-    V_hat = Vt @ trace.arm.camera_from_tool().T          # believed camera twists (S, 6)
+    ds, Ls, V_hat, group = frame_pairs(trace, min_flow_px)    # V_hat: believed camera twists
     f = trace.focal_px
     starts = np.flatnonzero(np.r_[True, group[1:] != group[:-1]])
 

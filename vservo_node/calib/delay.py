@@ -10,14 +10,14 @@ The delay is the ``tau`` that maximises the normalized cross-correlation
 ``sum <ds, M dq(tau)> / sqrt(sum |ds|^2 sum |M dq(tau)|^2)`` over the run's frame pairs (the
 start nod included), searched on a 1 ms grid and refined to below the grid by the vertex of
 the parabola through the peak and its two neighbours (sub-sample interpolation of a
-correlation peak, e.g. Bendat & Piersol, Random Data, 4th ed. 2010, sec. 11.? ; from memory:
-the parabolic fit itself is elementary). The same search between the command and the reported
+correlation peak: common practice, no source). The same search between the command and the reported
 joint motion gives the drives' part alone; their difference is how far the images lag the
 joint states (camera latency, or stamps taken late).
 
 Drives follow a velocity command with a pure delay and a lag. A first-order lag of time
 constant ``T`` follows a ramp ``T`` behind (Ogata, Modern Control Engineering, 5th ed. 2010,
-sec. 5.2, unit-ramp response: the error tends to ``T``) but a faster motion such as the start
+sec. 5.2, unit-ramp response: the error tends to ``T``; from memory, and measured by
+tests/calib/test_run_checks.py) but a faster motion such as the start
 nod by less (phase delay ``atan(w T) / w``), so a pure delay alone under-reads a long lag
 (measured: 68.7 ms for 30 ms + 50 ms). The search therefore also passes the command through a
 first-order lag (``LAGS_S``, 5 ms steps) and keeps the lag and delay of the best correlation;
@@ -34,7 +34,7 @@ output period (a new image acts on the command at the next output tick at the la
 - the continuous loop ``de/dt = -lambda e(t - tau)`` with ``tau`` = loop delay + frame period:
   its characteristic equation ``s + lambda exp(-s tau) = 0`` has the roots
   ``s = W_k(-lambda tau) / tau`` (Lambert W: Corless et al., "On the Lambert W function", Adv.
-  Comput. Math. 5, 1996, sec. 1, delay differential equations); the response is free of
+  Comput. Math. 5, 1996, among its applications; from memory); the response is free of
   oscillation (real dominant root) while ``lambda tau <= 1/e`` and stable while
   ``lambda tau < pi/2`` (the gain at which the phase margin ``pi/2 - lambda tau`` of
   ``lambda exp(-s tau) / s`` vanishes). Both are checked numerically in
@@ -98,9 +98,9 @@ class DelayEstimate:
         return self.correlation >= MIN_CORRELATION
 
     def lines(self) -> list[str]:
-        out = [f"command -> image motion: {1e3 * self.delay_s:.1f} ms = pure delay "
-               f"{1e3 * self.latency_s:.1f} ms + first-order lag {1e3 * self.lag_s:.0f} ms "
-               f"(correlation {self.correlation:.4f} over {self.n_pairs} frame pairs)"]
+        out = [(f"command -> image motion: {1e3 * self.delay_s:.1f} ms = pure delay "
+                f"{1e3 * self.latency_s:.1f} ms + first-order lag {1e3 * self.lag_s:.0f} ms "
+                f"(correlation {self.correlation:.4f} over {self.n_pairs} frame pairs)")]
         if math.isfinite(self.drives_s):
             out.append(f"command -> reported joint motion: {1e3 * self.drives_s:.1f} ms (images "
                        f"lag the joint states by {1e3 * (self.delay_s - self.drives_s):.1f} ms)")
@@ -204,8 +204,6 @@ def estimate_delay(trace, output_period_s: float, frame_period_s: float | None =
     """The delay of a run's trace (module doc). ``output_period_s``: 1 / io.output_rate_hz;
     ``frame_period_s``: default the median frame interval; ``lags_s``: the first-order lags
     tried (``(0.0,)``: a pure delay only)."""
-    arm = trace.arm
-    to_camera = arm.camera_from_tool()
     Ms, ds, ta, tb, dq_meas = [], [], [], [], []
     for k in range(trace.n_frames - 1):
         xy_mid = 0.5 * (trace.xy[k] + trace.xy[k + 1])
@@ -214,7 +212,7 @@ def estimate_delay(trace, output_period_s: float, frame_period_s: float | None =
         if not (np.isfinite(xy_mid).all() and np.isfinite(Z).all() and np.all(Z > 0)
                 and np.isfinite(q_mid).all()):
             continue
-        Ms.append(point_interaction_matrix(xy_mid, Z) @ to_camera @ arm.jacobian_tool(q_mid))
+        Ms.append(point_interaction_matrix(xy_mid, Z) @ trace.camera_jacobian(q_mid))
         ds.append((trace.xy[k + 1] - trace.xy[k]).ravel())
         ta.append(trace.t[k])
         tb.append(trace.t[k + 1])

@@ -32,7 +32,7 @@ Solvers, each reported with its residuals (``evaluate``):
   reprojection error of every target point in every sample (SciPy ``least_squares``, trust
   region reflective), started from the OpenCV solution with the smallest reprojection error;
   its covariance ``s^2 (J^T J)^-1`` at the optimum (Hartley & Zisserman, Multiple View Geometry,
-  2nd ed. 2003, sec. 5.2.3, covariance of a least-squares estimate) gives the standard
+  2nd ed. 2003, ch. 5, covariance of a least-squares estimate; from memory) gives the standard
   deviations reported as ``std_mm`` / ``std_deg``.
 
 Residuals of a solution: ``consistency_mm`` / ``_deg``, the RMS spread of the ``W`` each sample

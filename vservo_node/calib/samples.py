@@ -162,8 +162,13 @@ def samples_from_bag(bag, arm, target, camera=None, *, rest_rad: float = REST_RA
     from rosbags.highlevel import AnyReader
 
     from vservo_node import interface as itf
-    from vservo_node.record.bag import (COMPRESSED_IMAGE, IMAGE, default_typestore,
-                                        image_to_rgb, match_topic)
+    from vservo_node.record.bag import (
+        COMPRESSED_IMAGE,
+        IMAGE,
+        default_typestore,
+        image_to_rgb,
+        match_topic,
+    )
     from vservo_node.vision.camera import CameraModel
 
     path = Path(bag)

@@ -19,6 +19,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from vservo_node.control import frames
 from vservo_node.control.pose_error import pose_from_model
 
 
@@ -44,6 +45,20 @@ class Trace:
     joint_t: np.ndarray | None = None
     joint_q: np.ndarray | None = None
     perception_s: np.ndarray | None = None   # per frame: capture -> features published, s
+    fixed: object = None    # control.mounting.FixedCamera the controller believed, or None
+
+    def camera_jacobian(self, q) -> np.ndarray:
+        """6 x n: joint rates -> the camera twist that moves the features as the arm does,
+        through the believed geometry. Wrist camera: ``Ad(inv(X^)) J_tool`` (the camera's own
+        twist). Fixed camera: ``-Ad(T_camera_tool) J_tool``, the tool's twist seen from the
+        still camera with the opposite sign (control/mounting.py), which moves the points as
+        a camera with that twist would. Either way a geometry error ``E`` in the camera axes
+        (true = believed @ E) turns it into ``Ad(inv(E))`` times it (calib/check.py)."""
+        J = self.arm.jacobian_tool(q)
+        if self.fixed is None:
+            return self.arm.camera_from_tool() @ J
+        T_camera_tool = frames.invert(self.fixed.T_base_camera) @ self.arm.fk(q, "tool")
+        return -frames.twist_transform(T_camera_tool) @ J
 
     @property
     def n_frames(self) -> int:
@@ -55,8 +70,8 @@ class TraceRecorder:
     features are the first full frame's keys, and every command. Frames without depths get
     them by PnP of ``target``'s model (when given)."""
 
-    def __init__(self, arm, camera, target=None):
-        self.arm, self.camera, self.target = arm, camera, target
+    def __init__(self, arm, camera, target=None, fixed=None):
+        self.arm, self.camera, self.target, self.fixed = arm, camera, target, fixed
         self.model = None
         self.keys = None
         self.frames, self.commands = [], []
@@ -99,7 +114,7 @@ class TraceRecorder:
                      np.array([x[2] for x in f]), np.array([x[3] for x in f]),
                      np.array([x[0] for x in c]), np.array([x[1] for x in c]),
                      float(0.5 * (self.camera.K[0, 0] + self.camera.K[1, 1])), self.arm,
-                     "episode")
+                     "episode", fixed=self.fixed)
 
 
 def trace_from_run(run, arm=None, camera=None, target=None) -> Trace:
@@ -181,10 +196,15 @@ def trace_from_run(run, arm=None, camera=None, target=None) -> Trace:
         if sorted(order) != sorted(names) or dq_cmd.shape[1] < len(order):
             raise ValueError(f"io.command_joint_order {order} does not name the chain {names}")
         dq_cmd = dq_cmd[:, [order.index(n) for n in names]]
+    fixed = None
+    if p.get("robot.camera_mount") == "fixed":
+        from vservo_node.control.mounting import mount_from_params
+
+        fixed = mount_from_params(p, arm)
     return Trace(t, xy, depth, q, run.joint_cmd.t, dq_cmd[:, :len(names)],
                  float(0.5 * (camera.K[0, 0] + camera.K[1, 1])), arm, str(run.path),
                  run.joint_t[ok], jq[ok],
-                 perception if np.any(np.abs(perception) > 1e-9) else None)
+                 perception if np.any(np.abs(perception) > 1e-9) else None, fixed)
 
 
 # a features message and the status record of its frame are published within this of each
@@ -252,7 +272,7 @@ def regular_times(t) -> np.ndarray:
 LAG_SEARCH_S = (-0.05, 0.2)
 
 
-def image_lag(trace, to_camera=None) -> tuple[float, float]:
+def image_lag(trace, correction=None) -> tuple[float, float]:
     """``(lag s, correlation)``: how long after the joint motion the recorded features show it.
 
     In a record the features carry the time they were published (after the image was
@@ -260,16 +280,15 @@ def image_lag(trace, to_camera=None) -> tuple[float, float]:
     recorded compares feature motion with a later joint motion. The lag is the shift of the
     joint states that best correlates the feature motion they predict (URDF chain, believed
     hand-eye, interaction matrix) with the motion seen, on a 1 ms grid refined by a parabola
-    (as calib/delay.py). ``to_camera``: the tool-to-camera twist transform to predict with
-    (default the believed hand-eye's); a hand-eye error turns the predicted motion, which
+    (as calib/delay.py). ``correction``: 6 x 6, applied to the believed camera twist (the
+    hand-eye error found so far; default none); a hand-eye error turns the predicted motion, which
     biases the lag a little, so the check alternates the two estimates."""
     from vservo_node.calib.delay import GRID_S, _search
     from vservo_node.control.interaction import point_interaction_matrix
 
     if trace.joint_t is None:
         return 0.0, math.nan
-    if to_camera is None:
-        to_camera = trace.arm.camera_from_tool()
+    correction = np.eye(6) if correction is None else np.asarray(correction, dtype=float)
     Ms, ds, ta, tb = [], [], [], []
     for k in range(trace.n_frames - 1):
         xy_mid = 0.5 * (trace.xy[k] + trace.xy[k + 1])
@@ -278,7 +297,8 @@ def image_lag(trace, to_camera=None) -> tuple[float, float]:
         if not (np.isfinite(xy_mid).all() and np.isfinite(Z).all() and np.all(Z > 0)
                 and np.isfinite(q_mid).all()):
             continue
-        Ms.append(point_interaction_matrix(xy_mid, Z) @ to_camera @ trace.arm.jacobian_tool(q_mid))
+        Ms.append(point_interaction_matrix(xy_mid, Z) @ correction
+                  @ trace.camera_jacobian(q_mid))
         ds.append((trace.xy[k + 1] - trace.xy[k]).ravel())
         ta.append(trace.t[k])
         tb.append(trace.t[k + 1])
@@ -298,12 +318,12 @@ def image_lag(trace, to_camera=None) -> tuple[float, float]:
     return _search(ds, predicted, taus)
 
 
-def aligned(trace, to_camera=None):
+def aligned(trace, correction=None):
     """``(trace, lag s)``: the trace with its joints re-sampled ``lag`` earlier than each frame's
     recorded time (:func:`image_lag`), so each frame meets the joints of its capture."""
     import dataclasses
 
-    lag, _ = image_lag(trace, to_camera)
+    lag, _ = image_lag(trace, correction)
     if trace.joint_t is None or lag == 0.0:
         return trace, lag
     q = np.column_stack([np.interp(trace.t - lag, trace.joint_t, trace.joint_q[:, j])

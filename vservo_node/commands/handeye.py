@@ -194,7 +194,8 @@ def _solve(args) -> int:
 def scenario_trace(name: str, error_deg=None, error_mm=None, sensing: str = "image",
                    lag=None, latency=None):
     """(trace, episode result, scenario) of a headless run of ``name`` whose controller
-    believes the hand-eye turned by ``error_deg`` and moved by ``error_mm`` (camera axes)."""
+    believes the hand-eye (a fixed camera: the stand's pose) turned by ``error_deg`` and moved
+    by ``error_mm`` (camera axes) from the true one."""
     import dataclasses
 
     from scipy.spatial.transform import Rotation
@@ -210,13 +211,21 @@ def scenario_trace(name: str, error_deg=None, error_mm=None, sensing: str = "ima
             Rotation.from_rotvec(np.radians(np.zeros(3) if error_deg is None else
                                             np.asarray(error_deg, float))).as_matrix(),
             (np.zeros(3) if error_mm is None else np.asarray(error_mm, float)) / 1e3)
-        sc = dataclasses.replace(sc, T_tool_camera_belief=sc.T_tool_camera_true @ E)
+        if sc.mount() is None:
+            sc = dataclasses.replace(sc, T_tool_camera_belief=sc.T_tool_camera_true @ E)
+        else:   # a fixed camera: the stand's pose believed off, in the camera axes
+            from vservo_node.control.mounting import FixedCamera
+
+            true = sc.mount("true")
+            sc = dataclasses.replace(sc, fixed_belief=FixedCamera(
+                true.T_base_camera @ E, sc.mount("belief").T_tool_target))
     if lag is not None or latency is not None:
         dyn = sc.arm_dynamics
         sc = dataclasses.replace(sc, arm_dynamics=dataclasses.replace(
             dyn, velocity_lag_s=dyn.velocity_lag_s if lag is None else lag,
             command_latency_s=dyn.command_latency_s if latency is None else latency))
-    rec = TraceRecorder(sc.arm_model("belief"), sc.camera, sc.target)
+    rec = TraceRecorder(sc.arm_model("belief" if sc.mount() is None else "urdf"), sc.camera,
+                        sc.target, sc.mount("belief"))
     result = run_scenario_episode(sc, sensing=sensing, trace=rec)
     return rec.trace(), result, sc
 
@@ -241,8 +250,8 @@ def _check(args) -> int:
     print(check.verdict())
     print(f"residual of the feature motion: {check.residual_before_px:.3f} px before, "
           f"{check.residual_after_px:.3f} px after the correction")
-    corrected = check.as_dict()["corrected_hand_eye"]
-    print("corrected robot.hand_eye (translation kept where the run does not show it; a "
+    corrected = check.as_dict()["corrected"]
+    print(f"corrected {check.parameter} (translation kept where the run does not show it; a "
           "calibration is better): "
           f"[{', '.join(f'{v:.6f}' for v in corrected)}]")
     return 0
@@ -263,7 +272,7 @@ def _delay(args) -> int:
         else:
             from vservo_node.episode import episode_params
 
-            trace, result, sc = scenario_trace(args.scenario, sensing="image", lag=args.lag,
+            trace, _result, sc = scenario_trace(args.scenario, sensing="image", lag=args.lag,
                                                latency=args.latency)
             rate = args.output_rate or episode_params(sc.controller)["io.output_rate_hz"]
             print(f"{sc.name} headless: drives' command_latency_s "

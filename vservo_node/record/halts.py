@@ -85,8 +85,9 @@ GUIDANCE: dict[str, Guidance] = {
     "run_timeout": Guidance(
         "the run took longer than `control.max_run_s`: a gain or speed limits too low, or a "
         "tolerance below the image noise so the dwell never completes",
-        "the error plot: stuck just above the tolerance (raise `control.tolerance_px` above the "
-        "noise floor) or a slow decay (gains, speed limits, the speed scale)"),
+        "the error plots: stuck just above a tolerance (raise the one not met above its noise "
+        "floor: `control.tolerance_px` on the image error, `control.tolerance_mm` / `_deg` on "
+        "the pose estimate's spread) or a slow decay (gains, speed limits, the speed scale)"),
     "numerical_fault": Guidance(
         "a non-finite value reached the law or the limiter: bad camera_info (zero focal "
         "length), NaN joint states or zero depths",

@@ -3,12 +3,13 @@
 What an operator would do, scripted:
 1. teach: render the scenario's taught view and capture the reference from it (the same
    `Perception.capture` the node's `servo/capture_reference` service runs);
-2. start `vservo_sim` (scenario), `vservo_node` (config/vservo_sim.yaml plus the taught
-   reference and the scenario's ``controller_belief``: believed hand-eye as ``robot.hand_eye``
-   (a fixed camera: ``robot.camera_mount`` fixed, the believed stand and target poses),
-   believed depth scale on the taught depths) and, when present, `vservo_recorder`, as child
-   processes;
-3. enable motion, wait until the recorder is ready (so its bag holds the whole run and the
+2. start `vservo_sim` (scenario), the controller as a managed node (`vservo_managed`:
+   config/vservo_sim.yaml plus the taught reference and the scenario's ``controller_belief``:
+   believed hand-eye as ``robot.hand_eye`` (a fixed camera: ``robot.camera_mount`` fixed, the
+   believed stand and target poses), believed depth scale on the taught depths) and, when
+   present, `vservo_recorder`, as child processes;
+3. configure and activate the controller (lifecycle_msgs ChangeState), enable motion, wait
+   until the recorder is ready (so its bag holds the whole run and the
    controller's parameters), start the run, follow status and the run result;
 4. print the summary (and write it as JSON), stop the processes.
 
@@ -25,6 +26,8 @@ from pathlib import Path
 
 import numpy as np
 import rclpy
+from lifecycle_msgs.msg import Transition
+from lifecycle_msgs.srv import ChangeState
 from rclpy.node import Node
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool, String
@@ -134,6 +137,8 @@ class Watcher(Node):
         self.create_subscription(JointState, interface.TOPIC_JOINT_STATES, self._on_joints,
                                  qos.STATE)
         self.settled_services = set()
+        self.change_state = self.create_client(
+            ChangeState, f"/{interface.CONTROLLER_NODE}/change_state")
         self.enable = self.create_client(SetBool, interface.SRV_ENABLE_MOTION)
         self.start = self.create_client(Trigger, interface.SRV_START)
 
@@ -172,11 +177,25 @@ def start_sim(scenario_ref, ros_args=()) -> harness.NodeProcess:
         f"scenario:={scenario_ref}", *ros_args], name="vservo_sim")
 
 
-def start_controller(overrides: Path) -> harness.NodeProcess:
-    """``vservo_node`` on config/vservo_sim.yaml with the ``overrides`` file layered over it."""
-    return harness.start_module("vservo_node.ros.controller_node", ros_args=[
+def start_controller(overrides: Path, managed: bool = False) -> harness.NodeProcess:
+    """``vservo_node`` on config/vservo_sim.yaml with the ``overrides`` file layered over it;
+    ``managed``: ``vservo_managed``, left unconfigured (``activate_controller`` brings it up)."""
+    module = "vservo_node.ros." + ("controller_managed" if managed else "controller_node")
+    return harness.start_module(module, ros_args=[
         "--params-file", str(config_dir() / "vservo_sim.yaml"), "--params-file",
         str(overrides)], name="vservo_node")
+
+
+def activate_controller(node: Watcher, processes) -> None:
+    """Configure, then activate the managed controller over its lifecycle services;
+    RuntimeError naming the transition that failed."""
+    for name, transition in (("configure", Transition.TRANSITION_CONFIGURE),
+                             ("activate", Transition.TRANSITION_ACTIVATE)):
+        reply = _call(node, node.change_state,
+                      ChangeState.Request(transition=Transition(id=transition)), processes,
+                      timeout=30.0)
+        if not reply.success:
+            raise RuntimeError(f"controller {name} failed (see its log)")
 
 
 def enable_motion(node: Watcher, processes, deadline: float) -> str:
@@ -213,7 +232,8 @@ def run_cell_demo(args) -> int:
     print(f"taught reference: {reference_file}")
 
     t_wall = time.monotonic()
-    processes = [start_sim(scenario.source or scenario.name), start_controller(overrides)]
+    processes = [start_sim(scenario.source or scenario.name),
+                 start_controller(overrides, managed=True)]
     recorder = _start_recorder(scenario, args)
     if recorder:
         processes.append(recorder)
@@ -222,6 +242,8 @@ def run_cell_demo(args) -> int:
     summary = {k: None for k in SUMMARY_KEYS}
     try:
         deadline = t_wall + args.timeout
+        activate_controller(node, processes)
+        print("controller: configured and active")
         print(f"enable_motion: {enable_motion(node, processes, deadline)}")
         if recorder:
             _wait_for_recorder(node, processes)

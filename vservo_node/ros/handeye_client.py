@@ -15,6 +15,7 @@ from __future__ import annotations
 import threading
 import time
 from collections import deque
+from pathlib import Path
 
 import numpy as np
 import rclpy
@@ -144,7 +145,7 @@ def collect_live(args, target, lines=None, out=print):
         rclpy.init(args=[], signal_handler_options=SignalHandlerOptions.NO)
     node = rclpy.create_node(f"vservo_handeye_{int(time.time() * 1000) % 100000}",
                              namespace=args.namespace or "/")
-    urdf = open(args.urdf, encoding="utf8").read() if args.urdf else None
+    urdf = Path(args.urdf).read_text(encoding="utf8") if args.urdf else None
     collector = LiveCollector(node, target, urdf, args.base_frame, args.tool_frame)
     executor = SingleThreadedExecutor()
     executor.add_node(node)

@@ -1,7 +1,8 @@
 """Helpers the launch files share (launch/arm.launch.py, launch/sim_cell.launch.py).
 
-Importable without the launch packages (only ``ros_home_folder`` needs them, on call), so the
-parts that decide something are tested in a plain venv too (tests/test_launch_files.py).
+Importable without the launch packages (``ros_home_folder`` and ``managed_controller`` import
+them on call), so the parts that decide something are tested in a plain venv too
+(tests/test_launch_files.py).
 """
 from __future__ import annotations
 
@@ -47,3 +48,33 @@ def command_interface(params_file: str, namespace: str, override: str = "") -> s
     if kind not in COMMAND_TOPICS:
         raise ValueError(f"command_interface {kind!r}: expected one of {', '.join(COMMAND_TOPICS)}")
     return kind
+
+
+# What the launch files' ``autostart`` argument accepts as true.
+TRUE_WORDS = ("true", "1", "yes")
+
+
+def managed_controller(autostart: str, **node_kwargs) -> list:
+    """The controller as a managed node (``vservo_managed``) and, when ``autostart`` is true,
+    the transitions that bring it to active: configure at once, activate once launch sees it
+    reach ``inactive`` (launch_ros's lifecycle events; the node's own services do the work).
+    ``node_kwargs`` go to launch_ros's LifecycleNode (name, namespace, parameters, ...)."""
+    from launch.actions import EmitEvent, RegisterEventHandler
+    from launch.events import matches_action
+    from launch_ros.actions import LifecycleNode
+    from launch_ros.event_handlers import OnStateTransition
+    from launch_ros.events.lifecycle import ChangeState
+    from lifecycle_msgs.msg import Transition
+
+    node = LifecycleNode(package="vservo_node", executable="vservo_managed", **node_kwargs)
+    if autostart.lower() not in TRUE_WORDS:
+        return [node]
+
+    def change(transition: int) -> EmitEvent:
+        return EmitEvent(event=ChangeState(lifecycle_node_matcher=matches_action(node),
+                                           transition_id=transition))
+
+    activate = RegisterEventHandler(OnStateTransition(
+        target_lifecycle_node=node, start_state="configuring", goal_state="inactive",
+        entities=[change(Transition.TRANSITION_ACTIVATE)]))
+    return [node, activate, change(Transition.TRANSITION_CONFIGURE)]
