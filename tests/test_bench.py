@@ -19,7 +19,7 @@ def test_servo_rows_cover_every_arm_and_point_count_and_the_table_prints():
         assert r["n"] == 30 and 0 < r["median"] <= r["p95"]
         assert ("met" in r) == (r["goal"] is not None)
     text = suite.format_table(result)
-    assert "load average before" in text and text.count("| servo ") == 16
+    assert "load average before" in text and text.count("| servo ") == 20
     assert sum("cost per point" in n for n in names) == 4
     json.dumps(result)           # the --json output is plain JSON
 

@@ -98,7 +98,7 @@ def servo_rows(ticks: int) -> list:
     return rows
 
 
-POINT_COUNTS = (4, 16, 64)
+POINT_COUNTS = (4, 16, 64, 256)   # 256: the per-point cost stands out of the noise
 
 
 def _linear_fit_row(name: str, medians: list) -> dict:

@@ -465,10 +465,12 @@ def first_order(xy_now, xy_taught, taught_depths, current_depths=None,
         raise ValueError(f"the {estimate!r} interaction matrix needs the current depths")
     L = interaction_matrix(estimate, xy_now, current_depths, xy_taught, taught_depths)
     e = (xy_now - xy_taught).ravel()
-    v = -np.linalg.pinv(L) @ e
+    v = -np.linalg.lstsq(L, e, rcond=None)[0]     # = -pinv(L) e, without forming pinv
     if not np.isfinite(v).all():
         raise ValueError("the interaction matrix gave a non-finite twist")
-    T_current_taught = frames.transform(Rotation.from_rotvec(v[3:]).as_matrix(), v[:3])
+    T_current_taught = np.eye(4)
+    T_current_taught[:3, :3] = cv2.Rodrigues(v[3:].reshape(3, 1))[0]   # exp([w])
+    T_current_taught[:3, 3] = v[:3]
     return PoseEstimate("first_order", True, frames.invert(T_current_taught),
                         info={"twist": v})
 
@@ -688,8 +690,13 @@ def _mean_displacement(estimates, quats=None):
     cos_half = np.clip(np.abs(q @ q_mean), 0.0, 1.0)
     angles = 2.0 * np.arctan2(np.sqrt(np.maximum(0.0, 1.0 - cos_half ** 2)), cos_half)
     spread_rad = math.sqrt(float(np.mean(angles ** 2)))
-    R_mean = Rotation.from_quat(q_mean).as_matrix()
-    return frames.transform(R_mean, t_mean), 1e3 * spread_m, math.degrees(spread_rad)
+    x, y, z, w = (q_mean / math.sqrt(float(q_mean @ q_mean))).tolist()
+    R_mean = np.array([[1 - 2 * (y * y + z * z), 2 * (x * y - z * w), 2 * (x * z + y * w)],
+                       [2 * (x * y + z * w), 1 - 2 * (x * x + z * z), 2 * (y * z - x * w)],
+                       [2 * (x * z - y * w), 2 * (y * z + x * w), 1 - 2 * (x * x + y * y)]])
+    T = np.eye(4)
+    T[:3, :3], T[:3, 3] = R_mean, t_mean
+    return T, 1e3 * spread_m, math.degrees(spread_rad)
 
 
 class PoseWindow:
@@ -703,10 +710,12 @@ class PoseWindow:
         self.span_s = float(span_s)
         self._items: list = []    # (t, estimate, first-order estimate or None)
         self._quats: list = []    # the estimate's rotation as a quaternion (x, y, z, w) or None
+        self._check_quats: list = []   # ... and the first-order check's, or None
 
     def clear(self) -> None:
         self._items.clear()
         self._quats.clear()
+        self._check_quats.clear()
 
     def __len__(self) -> int:
         return len(self._items)
@@ -719,10 +728,13 @@ class PoseWindow:
         self._items.append((float(t), estimate, check))
         self._quats.append(_quat(estimate.T_taught_current[:3, :3])
                            if estimate.valid else None)
+        self._check_quats.append(_quat(check.T_taught_current[:3, :3])
+                                 if check is not None and check.valid else None)
         start = t - self.span_s - 1e-9
         while self._items and self._items[0][0] < start:
             self._items.pop(0)
             self._quats.pop(0)
+            self._check_quats.pop(0)
 
     def summary(self) -> WindowSummary:
         valid = [e for _, e, _ in self._items if e.valid]
@@ -735,7 +747,8 @@ class PoseWindow:
         check_mm = check_deg = math.nan
         checks = [c for _, _, c in self._items if c is not None and c.valid]
         if checks:
-            T_check = _mean_displacement(checks)[0]
+            T_check = _mean_displacement(checks, [q for q in self._check_quats
+                                                  if q is not None])[0]
             check_m, check_rad = frames.pose_error(T, T_check)
             check_mm, check_deg = 1e3 * check_m, math.degrees(check_rad)
         return WindowSummary(len(valid), n_invalid, 1e3 * moved, math.degrees(turned),

@@ -164,7 +164,6 @@ refused (naming the missing piece), stop and enable false succeed doing nothing.
 """
 from __future__ import annotations
 
-import signal
 import sys
 
 from vservo_node.interface import json_safe  # noqa: F401 - kept here for callers of this module
@@ -182,12 +181,7 @@ def _run(program: str, autostart: bool, args=None) -> int:
     run_node(program, ControllerNode, ControllerNode.shutdown, args, own_signals=True,
              start=ControllerNode.autostart if autostart else None,
              finish=ControllerNode.finish_for_shutdown)
-    # Stopped. A further SIGINT/SIGTERM (launch signals again after the terminal's group
-    # SIGINT) must not kill the interpreter while it finalizes: Python resets a handler of its
-    # own to SIG_DFL there, and the process then died of the signal (exit -2, reproduced with
-    # a second SIGINT 0.1-0.2 s after the first). Ignored handlers are left alone.
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-    signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    # stopped: run_node leaves SIGINT/SIGTERM ignored while the interpreter finalizes
     return 0
 
 

@@ -98,8 +98,12 @@ def run_node(program: str, make_node: Callable[[], N], stop: Callable[[N], None]
         # simulated cell with a KeyboardInterrupt (exit -2)
         try:
             rclpy.try_shutdown(uninstall_handlers=not own_signals)
-        except TypeError:         # an rclpy without the argument: shut down, then ours again
+        except TypeError:         # an rclpy without the argument: shut down
             rclpy.try_shutdown()
         if own_signals:
-            install_signal_handlers()
+            # stopped: a late signal (a second Ctrl-C under ros2 launch) must not kill the
+            # interpreter while it finalizes (Python resets a handler of its own to SIG_DFL
+            # there: exit -2, reproduced with a second SIGINT 0.1-0.2 s after the first)
+            signal.signal(signal.SIGINT, signal.SIG_IGN)
+            signal.signal(signal.SIGTERM, signal.SIG_IGN)
     return node

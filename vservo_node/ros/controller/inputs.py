@@ -171,8 +171,8 @@ class InputCallbacks(ControllerState):
         key = (msg.width, msg.height, msg.distortion_model, tuple(msg.d), tuple(msg.k),
                tuple(msg.r), tuple(msg.p))
         with self._lock:
-            self._rx["camera_info"] = time.monotonic()
-            self._frame_loss.info(convert.time_to_sec(msg.header.stamp), self._rx["camera_info"])
+            rx = self._rx["camera_info"] = time.monotonic()
+            self._frame_loss.info(convert.time_to_sec(msg.header.stamp), rx)
             if key == self._camera_key:
                 return
             first = self._camera_key is None
