@@ -247,26 +247,32 @@ def test_group_sigint_twice_mid_run_brakes_sends_the_zero_and_exits_zero(setup):
     rig.procs = [p for p in rig.procs if p is not rig.controller] + [node]
     rig.controller = node
     rig.clients.clear()
-    rig.spin(1.0)
-    expect(rig.capture(), True, "loaded")
-    expect(rig.enable(True), True, "motion enabled")
-    _begin_run(rig, LARGE_OFFSET)
-    harness.spin_until(rig.node, lambda: rig.commands and np.max(np.abs(rig.commands[-1][1]))
-                       > 0.03, 10.0, "the run to move", [node])
-    t_signal = time.monotonic()
-    os.killpg(proc.pid, signal.SIGINT)
-    time.sleep(0.05)
-    os.killpg(proc.pid, signal.SIGINT)
-    rig.procs = [p for p in rig.procs if p is not node]
-    harness.spin_until(rig.node, lambda: proc.poll() is not None, 8.0,
-                       "the controller to exit", rig.procs)
-    rig.spin(0.3)
-    log.close()
-    output = (tmp / "sigint.log").read_text()
-    assert proc.returncode == 0, (proc.returncode, output[-2000:])
-    assert "Traceback" not in output, output[-2000:]
-    ramp = np.array(_commands_since(rig, t_signal))
-    speeds = np.max(np.abs(ramp), axis=1)
-    assert len(ramp) >= 2 and np.all(np.diff(speeds) <= 1e-12), speeds
-    assert np.all(ramp[-1] == 0.0), "the last command received is an explicit zero"
-    assert "braking to zero" in output
+    try:
+        rig.spin(1.0)
+        expect(rig.capture(), True, "loaded")
+        expect(rig.enable(True), True, "motion enabled")
+        _begin_run(rig, LARGE_OFFSET)
+        harness.spin_until(
+            rig.node, lambda: rig.commands and np.max(np.abs(rig.commands[-1][1])) > 0.03,
+            10.0, "the run to move", [node])
+        t_signal = time.monotonic()
+        os.killpg(proc.pid, signal.SIGINT)
+        time.sleep(0.05)
+        os.killpg(proc.pid, signal.SIGINT)
+        rig.procs = [p for p in rig.procs if p is not node]
+        harness.spin_until(rig.node, lambda: proc.poll() is not None, 8.0,
+                           "the controller to exit", rig.procs)
+        rig.spin(0.3)
+        log.close()
+        output = (tmp / "sigint.log").read_text()
+        assert proc.returncode == 0, (proc.returncode, output[-2000:])
+        assert "Traceback" not in output, output[-2000:]
+        ramp = np.array(_commands_since(rig, t_signal))
+        speeds = np.max(np.abs(ramp), axis=1)
+        assert len(ramp) >= 2 and np.all(np.diff(speeds) <= 1e-12), speeds
+        assert np.all(ramp[-1] == 0.0), "the last command received is an explicit zero"
+        assert "braking to zero" in output
+    finally:   # a failure before the signals must not leave the controller running
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
