@@ -110,6 +110,8 @@ SUPERVISOR_STATES = tuple(state.value for state in State)
 RUN_STATES = (State.SERVOING, State.SETTLING)
 #: The arm may move (a run in progress, or braking from one).
 MOVING_STATES = (State.SERVOING, State.SETTLING, State.BRAKING)
+#: A halt is under way or done (braking to zero, or halted).
+HALT_STATES = (State.BRAKING, State.HALTED)
 #: A run ended (goal reached or halted, explicit zero sent).
 ENDED_STATES = (State.CONVERGED, State.HALTED)
 #: A run may start from these (motion enabled, no run moving).
