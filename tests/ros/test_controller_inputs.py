@@ -19,18 +19,17 @@ io.compressed_image"; enable refusals name the failing check): the topic-fed con
 teaches and enables; without a publisher enable is refused naming the missing model; the
 compressed-fed controller teaches from the decoded frames and publishes features, which match
 those the raw-fed controller finds in the same (static) scene, since PNG is lossless.
-Run: cd /work/main && tools/isolated .venv/bin/python -m pytest tests/ros/test_controller_inputs.py -q
+Run: cd /work/main && tools/isolated .venv/bin/python -m pytest \
+     tests/ros/test_controller_inputs.py -q
 """
 from __future__ import annotations
 
-import time
 
 import cv2
 import numpy as np
 import pytest
 from sensor_msgs.msg import CompressedImage, Image
 from std_msgs.msg import Float64, Float64MultiArray
-from std_srvs.srv import Trigger
 
 from sim_helpers import CONFIG as SIM_CONFIG
 from test_controller_node import URDF, Rig, expect

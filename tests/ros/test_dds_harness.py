@@ -32,7 +32,8 @@ def test_profile_only_when_user_has_none():
             assert dds.use_shm_profile(env, major=major) is None and env == user_choice
     env = {"RMW_IMPLEMENTATION": "rmw_fastrtps_cpp", "FASTRTPS_DEFAULT_PROFILES_FILE": ""}
     assert dds.use_shm_profile(env, major=2) == path   # set but empty: nobody chose a file
-    assert env["FASTRTPS_DEFAULT_PROFILES_FILE"] == env["FASTDDS_DEFAULT_PROFILES_FILE"] == str(path)
+    assert (env["FASTRTPS_DEFAULT_PROFILES_FILE"] == env["FASTDDS_DEFAULT_PROFILES_FILE"]
+            == str(path))
 
 
 def test_fast_dds_version_from_the_wheels_or_the_distribution(monkeypatch):
@@ -57,7 +58,8 @@ SEGMENT_PROBE = textwrap.dedent("""
     rclpy.init()
     node = rclpy.create_node("segment_probe")
     maps = open("/proc/self/maps").read().split()
-    segments = {w for w in maps if w.startswith("/dev/shm/fastdds_") or w.startswith("/dev/shm/fastrtps_")}
+    segments = {w for w in maps
+                if w.startswith("/dev/shm/fastdds_") or w.startswith("/dev/shm/fastrtps_")}
     print(max((os.path.getsize(s) for s in segments if os.path.exists(s)), default=0))
     node.destroy_node()
     rclpy.shutdown()

@@ -28,14 +28,13 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from std_msgs.msg import Float64MultiArray
 
 from test_controller_node import (HALT_ACCELERATION, LARGE_OFFSET, OUTPUT_RATE, Rig,
                                   _begin_run, _commands_since, _write_params,
                                   controller_parameters, expect)
 from vservo_node import interface as itf
 from vservo_node.control.kinematics import load_robot
-from vservo_node.ros import harness, qos
+from vservo_node.ros import harness
 
 STUB = str(Path(__file__).with_name("test_controller_node.py"))
 PERIOD = 1.0 / OUTPUT_RATE

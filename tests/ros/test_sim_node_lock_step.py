@@ -56,7 +56,8 @@ def test_lock_step_advances_one_frame_per_command(lock_sim, scenario, ros_node):
     n0, n_frames = len(col.images), 5
     for k in range(1, n_frames + 1):
         pub.publish(cmd)
-        harness.spin_until(ros_node, lambda: len(col.images) >= n0 + k, 10.0,
+        harness.spin_until(ros_node, lambda: len(col.images) >= n0 + k,  # noqa: B023 - now
+                           10.0,
                            f"frame {k} after command {k}", [proc])
     col.spin_for(0.3, [proc])
     new = [meta["stamp_ns"] - first for _, meta in col.images[n0:]]

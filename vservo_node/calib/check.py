@@ -16,16 +16,17 @@ V^``: the check and its correction then concern ``robot.fixed_camera_pose``
 (``Trace.camera_jacobian``).
 
 ``E`` is the least-squares fit (SciPy ``least_squares``) of the observed ``ds`` of every frame
-pair of the run, the start nod included, to ``L Ad(inv(E)) V^``, summed over the frames of a pair; the pairs lie back to back
-(no frame in two), each the shortest span whose predicted motion reaches ``MIN_FLOW_PX``, so
-the joint and feature noise of nearly still frames does not dominate. The standard deviations
-come from the covariance ``s^2 (J^T J)^-1`` at the optimum (Hartley & Zisserman, Multiple View
-Geometry, 2nd ed. 2003, ch. 5; from memory), the pairs treated as independent (neighbours share their
-end frame, so the figure is somewhat optimistic). The rotation of ``E`` shows in
-every motion and is always observable; its translation only through the camera's rotation
-(the twist transform's ``[t]x R`` block), so it is reported only when its standard deviation
-is below ``TRANSLATION_OBSERVABLE_MM``. Depths: per frame from the trace (PnP of the target
-model, or the taught depths); they only weigh the translational flow.
+pair of the run, the start nod included, to ``L Ad(inv(E)) V^``, summed over the frames of a
+pair; the pairs lie back to back (no frame in two), each the shortest span whose predicted
+motion reaches ``MIN_FLOW_PX``, so the joint and feature noise of nearly still frames does not
+dominate. The standard deviations come from the covariance ``s^2 (J^T J)^-1`` at the optimum
+(Hartley & Zisserman, Multiple View Geometry, 2nd ed. 2003, ch. 5; from memory), the pairs
+treated as independent (neighbours share their end frame, so the figure is somewhat
+optimistic). The rotation of ``E`` shows in every motion and is always observable; its
+translation only through the camera's rotation (the twist transform's ``[t]x R`` block), so it
+is reported only when its standard deviation is below ``TRANSLATION_OBSERVABLE_MM``. Depths:
+per frame from the trace (PnP of the target model, or the taught depths); they only weigh the
+translational flow.
 
 A rotation error of ``LARGE_ERROR_DEG`` or more is named as the likely cause of a
 ``wrong_direction`` halt or a slow convergence: measured on the simulated cell (tray_offset,
@@ -110,7 +111,8 @@ class HandEyeCheck:
                 "parameter": self.parameter,
                 "corrected": [*map(float, self.corrected[:3, 3]),
                               *map(float, frames.matrix_to_quat(self.corrected[:3, :3]))],
-                "n_pairs": self.n_pairs, "image_lag_s": self.image_lag_s, "residual_before_px": self.residual_before_px,
+                "n_pairs": self.n_pairs, "image_lag_s": self.image_lag_s,
+                "residual_before_px": self.residual_before_px,
                 "residual_after_px": self.residual_after_px, "large": self.large,
                 "verdict": self.verdict()}
 
