@@ -86,3 +86,27 @@ def test_stop_ends_the_thread_and_no_tick_runs_after():
 def test_refuses_a_period_that_is_not_a_positive_number(period):
     with pytest.raises(ValueError, match="positive"):
         OutputLoop(period, lambda: None)
+
+
+def test_lower_thread_priority_lowers_only_the_calling_thread():
+    import os
+    import sys
+    from vservo_node.ros.output_loop import lower_thread_priority
+
+    if not sys.platform.startswith("linux"):
+        pytest.skip("per-thread nice values are a Linux feature")
+    seen = {}
+
+    def worker():
+        tid = threading.get_native_id()
+        before = os.getpriority(os.PRIO_PROCESS, tid)
+        seen["done"] = lower_thread_priority(3)
+        seen["delta"] = os.getpriority(os.PRIO_PROCESS, tid) - before
+
+    main_before = os.getpriority(os.PRIO_PROCESS, threading.get_native_id())
+    t = threading.Thread(target=worker)
+    t.start()
+    t.join()
+    assert seen["done"] is True
+    assert seen["delta"] == min(3, 19 - (main_before))   # capped at nice 19
+    assert os.getpriority(os.PRIO_PROCESS, threading.get_native_id()) == main_before
