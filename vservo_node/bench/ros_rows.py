@@ -38,10 +38,12 @@ from pathlib import Path
 
 import numpy as np
 
+from vservo_node.interface import RUN_STATES
+
 ROOT = Path(__file__).resolve().parents[2]
 CELL_RATE_HZ = 120.0
 OFFSET = [0.06, -0.04, 0.04, 0.06, -0.04, 0.06, 0.08]   # rad from home, ~24 px at 320x240
-SERVO_STATES = ("servoing", "settling")
+SERVO_STATES = RUN_STATES
 
 
 # =============================================================================== cell process

@@ -250,7 +250,6 @@ def run_cell_demo(args) -> int:
         print(f"start: {start_run(node, processes)}")
         harness.spin_until(node, lambda: node.result is not None,
                            max(1.0, deadline - time.monotonic()), "the run result", processes)
-        result = node.result
         if recorder:   # the recorder names the bag once the bag and its report are written
             try:
                 harness.spin_until(node, lambda: node.last_bag is not None, REPORT_TIMEOUT_S,

@@ -39,7 +39,7 @@ FRESH_S = 1.0   # `vservo watch`: age up to which a per-image error counts as cu
 DIAGNOSTIC_GRACE_S = 1.5
 RETRY_PERIOD_S = 0.5
 # States in which the arm may move (servo.MOVING_STATES; not imported to keep this light).
-MOVING = ("servoing", "settling", "braking")
+MOVING = itf.MOVING_STATES
 
 
 class Operator:

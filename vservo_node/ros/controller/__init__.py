@@ -11,5 +11,7 @@
 ``vservo_node.ros.controller_node`` documents the node's behaviour and holds the entry points.
 """
 
+from vservo_node.interface import RUN_STATES
+
 # States in which a run is servoing (braking is moving too, but no longer servoing).
-ACTIVE_RUN = ("servoing", "settling")
+ACTIVE_RUN = RUN_STATES
