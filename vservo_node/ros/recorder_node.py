@@ -119,6 +119,7 @@ from vservo_node.record.bag import RunRecorder
 from vservo_node.record.report import write_report
 from vservo_node.ros import qos
 from vservo_node.ros.node_main import run_node
+from vservo_node.ros.output_loop import lower_thread_priority
 
 RECORDER_NODE = itf.RECORDER_NODE
 TOPIC_LAST_BAG = itf.TOPIC_LAST_BAG
@@ -129,6 +130,7 @@ TICK_S = 0.1              # steady timer: run tails, parameter fetch; also lets 
 FETCH_TIMEOUT_S = 5.0     # a parameter request unanswered this long is given up and retried
 ACK_TIMEOUT_S = 1.0       # at shutdown, wait this long for recorder/last_bag to be received
 IMAGE_FORMATS = ("raw", "png", "jpeg")
+REPORT_NICE = 10          # the report thread's nice steps below the recorder (our choice)
 
 # topic -> (message class, QoS). Status and run result are read as well as recorded.
 RECORDED = {
@@ -310,7 +312,12 @@ class RecorderNode(Node):
         self._pub_last_bag = self.create_publisher(String, TOPIC_LAST_BAG, qos.LATCHED)
         self._pub_ready = self.create_publisher(Bool, TOPIC_READY, qos.LATCHED)
         self._status_seen = self._ready = False
-        self._reports = ThreadPoolExecutor(max_workers=1, thread_name_prefix="vservo_report")
+        # reports (matplotlib, seconds of CPU after each run) never compete with the command
+        # path of the controller or the camera on the same machine: their thread runs at the
+        # lowest priority that still progresses (REPORT_NICE nice steps down)
+        self._reports = ThreadPoolExecutor(max_workers=1, thread_name_prefix="vservo_report",
+                                           initializer=lower_thread_priority,
+                                           initargs=(REPORT_NICE,))
         self.writer = BagWriter(self._new_recorder, self._on_closed,
                                 int(p["max_queue_mb"] * 2**20), self.get_logger())
         self.params = ControllerParams(self, p["controller_node"], self._on_params_fetched)
