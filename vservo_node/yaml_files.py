@@ -41,6 +41,7 @@ from __future__ import annotations
 import os
 import reprlib
 import stat
+from typing import Any
 
 import yaml
 from yaml.composer import Composer
@@ -343,7 +344,7 @@ class _PlainDumper(yaml.SafeDumper):
         return True
 
 
-def dump_yaml(data, stream=None, **options):
+def dump_yaml(data: Any, stream: Any = None, **options: Any) -> Any:
     """``yaml.safe_dump`` without anchors/aliases; options as for ``yaml.dump``."""
     return yaml.dump(data, stream, Dumper=_PlainDumper, **options)
 

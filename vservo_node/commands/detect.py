@@ -156,7 +156,7 @@ def run(args) -> int:
             {"key": k, "pixel": p, **({"colour_lab": c} if detection.colours_linear is not None
                                       else {})}
             for k, p, c in zip(detection.keys, detection.points,
-                               detection.colours_lab if detection.colours_linear is not None
+                               detection.colours_lab if detection.colours_lab is not None
                                else [None] * len(detection))],
         "quality": detection.quality, "timings_ms": detection.timings,
         "match": {"ok": match.ok, "reason": match.reason, "keys": match.keys,

@@ -40,20 +40,26 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Any, Iterable, Mapping, TYPE_CHECKING
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from vservo_node.control import frames
-from vservo_node.control.pose_error import PoseEstimate
+from vservo_node.control.pose_error import PoseErrorEstimator, PoseEstimate
+
+if TYPE_CHECKING:
+    from vservo_node.control.kinematics import ArmModel
 
 MOUNTS = ("wrist", "fixed")
 
 
-def fixed_camera_jacobian(T_camera_tool, J_tool) -> np.ndarray:
+def fixed_camera_jacobian(T_camera_tool: ArrayLike, J_tool: ArrayLike) -> np.ndarray:
     """(6, n) relative camera twist per joint rate for a still camera watching the tool:
     ``-twist_transform(T_camera_tool) @ J_tool`` (module doc). ``T_camera_tool``: the tool's
     pose in the camera optical frame at q; ``J_tool``: the tool-frame (body) Jacobian at q."""
-    return -frames.twist_transform(T_camera_tool) @ np.asarray(J_tool, dtype=float)
+    J_c: np.ndarray = -frames.twist_transform(T_camera_tool) @ np.asarray(J_tool, dtype=float)
+    return J_c
 
 
 @dataclass(frozen=True)
@@ -79,24 +85,28 @@ class FixedCamera:
             object.__setattr__(self, label, T.copy())
 
     @classmethod
-    def from_poses(cls, camera_pose7, target_pose7) -> "FixedCamera":
+    def from_poses(cls, camera_pose7: Iterable[float], target_pose7: Iterable[float]
+                   ) -> "FixedCamera":
         """From two ``[x, y, z, qx, qy, qz, qw]`` lists (robot.fixed_camera_pose,
         robot.target_on_tool)."""
         return cls(_pose7(camera_pose7, "robot.fixed_camera_pose"),
                    _pose7(target_pose7, "robot.target_on_tool"))
 
-    def T_camera_tool(self, arm, q) -> np.ndarray:
-        return frames.invert(self.T_base_camera) @ arm.fk(q)
+    def T_camera_tool(self, arm: ArmModel, q: ArrayLike) -> np.ndarray:
+        T: np.ndarray = frames.invert(self.T_base_camera) @ arm.fk(q)
+        return T
 
-    def T_camera_target(self, arm, q) -> np.ndarray:
+    def T_camera_target(self, arm: ArmModel, q: ArrayLike) -> np.ndarray:
         """The target's pose in the camera optical frame at joints q."""
-        return self.T_camera_tool(arm, q) @ self.T_tool_target
+        T: np.ndarray = self.T_camera_tool(arm, q) @ self.T_tool_target
+        return T
 
-    def camera_jacobian(self, arm, q) -> np.ndarray:
+    def camera_jacobian(self, arm: ArmModel, q: ArrayLike) -> np.ndarray:
         """(6, n) the camera's twist relative to the target, camera frame (module doc)."""
         return fixed_camera_jacobian(self.T_camera_tool(arm, q), arm.jacobian_tool(q))
 
-    def cartesian_jacobians(self, arm, q, tool_point):
+    def cartesian_jacobians(self, arm: ArmModel, q: ArrayLike, tool_point: ArrayLike
+                            ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """The limiter's three 3 x n Jacobians, base axes: the tool point's linear velocity,
         the target origin's (in the slot of the wrist camera's origin: the point the camera
         watches; limits.camera_linear_speed bounds it) and the tool's angular velocity."""
@@ -106,12 +116,12 @@ class FixedCamera:
         target_jac = J[:3] - frames.skew(R @ self.T_tool_target[:3, 3]) @ J[3:]
         return tool_jac, target_jac, J[3:]
 
-    def pose_errors(self, estimator) -> "ToolPoseErrors":
+    def pose_errors(self, estimator: PoseErrorEstimator) -> "ToolPoseErrors":
         return ToolPoseErrors(estimator, self.T_tool_target)
 
 
-def _pose7(values, name: str) -> np.ndarray:
-    values = [float(v) for v in values]
+def _pose7(values_in: Iterable[float], name: str) -> np.ndarray:
+    values = [float(v) for v in values_in]
     if len(values) != 7:
         raise ValueError(f"{name}: {len(values)} numbers; expected 7 [x, y, z, qx, qy, qz, qw]")
     try:
@@ -120,7 +130,8 @@ def _pose7(values, name: str) -> np.ndarray:
         raise ValueError(f"{name}: {exc}") from None
 
 
-def mount_from_params(values: dict, arm=None) -> FixedCamera | None:
+def mount_from_params(values: Mapping[str, Any], arm: ArmModel | None = None
+                      ) -> FixedCamera | None:
     """The mounting of validated parameter values: None for ``robot.camera_mount`` wrist, a
     :class:`FixedCamera` for fixed (its pose from ``robot.fixed_camera_pose`` or, when that is
     empty, from the URDF frame ``robot.fixed_camera_frame`` of ``arm``, which must not move with
@@ -144,7 +155,7 @@ def mount_from_params(values: dict, arm=None) -> FixedCamera | None:
     return FixedCamera(fixed_frame_pose(arm, frame), _pose7(target, "robot.target_on_tool"))
 
 
-def fixed_frame_pose(arm, frame: str) -> np.ndarray:
+def fixed_frame_pose(arm: ArmModel, frame: str) -> np.ndarray:
     """``T_base_frame`` of a URDF frame that the servo chain does not move (a camera on a
     stand); ValueError if it moves with any joint of the chain."""
     q = np.clip(np.zeros(arm.n), arm.lower, arm.upper)
@@ -169,7 +180,7 @@ class ToolPoseErrors:
     ``T_tool_target``) when the estimator has the target model; else the centroid of the taught
     points (homography estimate: no tool pose is known), and ``point`` says which."""
 
-    def __init__(self, estimator, T_tool_target):
+    def __init__(self, estimator: PoseErrorEstimator, T_tool_target: ArrayLike) -> None:
         self.estimator = estimator
         self.method = estimator.method
         if estimator.T_taught_target is not None:
@@ -178,12 +189,14 @@ class ToolPoseErrors:
             self.point = "tool"
         else:
             xy, Z = estimator.xy_taught, estimator.taught_depths
+            assert Z is not None   # an estimator without the target model has taught depths
             self.p = np.mean(np.column_stack([xy * Z[:, None], Z]), axis=0)
             self.point = "target_centroid"
 
     def _converted(self, est: PoseEstimate) -> PoseEstimate:
         if not est.valid:
             return est
+        assert est.T_taught_current is not None   # a valid estimate has its displacement
         M = frames.invert(est.T_taught_current)
         T = np.eye(4)
         T[:3, :3] = M[:3, :3]
@@ -193,14 +206,15 @@ class ToolPoseErrors:
         info = dict(est.info, point=self.point)
         return PoseEstimate(est.method, True, T, est.residual, est.reason, info)
 
-    def estimate(self, xy_now, index=None) -> PoseEstimate:
+    def estimate(self, xy_now: ArrayLike, index: ArrayLike | None = None) -> PoseEstimate:
         return self._converted(self.estimator.estimate(xy_now, index))
 
-    def first_order(self, xy_now, index=None) -> PoseEstimate:
+    def first_order(self, xy_now: ArrayLike, index: ArrayLike | None = None) -> PoseEstimate:
         return self._converted(self.estimator.first_order(xy_now, index))
 
 
-def tool_pose_error(T_base_tool_taught, T_base_tool_now) -> tuple[float, float]:
+def tool_pose_error(T_base_tool_taught: ArrayLike, T_base_tool_now: ArrayLike
+                    ) -> tuple[float, float]:
     """(mm, deg): the true pose error of the tool (distance of the origins, relative rotation
     angle), what :class:`ToolPoseErrors` estimates with the target model."""
     moved, turned = frames.pose_error(T_base_tool_taught, T_base_tool_now)

@@ -53,9 +53,11 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Sequence
 
 import cv2
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.spatial.transform import Rotation
 
 from vservo_node.control import frames
@@ -90,22 +92,23 @@ class PoseErrorEstimator:
     construction raises ValueError (no metric estimate is possible).
     """
 
-    def __init__(self, xy_taught, model_points=None, taught_depths=None, warm_start=True):
+    def __init__(self, xy_taught: ArrayLike, model_points: ArrayLike | None = None,
+                 taught_depths: ArrayLike | None = None, warm_start: bool = True) -> None:
         self.xy_taught = check_points(xy_taught, "taught points")
         # PnP frame after frame: start from the last frame's pose (``refine_pose``), a few
         # Gauss-Newton steps instead of IPPE + LM (~1 ms) while the track holds
         self.warm_start = bool(warm_start)
-        self._last_pose = None
+        self._last_pose: np.ndarray | None = None
         n = len(self.xy_taught)
-        self.model_points = None
+        self.model_points: np.ndarray | None = None
         self._planar = False
-        self.T_taught_target = None
+        self.T_taught_target: np.ndarray | None = None
         if model_points is not None:
             model, self._planar = _model(model_points)
             _check_same_length(model, self.xy_taught, "model points", "taught points")
             self.model_points = model
             self.T_taught_target, _ = pose_from_model(self.xy_taught, model)
-        self.taught_depths = None
+        self.taught_depths: np.ndarray | None = None
         if taught_depths is not None:
             Z = np.broadcast_to(np.asarray(taught_depths, dtype=float), (n,)).copy()
             if not (np.isfinite(Z) & (Z > 0)).all():
@@ -115,24 +118,25 @@ class PoseErrorEstimator:
             raise ValueError("a metric pose error needs the target's model or the taught depths")
         self.method = "pnp" if self.model_points is not None else "homography"
 
-    def _select(self, index):
+    def _select(self, index: ArrayLike | None) -> slice | np.ndarray:
         if index is None:
             return slice(None)
-        index = np.asarray(index, dtype=int).ravel()
-        if index.size and (index.min() < 0 or index.max() >= len(self.xy_taught)):
+        chosen = np.asarray(index, dtype=int).ravel()
+        if chosen.size and (chosen.min() < 0 or chosen.max() >= len(self.xy_taught)):
             raise ValueError(f"feature index out of range 0..{len(self.xy_taught) - 1}: "
-                             f"{index.tolist()}")
-        if len(set(index.tolist())) != index.size:
-            raise ValueError(f"repeated feature indices {index.tolist()}")
-        return index
+                             f"{chosen.tolist()}")
+        if len(set(chosen.tolist())) != chosen.size:
+            raise ValueError(f"repeated feature indices {chosen.tolist()}")
+        return chosen
 
-    def estimate(self, xy_now, index=None) -> PoseEstimate:
+    def estimate(self, xy_now: ArrayLike, index: ArrayLike | None = None) -> PoseEstimate:
         """The estimate for the current points ``xy_now`` (M, 2) of taught features ``index``
         (M,) (default: all, in order). Never raises on bad data: an invalid estimate says why."""
         try:
             sel = self._select(index)
             xy_taught = self.xy_taught[sel]
             if self.method == "pnp":
+                assert self.model_points is not None   # method pnp: the model is given
                 # a subset of a planar model is planar; of a non-planar one, check it
                 estimate = from_model(xy_now, xy_taught, self.model_points[sel],
                                       T_taught_target=self.T_taught_target,
@@ -140,12 +144,13 @@ class PoseErrorEstimator:
                                       T_guess=self._last_pose if self.warm_start else None)
                 self._last_pose = estimate.info["T_current_target"]
                 return estimate
+            assert self.taught_depths is not None   # method homography: depths are given
             return from_homography(xy_now, xy_taught, self.taught_depths[sel])
         except (ValueError, cv2.error, np.linalg.LinAlgError) as exc:
             self._last_pose = None
             return invalid(self.method, str(exc))
 
-    def first_order(self, xy_now, index=None) -> PoseEstimate:
+    def first_order(self, xy_now: ArrayLike, index: ArrayLike | None = None) -> PoseEstimate:
         """The first-order cross-check for the same input (taught-view interaction matrix with
         the taught depths, or the model's depths in the taught pose)."""
         try:
@@ -154,6 +159,8 @@ class PoseErrorEstimator:
                 Z = self.taught_depths[sel]
             else:
                 T = self.T_taught_target
+                # no taught depths: the model and its taught pose are given
+                assert T is not None and self.model_points is not None
                 Z = (self.model_points[sel] @ T[:3, :3].T + T[:3, 3])[:, 2]
             return first_order(xy_now, self.xy_taught[sel], Z)
         except (ValueError, np.linalg.LinAlgError) as exc:
@@ -243,7 +250,13 @@ class WindowSummary:
                 + (f", {self.n_invalid} frames without an estimate" if self.n_invalid else ""))
 
 
-def _quat(R) -> np.ndarray:
+def _displacement(estimate: PoseEstimate) -> np.ndarray:
+    """``T_taught_current`` of a valid estimate (which always has one)."""
+    assert estimate.T_taught_current is not None
+    return estimate.T_taught_current
+
+
+def _quat(R: np.ndarray) -> np.ndarray:
     """Unit quaternion (x, y, z, w) of a rotation matrix, sign free (Shepperd, "Quaternion from
     rotation matrix", J. Guidance and Control 1(3), 1978: from the largest of w, x, y, z);
     plain floats, as SciPy's Rotation costs ~0.1 ms a call on one matrix."""
@@ -265,7 +278,9 @@ def _quat(R) -> np.ndarray:
     return np.array(q)
 
 
-def _mean_displacement(estimates, quats=None):
+def _mean_displacement(estimates: Sequence[PoseEstimate],
+                       quats: Sequence[np.ndarray] | None = None
+                       ) -> tuple[np.ndarray, float, float]:
     """(T, spread_mm, spread_deg) of valid estimates: mean translation, chordal-mean rotation.
 
     The rotation mean is the unit quaternion maximising sum (q_i . q)^2, the eigenvector of the
@@ -303,9 +318,11 @@ class PoseWindow:
         if not (math.isfinite(span_s) and span_s >= 0):
             raise ValueError(f"window span must be finite and >= 0 s, got {span_s!r}")
         self.span_s = float(span_s)
-        self._items: list = []    # (t, estimate, first-order estimate or None)
-        self._quats: list = []    # the estimate's rotation as a quaternion (x, y, z, w) or None
-        self._check_quats: list = []   # ... and the first-order check's, or None
+        # (t, estimate, first-order estimate or None)
+        self._items: list[tuple[float, PoseEstimate, PoseEstimate | None]] = []
+        # the estimate's rotation as a quaternion (x, y, z, w) or None
+        self._quats: list[np.ndarray | None] = []
+        self._check_quats: list[np.ndarray | None] = []   # ... and the first-order check's
 
     def clear(self) -> None:
         self._items.clear()
@@ -321,9 +338,9 @@ class PoseWindow:
         if self._items and t < self._items[-1][0]:
             self.clear()           # time went backwards: start over
         self._items.append((float(t), estimate, check))
-        self._quats.append(_quat(estimate.T_taught_current[:3, :3])
+        self._quats.append(_quat(_displacement(estimate)[:3, :3])
                            if estimate.valid else None)
-        self._check_quats.append(_quat(check.T_taught_current[:3, :3])
+        self._check_quats.append(_quat(_displacement(check)[:3, :3])
                                  if check is not None and check.valid else None)
         start = t - self.span_s - 1e-9
         while self._items and self._items[0][0] < start:

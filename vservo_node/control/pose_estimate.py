@@ -4,8 +4,10 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import Any, Sized
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.spatial.transform import Rotation
 
 from vservo_node.control import frames
@@ -61,13 +63,14 @@ class PoseEstimate:
     T_taught_current: np.ndarray | None = None
     residual: float = math.nan
     reason: str = ""
-    info: dict = field(default_factory=dict)
+    info: dict[str, Any] = field(default_factory=dict)
 
     @property
     def translation_mm(self) -> float:
         """Distance between the current and the taught camera origins, mm (NaN if invalid)."""
         if not self.valid:
             return math.nan
+        assert self.T_taught_current is not None   # valid: it has one
         return 1e3 * float(np.linalg.norm(self.T_taught_current[:3, 3]))
 
     @property
@@ -75,6 +78,7 @@ class PoseEstimate:
         """Angle of the rotation between the current and the taught camera frames, degrees."""
         if not self.valid:
             return math.nan
+        assert self.T_taught_current is not None
         return math.degrees(frames.pose_error(np.eye(4), self.T_taught_current)[1])
 
     @property
@@ -82,6 +86,7 @@ class PoseEstimate:
         """(3,) translation of ``T_taught_current``, metres (NaN if invalid)."""
         if not self.valid:
             return np.full(3, math.nan)
+        assert self.T_taught_current is not None
         return self.T_taught_current[:3, 3].copy()
 
     @property
@@ -89,7 +94,9 @@ class PoseEstimate:
         """(3,) rotation vector (axis * angle, rad) of ``T_taught_current`` (NaN if invalid)."""
         if not self.valid:
             return np.full(3, math.nan)
-        return Rotation.from_matrix(self.T_taught_current[:3, :3]).as_rotvec()
+        assert self.T_taught_current is not None
+        rotvec: np.ndarray = Rotation.from_matrix(self.T_taught_current[:3, :3]).as_rotvec()
+        return rotvec
 
 
 def invalid(method: str, reason: str) -> PoseEstimate:
@@ -98,10 +105,10 @@ def invalid(method: str, reason: str) -> PoseEstimate:
 
 
 # ----------------------------------------------------------------------------- checks
-def check_points(xy, name="xy", min_points=MIN_POINTS) -> np.ndarray:
+def check_points(xy_in: ArrayLike, name: str = "xy", min_points: int = MIN_POINTS) -> np.ndarray:
     """``xy`` as an (N, 2) float array of finite, non-collinear normalized points, N >=
     ``min_points``; ValueError otherwise."""
-    xy = np.asarray(xy, dtype=float)
+    xy = np.asarray(xy_in, dtype=float)
     if xy.ndim != 2 or xy.shape[1] != 2:
         raise ValueError(f"{name} must have shape (N, 2), got {xy.shape}")
     if len(xy) < min_points:
@@ -117,13 +124,13 @@ def check_points(xy, name="xy", min_points=MIN_POINTS) -> np.ndarray:
     return xy
 
 
-def _check_same_length(a, b, name_a, name_b):
+def _check_same_length(a: Sized, b: Sized, name_a: str, name_b: str) -> None:
     if len(a) != len(b):
         raise ValueError(f"{name_a} has {len(a)} points but {name_b} has {len(b)}; expected the "
                          "same features in the same order")
 
 
-def _model(points) -> tuple[np.ndarray, bool]:
+def _model(points: ArrayLike) -> tuple[np.ndarray, bool]:
     """(N, 3) finite model points and whether they are planar; ValueError otherwise."""
     P = np.asarray(points, dtype=float)
     if P.ndim != 2 or P.shape[1] != 3:
@@ -137,7 +144,7 @@ def _model(points) -> tuple[np.ndarray, bool]:
     return P, bool(s[2] <= PLANAR_RATIO * s[0])
 
 
-def plane_of(points_cam) -> tuple[np.ndarray, float, float]:
+def plane_of(points_cam: ArrayLike) -> tuple[np.ndarray, float, float]:
     """Best-fit plane ``n^T X = d`` of 3-D points (N, 3) in a camera frame: ``(n, d, rms)``
     with ``n`` a unit normal pointing away from the camera (``d > 0``) and ``rms`` the points'
     RMS distance to the plane, metres. ValueError for fewer than 3 or collinear points, or a

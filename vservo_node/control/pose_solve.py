@@ -3,9 +3,11 @@ homography with the taught depths, the first-order cross-check (vservo_node.cont
 from __future__ import annotations
 
 import math
+from typing import Any, cast
 
 import cv2
 import numpy as np
+from numpy.typing import ArrayLike
 
 from vservo_node.control import frames
 from vservo_node.control.interaction import interaction_matrix
@@ -15,14 +17,14 @@ from vservo_node.control.pose_estimate import (_check_same_length, _model, check
 
 
 # ----------------------------------------------------------------------------- PnP
-def _rt_to_T(rvec, tvec) -> np.ndarray:
+def _rt_to_T(rvec: ArrayLike, tvec: ArrayLike) -> np.ndarray:
     T = np.eye(4)
     T[:3, :3] = cv2.Rodrigues(np.asarray(rvec, dtype=float).reshape(3, 1))[0]
     T[:3, 3] = np.asarray(tvec, dtype=float).ravel()
     return T
 
 
-def _residual(T_camera_target, model, xy) -> float:
+def _residual(T_camera_target: np.ndarray, model: np.ndarray, xy: np.ndarray) -> float:
     """RMS distance (normalized units) between the model's projection and ``xy``; inf if a
     model point falls behind the camera."""
     p = model @ T_camera_target[:3, :3].T + T_camera_target[:3, 3]
@@ -31,7 +33,8 @@ def _residual(T_camera_target, model, xy) -> float:
     return float(np.sqrt(np.mean(np.sum((p[:, :2] / p[:, 2:] - xy) ** 2, axis=1))))
 
 
-def pose_from_model(xy, model_points, planar: bool | None = None) -> tuple[np.ndarray, float]:
+def pose_from_model(xy_in: ArrayLike, model_points: ArrayLike, planar: bool | None = None
+                    ) -> tuple[np.ndarray, float]:
     """``(T_camera_target, rms)``: the target's pose in the camera frame from the normalized
     points ``xy`` (N, 2) of its model points (N, 3), and the RMS residual (normalized units).
 
@@ -43,7 +46,7 @@ def pose_from_model(xy, model_points, planar: bool | None = None) -> tuple[np.nd
     puts the model in front of the camera. ``planar``: whether the model is planar, when the
     caller knows (else found here).
     """
-    xy = check_points(xy, "image points")
+    xy = check_points(xy_in, "image points")
     if planar is None:
         model, planar = _model(model_points)
     else:
@@ -63,7 +66,7 @@ def pose_from_model(xy, model_points, planar: bool | None = None) -> tuple[np.nd
     return best, best_rms
 
 
-def _solve_pnp(model, xy, flags):
+def _solve_pnp(model: np.ndarray, xy: np.ndarray, flags: int) -> tuple[np.ndarray | None, float]:
     """(T_camera_target, rms) of one OpenCV solver, its best candidate refined by
     Levenberg-Marquardt; (None, inf) when it finds none."""
     eye = np.eye(3)
@@ -94,7 +97,9 @@ WARM_ITERATIONS = 6
 WARM_STEP = 1e-6
 
 
-def refine_pose(T_camera_target, model, xy, iterations=WARM_ITERATIONS, step=WARM_STEP):
+def refine_pose(T_camera_target: np.ndarray, model: np.ndarray, xy: np.ndarray,
+                iterations: int = WARM_ITERATIONS, step: float = WARM_STEP
+                ) -> tuple[np.ndarray, float] | None:
     """``(T_camera_target, rms)`` refined by Gauss-Newton on the reprojection error of the
     normalized points ``xy`` (N, 2) of ``model`` (N, 3), from the pose given; None when it did
     not converge (a point behind the camera, a singular normal matrix, steps still larger than
@@ -138,8 +143,9 @@ def refine_pose(T_camera_target, model, xy, iterations=WARM_ITERATIONS, step=WAR
     return None
 
 
-def from_model(xy_now, xy_taught, model_points, T_taught_target=None,
-               planar: bool | None = None, T_guess=None) -> PoseEstimate:
+def from_model(xy_now: ArrayLike, xy_taught: ArrayLike, model_points: ArrayLike,
+               T_taught_target: ArrayLike | None = None, planar: bool | None = None,
+               T_guess: np.ndarray | None = None) -> PoseEstimate:
     """Pose-error estimate from the target's 3-D model (see module doc).
 
     Args:
@@ -162,7 +168,7 @@ def from_model(xy_now, xy_taught, model_points, T_taught_target=None,
         T_current_target, rms = warm
     else:
         T_current_target, rms = pose_from_model(xy_now, model_points, planar)
-    info = {"residual_now": rms, "warm_start": warm is not None,
+    info: dict[str, Any] = {"residual_now": rms, "warm_start": warm is not None,
             "T_current_target": T_current_target}
     if T_taught_target is None:
         T_taught_target, rms_taught = pose_from_model(xy_taught, model_points)
@@ -174,7 +180,7 @@ def from_model(xy_now, xy_taught, model_points, T_taught_target=None,
 
 
 # ----------------------------------------------------------------------------- homography
-def homography(xy_taught, xy_now) -> np.ndarray:
+def homography(xy_taught: ArrayLike, xy_now: ArrayLike) -> np.ndarray:
     """Least-squares homography ``H`` with ``x_now ~ H x_taught`` over all points (normalized
     coordinates; cv2.findHomography method 0: DLT then Levenberg-Marquardt), signed so that
     points in front of the camera stay in front. ValueError when the points fix none."""
@@ -192,7 +198,8 @@ def homography(xy_taught, xy_now) -> np.ndarray:
     return H
 
 
-def from_homography(xy_now, xy_taught, taught_depths) -> PoseEstimate:
+def from_homography(xy_now_in: ArrayLike, xy_taught_in: ArrayLike, taught_depths: ArrayLike
+                    ) -> PoseEstimate:
     """Pose-error estimate without a model, from the plane-induced homography and the taught
     depths (see module doc).
 
@@ -202,8 +209,8 @@ def from_homography(xy_now, xy_taught, taught_depths) -> PoseEstimate:
             constant depth: a plane facing the camera).
     ValueError on degenerate input or when the taught points are not on one plane.
     """
-    xy_taught = check_points(xy_taught, "taught points")
-    xy_now = check_points(xy_now, "current points")
+    xy_taught = check_points(xy_taught_in, "taught points")
+    xy_now = check_points(xy_now_in, "current points")
     _check_same_length(xy_now, xy_taught, "current points", "taught points")
     Z = np.broadcast_to(np.asarray(taught_depths, dtype=float), (len(xy_taught),))
     if not (np.isfinite(Z) & (Z > 0)).all():
@@ -218,8 +225,8 @@ def from_homography(xy_now, xy_taught, taught_depths) -> PoseEstimate:
     H = homography(xy_taught, xy_now)
     count, Rs, ts, ns = cv2.decomposeHomographyMat(H, np.eye(3))
     moved = [i for i in range(count) if np.linalg.norm(ts[i]) > 0]
-    info = {"solutions": int(count), "plane_distance_m": d, "plane_normal": n_taught,
-            "taught_off_plane_m": off_plane}
+    info: dict[str, Any] = {"solutions": int(count), "plane_distance_m": d,
+                            "plane_normal": n_taught, "taught_off_plane_m": off_plane}
     if moved:
         # The physically valid solution: its plane normal agrees with the taught plane's; the
         # other three are the mirrored solution and the two with the normal reversed, which
@@ -244,15 +251,15 @@ def from_homography(xy_now, xy_taught, taught_depths) -> PoseEstimate:
     return PoseEstimate("homography", True, T, rms, info=info)
 
 
-def solve_known_plane(H, n, d) -> tuple[np.ndarray, np.ndarray]:
+def solve_known_plane(H_in: ArrayLike, n_in: ArrayLike, d: float) -> tuple[np.ndarray, np.ndarray]:
     """``(R, t)`` of ``H ~ R + t n^T / d`` for a known unit plane normal ``n`` and distance
     ``d > 0`` (the taught plane; see module doc): ``R`` the rotation nearest ``H [u1 u2]`` on
     the plane's directions (orthogonal Procrustes, Schoenemann 1966), ``t = d (H n / lambda -
     R n)`` with ``lambda`` the scale of ``H``. ``H`` must have the sign ``homography`` gives it
     (points in front of the camera map to points in front). ValueError when ``H`` is
     degenerate."""
-    H = np.asarray(H, dtype=float)
-    n = np.asarray(n, dtype=float)
+    H = np.asarray(H_in, dtype=float)
+    n = np.asarray(n_in, dtype=float)
     n = n / np.linalg.norm(n)
     a = np.eye(3)[int(np.argmin(np.abs(n)))]        # the axis least aligned with n
     u1 = np.cross(n, a)
@@ -270,18 +277,21 @@ def solve_known_plane(H, n, d) -> tuple[np.ndarray, np.ndarray]:
 
 
 # ----------------------------------------------------------------------------- first order
-def first_order(xy_now, xy_taught, taught_depths, current_depths=None,
-                estimate="taught_view") -> PoseEstimate:
+def first_order(xy_now_in: ArrayLike, xy_taught_in: ArrayLike, taught_depths: ArrayLike,
+                current_depths: ArrayLike | None = None,
+                estimate: str = "taught_view") -> PoseEstimate:
     """First-order estimate: the camera twist ``v = -L^+ (s - s*)`` held for unit time
     (Chaumette & Hutchinson 2006, eq. 11 for ``L``; ``estimate`` as in
     ``interaction.interaction_matrix``; ``current_depths`` needed by 'current_view' and
     'blended'). ``T_current_taught ~ (exp([w]), v)``, valid to first order in the error."""
-    xy_taught = check_points(xy_taught, "taught points")
-    xy_now = check_points(xy_now, "current points")
+    xy_taught = check_points(xy_taught_in, "taught points")
+    xy_now = check_points(xy_now_in, "current points")
     _check_same_length(xy_now, xy_taught, "current points", "taught points")
     if estimate in ("current_view", "blended") and current_depths is None:
         raise ValueError(f"the {estimate!r} interaction matrix needs the current depths")
-    L = interaction_matrix(estimate, xy_now, current_depths, xy_taught, taught_depths)
+    # current_depths is None only for 'taught_view', which does not read it
+    L = interaction_matrix(estimate, xy_now, cast(ArrayLike, current_depths), xy_taught,
+                           taught_depths)
     e = (xy_now - xy_taught).ravel()
     v = -np.linalg.lstsq(L, e, rcond=None)[0]     # = -pinv(L) e, without forming pinv
     if not np.isfinite(v).all():
@@ -298,5 +308,6 @@ def disagreement(a: PoseEstimate, b: PoseEstimate) -> tuple[float, float]:
     translations and the angle between their rotations (NaN when either is invalid)."""
     if not (a.valid and b.valid):
         return math.nan, math.nan
+    assert a.T_taught_current is not None and b.T_taught_current is not None   # both valid
     moved, turned = frames.pose_error(a.T_taught_current, b.T_taught_current)
     return 1e3 * moved, math.degrees(turned)

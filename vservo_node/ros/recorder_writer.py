@@ -144,13 +144,15 @@ class BagWriter:
                               "its path only (params.yaml)")
 
     def _write(self, topic: str, msgtype: str, raw: bytes, stamp_ns: int) -> None:
+        recorder = self._recorder
         try:
-            if self._recorder is not None:
-                self._recorder.write(topic, msgtype, raw, stamp_ns)
+            if recorder is not None:
+                recorder.write(topic, msgtype, raw, stamp_ns)
         except Exception as exc:   # noqa: BLE001 - reported once per bag, then dropped quietly
             if not self._write_failed:
                 self._write_failed = True
-                self._log.error(f"cannot write {topic} into {self._recorder.bag_dir}: "
+                where = recorder.bag_dir if recorder is not None else None
+                self._log.error(f"cannot write {topic} into {where}: "
                                 f"{exc}; further messages of this bag are dropped")
         finally:
             with self._lock:

@@ -27,7 +27,7 @@ import time
 import numpy as np
 
 from vservo_node.vision.targets import Target
-from vservo_node.vision.features_base import Detection
+from vservo_node.vision.features_base import Detection, Detector
 from vservo_node.vision.features_dots import DotDetector
 from vservo_node.vision.features_markers import MAX_PROFILES, MarkerDetector, refine_quad
 from vservo_node.vision.features_textured import (PlanarModel, TexturedDetector, model_from_image,
@@ -35,12 +35,12 @@ from vservo_node.vision.features_textured import (PlanarModel, TexturedDetector,
 
 # Split by detector (features_dots, features_markers, features_textured; the detection and the
 # image helpers they share in features_base); every public name keeps this import path.
-__all__ = ["MAX_PROFILES", "Detection", "DotDetector", "MarkerDetector", "PlanarModel",
-           "TexturedDetector", "Tracker", "make_detector", "model_from_image",
+__all__ = ["MAX_PROFILES", "Detection", "Detector", "DotDetector", "MarkerDetector",
+           "PlanarModel", "TexturedDetector", "Tracker", "make_detector", "model_from_image",
            "model_from_texture", "refine_quad"]
 
 
-def make_detector(target: Target, model: PlanarModel | None = None):
+def make_detector(target: Target, model: PlanarModel | None = None) -> Detector:
     """The detector for a target's kind; textured targets use ``model`` if given (e.g. the
     taught view), else a model of the target's texture."""
     if target.kind == "dots":
@@ -60,29 +60,36 @@ class Tracker:
     both found the same features, else at the last position.
     """
 
-    def __init__(self, detector, refresh_every=10):
+    def __init__(self, detector: Detector, refresh_every: int = 10) -> None:
         self.detector = detector
         self.refresh_every = refresh_every
         self.reset()
 
-    def reset(self):
-        self._last = self._before = None
+    def reset(self) -> None:
+        self._last: Detection | None = None
+        self._before: Detection | None = None
         self._since_full = 0
 
-    def _predicted(self):
+    def _predicted(self) -> np.ndarray:
         last, before = self._last, self._before
+        assert last is not None   # called after a detection only
         same = (before is not None and before.keys == last.keys
                 and (last.kind != "dots" or last.windowed))
-        return 2 * last.points - before.points if same else last.points
+        if same:
+            assert before is not None
+            predicted: np.ndarray = 2 * last.points - before.points
+            return predicted
+        return last.points
 
     def detect(self, image: np.ndarray) -> Detection:
         """Detect in ``image`` (same type and size each frame), in windows when possible."""
         t0 = time.perf_counter()
         last = self._last
-        det = None
+        det: Detection | None = None
         want_full = (last is None or len(last) == 0 or (
             len(last) < self.detector.expected and self._since_full >= self.refresh_every))
         if not want_full:
+            assert last is not None
             det = self.detector.detect(image, self.detector.windows(last, self._predicted()))
             if not set(last.keys) <= set(det.keys):
                 det = None  # a feature went missing from its window: search the full frame

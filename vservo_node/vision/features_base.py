@@ -3,6 +3,7 @@ images, sizes, search windows (vservo_node.vision.features)."""
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any, Protocol, Sequence
 
 import numpy as np
 
@@ -26,15 +27,15 @@ class Detection:
     """
     kind: str
     points: np.ndarray
-    keys: list
-    image_size: tuple
+    keys: list[Any]
+    image_size: tuple[int, int]
     colours_linear: np.ndarray | None = None
-    quality: dict = field(default_factory=dict)
-    timings: dict = field(default_factory=dict)
+    quality: dict[str, Any] = field(default_factory=dict)
+    timings: dict[str, float] = field(default_factory=dict)
     windowed: bool = False
     homography: np.ndarray | None = None
 
-    def __len__(self):
+    def __len__(self) -> int:
         return len(self.keys)
 
     @property
@@ -43,7 +44,7 @@ class Detection:
         return None if self.colours_linear is None else linear_rgb_to_lab(self.colours_linear)
 
 
-def _colour_image(image, allow16=False):
+def _colour_image(image: np.ndarray, allow16: bool = False) -> np.ndarray:
     if image.dtype == np.uint16 and image.ndim == 2:
         if allow16:
             return image
@@ -56,11 +57,12 @@ def _colour_image(image, allow16=False):
     return image
 
 
-def _size(image):
+def _size(image: np.ndarray) -> tuple[int, int]:
     return (image.shape[1], image.shape[0])
 
 
-def _window(image, rect, min_side=4):
+def _window(image: np.ndarray, rect: Sequence[float], min_side: int = 4
+            ) -> tuple[np.ndarray, int, int] | None:
     """(view, x0, y0) of ``image`` inside rect (x0, y0, x1, y1) clipped to the image, or None
     if less than ``min_side`` pixels of it lie in the image."""
     h, w = image.shape[:2]
@@ -71,7 +73,27 @@ def _window(image, rect, min_side=4):
     return image[y0:y1, x0:x1], x0, y0
 
 
-def _search_area(grey, windows):
+def _search_area(grey: np.ndarray, windows: Sequence[Window] | None
+                 ) -> tuple[np.ndarray, int, int] | None:
     """(view, x0, y0): the full image, or its part inside the single window given; None
     when the window lies outside the image."""
     return (grey, 0, 0) if windows is None else _window(grey, windows[0][1], min_side=16)
+
+
+# A search window of a detector: (key or marker id or None, (x0, y0, x1, y1), then what the
+# detector kind adds: a marker's predicted corners, the textured target's last homography and
+# predicted motion).
+Window = tuple[Any, ...]
+
+
+class Detector(Protocol):
+    """What ``Tracker`` and the servo use of a detector (DotDetector, MarkerDetector,
+    TexturedDetector)."""
+    kind: str
+    expected: int
+
+    def detect(self, image: np.ndarray, windows: Sequence[Window] | None = None) -> Detection:
+        ...
+
+    def windows(self, last: Detection, predicted: np.ndarray) -> list[Window]:
+        ...

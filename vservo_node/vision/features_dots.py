@@ -3,13 +3,14 @@ from __future__ import annotations
 
 import math
 import time
+from typing import Any, Sequence
 
 import cv2
 import numpy as np
 
 from vservo_node.vision.image_io import SRGB8_TO_LINEAR
 from vservo_node.vision.targets import Target
-from vservo_node.vision.features_base import _colour_image, _size, _window, Detection
+from vservo_node.vision.features_base import _colour_image, _size, _window, Detection, Window
 
 
 # ============================================================================ dots
@@ -29,12 +30,14 @@ class DotDetector:
     kind = "dots"
     CHROMA_THRESHOLD = 50.0  # chroma max(R,G,B)-min(R,G,B) on 0..255; common practice, no source
 
-    def __init__(self, target: Target, *, min_area_px=12.0, max_area_fraction=0.05,
-                 min_roundness=0.3, fill_range=(0.8, 1.2), window_scale=2.5):
+    def __init__(self, target: Target, *, min_area_px: float = 12.0,
+                 max_area_fraction: float = 0.05, min_roundness: float = 0.3,
+                 fill_range: tuple[float, float] = (0.8, 1.2), window_scale: float = 2.5
+                 ) -> None:
         if target.kind != "dots":
             raise ValueError(f"DotDetector needs a dots target, got {target.kind!r}")
         self.mode = target.segmentation
-        self.threshold = target.threshold
+        self.threshold: float | None = target.threshold
         if self.threshold is None and self.mode == "chroma":
             self.threshold = self.CHROMA_THRESHOLD
         self.expected = len(target.dots)
@@ -43,7 +46,8 @@ class DotDetector:
         self.min_roundness = min_roundness
         self.fill_range = fill_range
         self.window_scale = window_scale
-        self._auto_threshold = None  # Otsu's threshold of the last full frame ('auto' mode)
+        # Otsu's threshold of the last full frame ('auto' mode)
+        self._auto_threshold: float | None = None
 
     # ---------------------------------------------------------------- segmentation
     def score(self, image: np.ndarray) -> np.ndarray:
@@ -55,11 +59,12 @@ class DotDetector:
                 raise ValueError("chroma segmentation needs a colour image, got a mono one; "
                                  "set segmentation mode 'dark' or 'bright' for mono cameras")
             b, g, r = image[..., 0], image[..., 1], image[..., 2]
-            return np.maximum(np.maximum(b, g), r) - np.minimum(np.minimum(b, g), r)
+            chroma: np.ndarray = np.maximum(np.maximum(b, g), r) - np.minimum(np.minimum(b, g), r)
+            return chroma
         grey = image if image.ndim == 2 else cv2.cvtColor(image, cv2.COLOR_BGR2GRAY)
         return 255 - grey if self.mode == "dark" else grey
 
-    def _mask(self, score, full_frame):
+    def _mask(self, score: np.ndarray, full_frame: bool) -> np.ndarray:
         threshold = self.threshold
         if threshold is None:
             if full_frame or self._auto_threshold is None:
@@ -72,7 +77,9 @@ class DotDetector:
         return (score > threshold).view(np.uint8)
 
     # ---------------------------------------------------------------- measurement
-    def _measure(self, image, score, labels, stats, i, max_area):
+    def _measure(self, image: np.ndarray, score: np.ndarray, labels: np.ndarray,
+                 stats: np.ndarray, i: int, max_area: float
+                 ) -> tuple[tuple[Any, ...] | None, str | None]:
         """Centroid, colour and shape of component i; (None, reason) if a gate refuses it."""
         x, y, w, h, area = stats[i].tolist()  # Python ints: numpy scalars are slow here
         H, W = labels.shape
@@ -115,24 +122,27 @@ class DotDetector:
         return (centre, colour, float(area), math.sqrt(area / math.pi),
                 minor / major, fill), None
 
-    def _components(self, image, full_frame):
+    def _components(self, image: np.ndarray, full_frame: bool
+                    ) -> tuple[np.ndarray, int, np.ndarray, np.ndarray]:
         score = self.score(image)
         n, labels, stats, _ = cv2.connectedComponentsWithStats(
             self._mask(score, full_frame), connectivity=8, ltype=cv2.CV_32S)
         return score, n, labels, stats
 
     # ---------------------------------------------------------------- detection
-    def detect(self, image: np.ndarray, windows=None) -> Detection:
+    def detect(self, image: np.ndarray, windows: Sequence[Window] | None = None) -> Detection:
         """Blobs in the full image, or at most one per ``(key, (x0, y0, x1, y1))`` window."""
         t0 = time.perf_counter()
         image = _colour_image(image)
         max_area = self.max_area_fraction * image.shape[0] * image.shape[1]
-        found, rejected = [], {}
+        found: list[tuple[Any, ...]] = []
+        rejected: dict[str, int] = {}
         if windows is None:
             score, n, labels, stats = self._components(image, True)
             for i in range(1, n):
                 blob, why = self._measure(image, score, labels, stats, i, max_area)
                 if blob is None:
+                    assert why is not None   # a refused blob says why
                     rejected[why] = rejected.get(why, 0) + 1
                 else:
                     found.append((("blob", len(found)),) + blob)
@@ -146,7 +156,7 @@ class DotDetector:
                 score, n, labels, stats = self._components(sub, False)
                 centre = np.array([(rect[0] + rect[2] - 1) / 2 - x0,
                                    (rect[1] + rect[3] - 1) / 2 - y0])
-                best = None
+                best: tuple[float, tuple[Any, ...]] | None = None
                 for i in range(1, n):
                     blob, _ = self._measure(sub, score, labels, stats, i, max_area)
                     if blob is not None:
@@ -169,7 +179,7 @@ class DotDetector:
                          quality=quality, windowed=windows is not None,
                          timings={"detect_ms": 1e3 * (time.perf_counter() - t0)})
 
-    def windows(self, last: Detection, predicted: np.ndarray) -> list:
+    def windows(self, last: Detection, predicted: np.ndarray) -> list[Window]:
         """One window per blob of ``last``, centred on its predicted position."""
         moved = np.hypot(*(predicted - last.points).T)
         half = np.maximum(self.window_scale * last.quality["radius_px"] + moved, 8.0)

@@ -4,13 +4,14 @@ from __future__ import annotations
 
 import math
 import time
+from typing import cast, Literal, overload, Sequence
 
 import cv2
 import numpy as np
 
 from vservo_node.vision.image_io import to_mono8
 from vservo_node.vision.targets import Target
-from vservo_node.vision.features_base import _colour_image, _size, _window, Detection
+from vservo_node.vision.features_base import _colour_image, _size, _window, Detection, Window
 
 
 # ============================================================================ markers
@@ -22,7 +23,7 @@ class MarkerDetector:
     """
     kind = "markers"
 
-    def __init__(self, target: Target, *, margin=0.3):
+    def __init__(self, target: Target, *, margin: float = 0.3) -> None:
         if target.kind != "markers":
             raise ValueError(f"MarkerDetector needs a markers target, got {target.kind!r}")
         params = cv2.aruco.DetectorParameters()
@@ -52,7 +53,7 @@ class MarkerDetector:
     REFIT_PX = 0.5
     MAX_FITS = 3
 
-    def detect(self, image: np.ndarray, windows=None) -> Detection:
+    def detect(self, image: np.ndarray, windows: Sequence[Window] | None = None) -> Detection:
         """Markers in the full image, or one per window ``(marker_id, (x0, y0, x1, y1)[,
         predicted corners (4, 2)])``: the marker of that id inside its window (``marker_id``
         None: any of the target's). With predicted corners they are refined directly and
@@ -60,12 +61,14 @@ class MarkerDetector:
         that fails."""
         t0 = time.perf_counter()
         image = _colour_image(image, allow16=True)
-        found = []          # (id, corners (4, 2) in image pixels)
-        ids_seen = []
+        # (id, grey image to refine on or None, corners (4, 2), offset x0, y0)
+        found: list[tuple[int, np.ndarray | None, np.ndarray, int, int]] = []
+        ids_seen: list[int] = []
         if windows is None:
             grey = to_mono8(image)
-            corners, ids, _ = self._aruco.detectMarkers(grey)
-            ids = [] if ids is None else ids.ravel().tolist()
+            corners, id_array, _ = self._aruco.detectMarkers(grey)
+            ids: list[int] = ([] if id_array is None
+                              else cast(list[int], id_array.ravel().tolist()))
             ids_seen += ids
             for marker_id, quad in zip(ids, corners):
                 found.append((marker_id, grey, quad.reshape(4, 2), 0, 0))
@@ -94,21 +97,23 @@ class MarkerDetector:
                 scale = min(1.0, self.WINDOW_SIDE_PX / max(side, 1.0))
                 small = grey if scale >= 1.0 else cv2.resize(
                     grey, None, fx=scale, fy=scale, interpolation=cv2.INTER_AREA)
-                corners, ids, _ = self._aruco.detectMarkers(small)
-                ids = [] if ids is None else ids.ravel().tolist()
+                corners, id_array, _ = self._aruco.detectMarkers(small)
+                ids = [] if id_array is None else cast(list[int], id_array.ravel().tolist())
                 ids_seen += ids
                 for marker_id, quad in zip(ids, corners):
                     if want is None or marker_id == want:
                         # pixel centres: u_full = (u_small + 0.5) / scale - 0.5
                         quad = (quad.reshape(4, 2) + 0.5) / scale - 0.5
                         found.append((marker_id, grey, quad, x0, y0))
-        seen, keys, points = set(), [], []
-        for marker_id, grey, quad, x0, y0 in found:
+        seen: set[int] = set()
+        keys: list[tuple[str, int, int]] = []
+        points: list[np.ndarray] = []
+        for marker_id, refine_on, quad, x0, y0 in found:
             if marker_id in self.ids and marker_id not in seen:
                 seen.add(marker_id)
                 keys += [("tag", marker_id, c) for c in range(4)]
-                points.append(quad if grey is None else
-                              refine_quad(grey, quad, self.cells) + (x0, y0))
+                points.append(quad if refine_on is None else
+                              refine_quad(refine_on, quad, self.cells) + (x0, y0))
         return Detection("markers", np.array(points, dtype=float).reshape(-1, 2), keys,
                          _size(image), windowed=windows is not None,
                          quality={"marker_ids": sorted(seen),
@@ -117,10 +122,10 @@ class MarkerDetector:
                                                            if ids_seen.count(i) > 1})},
                          timings={"detect_ms": 1e3 * (time.perf_counter() - t0)})
 
-    def windows(self, last: Detection, predicted: np.ndarray) -> list:
+    def windows(self, last: Detection, predicted: np.ndarray) -> list[Window]:
         """One window per marker of ``last`` around its predicted corners, grown by ``margin``
         of the marker's extent and 8 px (the detector needs a quiet zone inside the window)."""
-        out = []
+        out: list[Window] = []
         for j in range(0, len(last.keys), 4):
             quad = predicted[j:j + 4]
             lo, hi = quad.min(axis=0), quad.max(axis=0)
@@ -130,7 +135,8 @@ class MarkerDetector:
                         quad))
         return out
 
-    def _cells_match(self, grey, quad, marker_id, max_wrong=1) -> bool:
+    def _cells_match(self, grey: np.ndarray, quad: np.ndarray, marker_id: int,
+                     max_wrong: int = 1) -> bool:
         """Do the cells inside ``quad`` (corners in the detector's order) read marker
         ``marker_id``? Cell centres sampled through the quad's homography, split at the mean
         grey; at most ``max_wrong`` cells may disagree (common practice, no source)."""
@@ -143,7 +149,7 @@ class MarkerDetector:
         if grey_at.max() - grey_at.min() < 20.0:
             return False
         wrong = np.count_nonzero((grey_at > grey_at.mean()) != self._cells[marker_id])
-        return wrong <= max_wrong
+        return bool(wrong <= max_wrong)
 
 
 MAX_PROFILES = 32   # per edge; common practice, no source
@@ -154,12 +160,16 @@ _POPCOUNT = np.array([bin(i).count("1") for i in range(256)], dtype=np.uint8)
 
 def _bit_count(words: np.ndarray) -> np.ndarray:
     """Set bits of each uint64 (NumPy >= 2.0's bitwise_count, else a byte table)."""
+    counts: np.ndarray
     if hasattr(np, "bitwise_count"):
-        return np.bitwise_count(words)
-    return _POPCOUNT[words.view(np.uint8)].reshape(*words.shape, 8).sum(axis=-1)
+        counts = np.bitwise_count(words)
+    else:
+        counts = _POPCOUNT[words.view(np.uint8)].reshape(*words.shape, 8).sum(axis=-1)
+    return counts
 
 
-def _edge_lines(grey, quad, cell_px):
+def _edge_lines(grey: np.ndarray, quad: np.ndarray, cell_px: float
+                ) -> tuple[np.ndarray, np.ndarray]:
     """Sub-pixel lines (normals (4, 2), offsets (4,): n.x = d; NaN where not found) of the four
     dark-to-light edges of ``quad`` (edge i from corner i to corner i + 1), all four at once.
 
@@ -217,8 +227,18 @@ def _edge_lines(grey, quad, cell_px):
     return normal, offset
 
 
+@overload
 def refine_quad(grey: np.ndarray, quad: np.ndarray, cells: int,
-                return_found: bool = False):
+                return_found: Literal[False] = False) -> np.ndarray: ...
+
+
+@overload
+def refine_quad(grey: np.ndarray, quad: np.ndarray, cells: int,
+                return_found: Literal[True]) -> tuple[np.ndarray, int]: ...
+
+
+def refine_quad(grey: np.ndarray, quad: np.ndarray, cells: int,
+                return_found: bool = False) -> np.ndarray | tuple[np.ndarray, int]:
     """Corners (4, 2) of a marker's outer black square, refined by fitting its four edges
     with sub-pixel edge points and intersecting adjacent lines; corners whose edges cannot be
     fitted keep the given estimate. ``cells``: marker side in cells (bits + border).

@@ -3,13 +3,15 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass
+from typing import Any, Iterable, Sequence
 
 import cv2
 import numpy as np
+from numpy.typing import ArrayLike
 
 from vservo_node.vision.image_io import to_mono8
 from vservo_node.vision.targets import Target, render_target_texture
-from vservo_node.vision.features_base import _colour_image, _size, _window, Detection
+from vservo_node.vision.features_base import _colour_image, _size, _window, Detection, Window
 from vservo_node.vision.features_markers import _bit_count
 
 
@@ -24,15 +26,15 @@ class PlanarModel:
     keypoints: np.ndarray    # (K, 2)
     descriptors: np.ndarray  # (K, 32) uint8, ORB
     points: np.ndarray       # (P, 2) servo points
-    keys: list               # P keys
+    keys: list[Any]          # P keys
 
 
-def _orb(n_features):
-    return cv2.ORB_create(nfeatures=n_features, scaleFactor=1.2, nlevels=8, fastThreshold=20)
+def _orb(n_features: int) -> cv2.ORB:
+    return cv2.ORB.create(nfeatures=n_features, scaleFactor=1.2, nlevels=8, fastThreshold=20)
 
 
-def model_from_image(image: np.ndarray, points, keys, to_model=None,
-                     n_features=2000) -> PlanarModel:
+def model_from_image(image: np.ndarray, points: ArrayLike, keys: Iterable[Any],
+                     to_model: ArrayLike | None = None, n_features: int = 2000) -> PlanarModel:
     """PlanarModel of an image of the target: ORB keypoints of ``image``, mapped by the 3x3
     ``to_model`` (default identity: model coordinates are this image's pixels)."""
     grey = to_mono8(_colour_image(image))
@@ -46,9 +48,11 @@ def model_from_image(image: np.ndarray, points, keys, to_model=None,
     return PlanarModel(xy, des, np.asarray(points, dtype=float).reshape(-1, 2), list(keys))
 
 
-def model_from_texture(target: Target, px_per_m=2000.0, n_features=2000) -> PlanarModel:
+def model_from_texture(target: Target, px_per_m: float = 2000.0, n_features: int = 2000
+                       ) -> PlanarModel:
     """PlanarModel of a textured target from its texture; coordinates in target metres."""
     texture, T = render_target_texture(target, px_per_m)
+    assert target.points is not None   # a textured target has its servo points
     return model_from_image(texture, target.points, target.keys(), to_model=T,
                             n_features=n_features)
 
@@ -81,19 +85,20 @@ class TexturedDetector:
     # that passed the wide gate is then no candidate); common practice, no source
     REGATE_PX = 4.0
 
-    def __init__(self, model: PlanarModel, *, n_features=1500, ratio=0.8, ransac_px=3.0,
-                 min_inliers=15, margin=0.6):
+    def __init__(self, model: PlanarModel, *, n_features: int = 1500, ratio: float = 0.8,
+                 ransac_px: float = 3.0, min_inliers: int = 15, margin: float = 0.6) -> None:
         self.model = model
         self._model_words = np.ascontiguousarray(model.descriptors).view(np.uint64)
         self._orb = _orb(n_features)
-        self._orb_track = cv2.ORB_create(nfeatures=self.TRACK_FEATURES, scaleFactor=1.2,
+        self._orb_track = cv2.ORB.create(nfeatures=self.TRACK_FEATURES, scaleFactor=1.2,
                                          nlevels=self.TRACK_LEVELS, fastThreshold=20)
         self._matcher = cv2.BFMatcher(cv2.NORM_HAMMING)
         self.ratio, self.ransac_px, self.min_inliers = ratio, ransac_px, min_inliers
         self.expected = len(model.keys)
         self.margin = margin
 
-    def _gated_matches(self, uv, words, H, reach, gate_px):
+    def _gated_matches(self, uv: np.ndarray, words: np.ndarray, H: np.ndarray, reach: float,
+                       gate_px: float) -> tuple[np.ndarray, np.ndarray]:
         """(model indices, image points) of the gated matches (see GATE_PX) of the keypoints
         at ``uv`` (n, 2) image pixels with descriptors ``words`` (n, 4) uint64."""
         from scipy.spatial import cKDTree
@@ -114,13 +119,14 @@ class TexturedDetector:
         good = (best <= self.MAX_HAMMING) & (best < self.ratio * second)
         return idx[rows, first][good], uv[good]
 
-    def detect(self, image: np.ndarray, windows=None) -> Detection:
+    def detect(self, image: np.ndarray, windows: Sequence[Window] | None = None) -> Detection:
         """The servo points in the full image, or in the window ``[(None, rect[, H, reach])]``
         (with the last homography ``H`` and the predicted motion ``reach`` px: gated
         matching, see ``GATE_PX``)."""
         t0 = time.perf_counter()
         grey_all = _colour_image(image)
-        kps, des, x0, y0 = (), None, 0, 0
+        kps: Sequence[cv2.KeyPoint] = ()
+        des, x0, y0 = None, 0, 0
         gate = None
         if windows is None:
             kps, des = self._orb.detectAndCompute(to_mono8(grey_all), None)
@@ -131,7 +137,7 @@ class TexturedDetector:
                 gate = windows[0][2:] or None
                 orb = self._orb if gate is None else self._orb_track
                 kps, des = orb.detectAndCompute(to_mono8(sub), None)
-        quality = {"n_keypoints": len(kps), "n_matches": 0, "n_inliers": 0,
+        quality: dict[str, Any] = {"n_keypoints": len(kps), "n_matches": 0, "n_inliers": 0,
                    "inlier_ratio": 0.0, "reprojection_rms_px": float("nan")}
         empty = Detection("textured", np.zeros((0, 2)), [], _size(image), quality=quality,
                           windowed=windows is not None)
@@ -145,7 +151,7 @@ class TexturedDetector:
             src = self.model.keypoints[[m.trainIdx for m in good]]
             dst = np.array([kps[m.queryIdx].pt for m in good]).reshape(-1, 2) + (x0, y0)
         else:
-            uv = cv2.KeyPoint_convert(kps).astype(float) + (x0, y0)
+            uv = np.asarray(cv2.KeyPoint.convert(kps)).astype(float) + (x0, y0)
             words = np.ascontiguousarray(des).view(np.uint64)      # (n, 4): 256 bits each
             H_last, reach = gate
             model_i, dst = self._gated_matches(uv, words, H_last, reach, self.GATE_PX)
@@ -154,6 +160,8 @@ class TexturedDetector:
         if len(dst) < max(self.min_inliers, 4):
             quality["reason"] = f"{len(dst)} descriptor matches, need {self.min_inliers}"
             return self._timed(empty, t0)
+        H: np.ndarray | None
+        inl: np.ndarray | None
         H, inl = cv2.findHomography(src, dst, cv2.RANSAC, self.ransac_px, maxIters=2000,
                                     confidence=0.999)
         if gate is not None and H is not None:
@@ -170,25 +178,27 @@ class TexturedDetector:
         if H is None or inliers < self.min_inliers:
             quality["reason"] = f"{inliers} homography inliers, need {self.min_inliers}"
             return self._timed(empty, t0)
+        assert inl is not None   # findHomography gives its inlier mask with the homography
         inl = inl.ravel().astype(bool)
         err = cv2.perspectiveTransform(src[inl].reshape(-1, 1, 2), H).reshape(-1, 2) - dst[inl]
         quality["reprojection_rms_px"] = float(np.sqrt(np.mean(np.sum(err ** 2, axis=1))))
-        uv = cv2.perspectiveTransform(self.model.points.reshape(-1, 1, 2), H).reshape(-1, 2)
+        servo_uv = cv2.perspectiveTransform(self.model.points.reshape(-1, 1, 2),
+                                            H).reshape(-1, 2)
         w, h = _size(image)
-        inside = (uv[:, 0] >= -0.5) & (uv[:, 0] <= w - 0.5) & (uv[:, 1] >= -0.5) & (
-            uv[:, 1] <= h - 0.5)
+        inside = (servo_uv[:, 0] >= -0.5) & (servo_uv[:, 0] <= w - 0.5) & (
+            servo_uv[:, 1] >= -0.5) & (servo_uv[:, 1] <= h - 0.5)
         quality["outside_image"] = [k for k, ok in zip(self.model.keys, inside) if not ok]
-        det = Detection("textured", uv[inside], [k for k, ok in zip(self.model.keys, inside)
+        det = Detection("textured", servo_uv[inside], [k for k, ok in zip(self.model.keys, inside)
                                                  if ok], _size(image), quality=quality,
                         windowed=windows is not None, homography=H)
         return self._timed(det, t0)
 
     @staticmethod
-    def _timed(det, t0):
+    def _timed(det: Detection, t0: float) -> Detection:
         det.timings["detect_ms"] = 1e3 * (time.perf_counter() - t0)
         return det
 
-    def windows(self, last: Detection, predicted: np.ndarray) -> list:
+    def windows(self, last: Detection, predicted: np.ndarray) -> list[Window]:
         """One window around the predicted servo points, grown by ``margin`` of their extent,
         with the last homography and the predicted motion for gated matching."""
         lo, hi = predicted.min(axis=0), predicted.max(axis=0)

@@ -26,12 +26,18 @@ from __future__ import annotations
 
 import itertools
 from dataclasses import dataclass, field
+from typing import Any, Iterable, Mapping, Sequence, TYPE_CHECKING
 
 import cv2
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.optimize import linear_sum_assignment
 
 from vservo_node.vision.image_io import delta_e_ab, linear_rgb_to_lab
+
+if TYPE_CHECKING:
+    from vservo_node.vision.camera import CameraModel
+    from vservo_node.vision.features_base import Detection
 
 MIN_MATCHED = 4
 
@@ -56,14 +62,14 @@ class MatchResult:
     """
     points: np.ndarray
     ref_points: np.ndarray
-    keys: list
+    keys: list[Any]
     detection_index: np.ndarray
-    missing: list
-    rejected: list
-    quality: dict = field(default_factory=dict)
+    missing: list[Any]
+    rejected: list[tuple[Any, str]]
+    quality: dict[str, Any] = field(default_factory=dict)
     min_matched: int = MIN_MATCHED
 
-    def __len__(self):
+    def __len__(self) -> int:
         return len(self.keys)
 
     @property
@@ -78,38 +84,40 @@ class MatchResult:
         return (f"{len(self)} features matched, need {self.min_matched}; missing "
                 f"{self.missing}")
 
-    def as_dict(self) -> dict:
+    def as_dict(self) -> dict[Any, tuple[float, ...]]:
         """{key: (u, v)}: e.g. the ``predicted`` positions for the next frame's match."""
         return {k: tuple(p) for k, p in zip(self.keys, self.points)}
 
 
-def assign(cost: np.ndarray, allowed: np.ndarray):
+def assign(cost: ArrayLike, allowed: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
     """Minimum-cost assignment among allowed pairs, with as many pairs as possible.
 
     Forbidden pairs cost more than any full set of allowed ones, so the Hungarian method
     first maximises the number of allowed pairs, then minimises their total cost.
     Returns (rows, cols) of the allowed pairs chosen.
     """
-    cost = np.asarray(cost, dtype=float)
-    allowed = np.asarray(allowed, dtype=bool)
-    if cost.size == 0:
+    costs = np.asarray(cost, dtype=float)
+    ok = np.asarray(allowed, dtype=bool)
+    if costs.size == 0:
         return np.zeros(0, int), np.zeros(0, int)
-    big = (np.abs(cost[allowed]).sum() + 1.0) * (min(cost.shape) + 1)
-    rows, cols = linear_sum_assignment(np.where(allowed, cost, big))
-    keep = allowed[rows, cols]
+    big = (np.abs(costs[ok]).sum() + 1.0) * (min(costs.shape) + 1)
+    rows, cols = linear_sum_assignment(np.where(ok, costs, big))
+    keep = ok[rows, cols]
     return rows[keep], cols[keep]
 
 
-def _result(detection, ref_keys, ref_points, pairs, reasons, quality, min_matched):
-    pairs = sorted(pairs)
+def _result(detection: Detection, ref_keys: Sequence[Any], ref_points: ArrayLike,
+            pairs_in: Iterable[tuple[int, int]], reasons: Mapping[int, str],
+            quality: dict[str, Any], min_matched: int) -> MatchResult:
+    pairs = sorted(pairs_in)
     idx_ref = np.array([r for r, _ in pairs], dtype=int)
     idx_det = np.array([d for _, d in pairs], dtype=int)
-    ref_points = np.asarray(ref_points, dtype=float).reshape(-1, 2)
+    ref_xy = np.asarray(ref_points, dtype=float).reshape(-1, 2)
     matched = set(idx_ref.tolist())
     used = set(idx_det.tolist())
     return MatchResult(
         points=detection.points[idx_det].reshape(-1, 2),
-        ref_points=ref_points[idx_ref] if len(ref_points) else np.zeros((len(pairs), 2)),
+        ref_points=ref_xy[idx_ref] if len(ref_xy) else np.zeros((len(pairs), 2)),
         keys=[ref_keys[r] for r in idx_ref], detection_index=idx_det,
         missing=[k for r, k in enumerate(ref_keys) if r not in matched],
         rejected=[(detection.keys[j], reasons.get(j, "unassigned"))
@@ -117,18 +125,19 @@ def _result(detection, ref_keys, ref_points, pairs, reasons, quality, min_matche
         quality=quality, min_matched=min_matched)
 
 
-def match_by_key(detection, ref_keys, ref_points, *, min_matched=MIN_MATCHED) -> MatchResult:
+def match_by_key(detection: Detection, ref_keys: Iterable[Iterable[Any]], ref_points: ArrayLike,
+                 *, min_matched: int = MIN_MATCHED) -> MatchResult:
     """Markers and textured targets: features correspond by key."""
     where = {k: j for j, k in enumerate(detection.keys)}
-    ref_keys = [tuple(k) for k in ref_keys]
-    pairs = [(r, where[k]) for r, k in enumerate(ref_keys) if k in where]
-    known = set(ref_keys)
+    keys = [tuple(k) for k in ref_keys]
+    pairs = [(r, where[k]) for r, k in enumerate(keys) if k in where]
+    known = set(keys)
     reasons = {j: "not in reference" for j, k in enumerate(detection.keys) if k not in known}
-    return _result(detection, ref_keys, ref_points, pairs, reasons, {}, min_matched)
+    return _result(detection, keys, ref_points, pairs, reasons, {}, min_matched)
 
 
 # ----------------------------------------------------------------------------- dots
-def _colour_groups(ref_lab, threshold):
+def _colour_groups(ref_lab: np.ndarray, threshold: float) -> list[list[int]]:
     """Groups (lists of reference indices) whose colours chain within ``threshold``."""
     n = len(ref_lab)
     close = delta_e_ab(ref_lab[:, None], ref_lab[None]) < threshold
@@ -140,7 +149,7 @@ def _colour_groups(ref_lab, threshold):
     return [[i for i in range(n) if group[i] == g] for g in sorted(set(group))]
 
 
-def _homography_fit(src, dst):
+def _homography_fit(src: np.ndarray, dst: np.ndarray) -> tuple[float, bool] | None:
     """(rms px, orientation kept) of the least-squares homography src -> dst, or None."""
     H, _ = cv2.findHomography(src, dst, 0)
     if H is None:
@@ -150,7 +159,7 @@ def _homography_fit(src, dst):
         return None  # the plane would cross the line at infinity between points
     proj = cv2.perspectiveTransform(src.reshape(-1, 1, 2), H).reshape(-1, 2)
     rms = float(np.sqrt(np.mean(np.sum((proj - dst) ** 2, axis=1))))
-    return rms, np.linalg.det(H) * np.sign(w[0]) ** 3 > 0
+    return rms, bool(np.linalg.det(H) * np.sign(w[0]) ** 3 > 0)
 
 
 # Triples of a 4-point sample whose orientations OpenCV's homography RANSAC compares.
@@ -163,7 +172,7 @@ _INLIER_ROOM = 0.25
 _SHORTCUT_MAX_POINTS = 6
 
 
-def _subsets(n):
+def _subsets(n: int) -> tuple[np.ndarray, np.ndarray]:
     """(4-point subsets (S, 4), their triples (S, 4, 3)) of n points, cached."""
     if n not in _SUBSETS:
         subsets = np.array(list(itertools.combinations(range(n), 4)))
@@ -171,10 +180,10 @@ def _subsets(n):
     return _SUBSETS[n]
 
 
-_SUBSETS: dict = {}
+_SUBSETS: dict[int, tuple[np.ndarray, np.ndarray]] = {}
 
 
-def ransac_keeps_all(src, dst, threshold_px) -> bool:
+def ransac_keeps_all(src: np.ndarray, dst: np.ndarray, threshold_px: float) -> bool:
     """True only when ``cv2.findHomography(src, dst, cv2.RANSAC, threshold_px)`` is certain
     to keep every point, so the call (a few tenths of a millisecond) can be skipped.
 
@@ -223,19 +232,21 @@ def ransac_keeps_all(src, dst, threshold_px) -> bool:
     return bool(np.all(err <= _INLIER_ROOM * threshold_px ** 2))
 
 
-def _disambiguate(pairs, groups, allowed, points, ref_points, geometry_px, max_trials):
+def _disambiguate(pairs: list[tuple[int, int]], groups: list[list[int]], allowed: np.ndarray,
+                  points: np.ndarray, ref_points: np.ndarray, geometry_px: float,
+                  max_trials: float) -> tuple[list[tuple[int, int]], dict[str, Any]]:
     """Try the assignments within repeated-colour groups; keep the best homography fit."""
     fixed = [(r, d) for r, d in pairs if not any(r in g for g in groups)]
-    options = []
+    options: list[list[tuple[tuple[int, int], ...]]] = []
     for g in groups:
         candidates = [d for d in range(allowed.shape[1]) if allowed[g, d].any()]
-        pool = candidates + [None] * max(0, len(g) - len(candidates))
+        pool: list[int | None] = [*candidates] + [None] * max(0, len(g) - len(candidates))
         parts = {tuple((r, d) for r, d in zip(g, perm) if d is not None and allowed[r, d])
                  for perm in itertools.permutations(pool, len(g))}
         options.append(sorted(parts))
     if np.prod([len(o) for o in options], dtype=float) > max_trials:
         return pairs, {"ambiguous": True, "candidates": None}
-    fits = []
+    fits: list[tuple[float, int, list[tuple[int, int]]]] = []
     for combo in itertools.product(*options):
         trial = fixed + [pair for part in combo for pair in part]
         if len({d for _, d in trial}) < len(trial) or len(trial) < 4:
@@ -255,7 +266,8 @@ def _disambiguate(pairs, groups, allowed, points, ref_points, geometry_px, max_t
 _GAINS = np.geomspace(0.25, 4.0, 65)
 
 
-def _exposure_gain(ref_lab, colours_linear, extra, gate, max_delta_e):
+def _exposure_gain(ref_lab: np.ndarray, colours_linear: np.ndarray, extra: np.ndarray,
+                   gate: np.ndarray, max_delta_e: float) -> float:
     """The gain on measured colours that lets most reference dots find a colour within the
     gate, and among those the smallest sum of each dot's best cost (then the nearest to 1)."""
     lab = linear_rgb_to_lab(_GAINS[:, None, None] * colours_linear[None])
@@ -267,11 +279,15 @@ def _exposure_gain(ref_lab, colours_linear, extra, gate, max_delta_e):
     return float(_GAINS[order[0]])
 
 
-def match_dots(detection, ref_keys, ref_lab, ref_points=None, predicted=None, *,
-               max_delta_e=30.0, max_jump_px=40.0, px_weight=1.0, compensate_exposure=True,
-               ambiguity_delta_e=15.0, geometry_px=3.0, max_trials=5000,
-               min_matched=MIN_MATCHED, fit_rms=True, camera=None,
-               ref_geometry=None) -> MatchResult:
+def match_dots(detection: Detection, ref_keys: Iterable[Iterable[Any]], ref_lab: ArrayLike,
+               ref_points: ArrayLike | None = None,
+               predicted: Mapping[Any, ArrayLike] | None = None, *,
+               max_delta_e: float = 30.0, max_jump_px: float = 40.0, px_weight: float = 1.0,
+               compensate_exposure: bool = True, ambiguity_delta_e: float = 15.0,
+               geometry_px: float = 3.0, max_trials: float = 5000,
+               min_matched: int = MIN_MATCHED, fit_rms: bool = True,
+               camera: CameraModel | None = None,
+               ref_geometry: ArrayLike | None = None) -> MatchResult:
     """Match detected blobs to reference dots by colour, and by geometry where needed.
 
     Args:
@@ -299,34 +315,36 @@ def match_dots(detection, ref_keys, ref_lab, ref_points=None, predicted=None, *,
             With ``camera`` it must not be distorted pixels.
     The default thresholds are common practice, no source.
     """
-    ref_keys = [tuple(k) for k in ref_keys]
-    ref_lab = np.asarray(ref_lab, dtype=float).reshape(-1, 3)
-    n_ref, n_det = len(ref_keys), len(detection)
-    ref_points = None if ref_points is None else np.asarray(ref_points, float).reshape(-1, 2)
-    quality = {"gain": 1.0, "ambiguous": False, "homography_rms_px": float("nan")}
+    keys = [tuple(k) for k in ref_keys]
+    lab_ref = np.asarray(ref_lab, dtype=float).reshape(-1, 3)
+    n_ref, n_det = len(keys), len(detection)
+    ref_xy = None if ref_points is None else np.asarray(ref_points, float).reshape(-1, 2)
+    quality: dict[str, Any] = {"gain": 1.0, "ambiguous": False, "homography_rms_px": float("nan")}
     # the geometric checks' coordinates: reference (plane or normalized) and detections
     # (normalized when the camera is known); px_per_unit turns their residuals into pixels
-    geo_ref = ref_points if ref_geometry is None else (
+    geo_ref = ref_xy if ref_geometry is None else (
         np.asarray(ref_geometry, float).reshape(-1, 2))
     if geo_ref is not None and len(geo_ref) != n_ref:
         raise ValueError(f"ref_geometry has {len(geo_ref)} points for {n_ref} reference dots")
     px_per_unit = 1.0 if camera is None else float(camera.intrinsics[0, 0])
     geo_threshold = geometry_px / px_per_unit
     if n_det == 0 or n_ref == 0:
-        return _result(detection, ref_keys, ref_points if ref_points is not None else [], [],
+        return _result(detection, keys, ref_xy if ref_xy is not None else [], [],
                        {}, quality, min_matched)
 
     extra = np.zeros((n_ref, n_det))
     gate = np.ones((n_ref, n_det), dtype=bool)
     has_prediction = np.zeros(n_ref, dtype=bool)
-    for r, key in enumerate(ref_keys):
+    for r, key in enumerate(keys):
         if predicted and key in predicted:
             dist = np.linalg.norm(detection.points - np.asarray(predicted[key], float), axis=1)
             extra[r], gate[r], has_prediction[r] = px_weight * dist, dist <= max_jump_px, True
 
-    gain = _exposure_gain(ref_lab, detection.colours_linear, extra, gate,
+    colours = detection.colours_linear
+    assert colours is not None   # a dots detection measures its blobs' colours
+    gain = _exposure_gain(lab_ref, colours, extra, gate,
                           max_delta_e) if compensate_exposure else 1.0
-    de = delta_e_ab(ref_lab[:, None], linear_rgb_to_lab(detection.colours_linear * gain)[None])
+    de = delta_e_ab(lab_ref[:, None], linear_rgb_to_lab(colours * gain)[None])
     allowed = gate & (de <= max_delta_e)
     rows, cols = assign(de + extra, allowed)
     quality["gain"] = gain
@@ -337,26 +355,26 @@ def match_dots(detection, ref_keys, ref_lab, ref_points=None, predicted=None, *,
     if geo_ref is not None:
         geo_det = (detection.points if camera is None
                    else camera.pixels_to_normalized(detection.points))
-        groups = [g for g in _colour_groups(ref_lab, ambiguity_delta_e)
+        groups = [g for g in _colour_groups(lab_ref, ambiguity_delta_e)
                   if len(g) > 1 and not has_prediction[g].all()]
         if groups:
             pairs, info = _disambiguate(pairs, groups, allowed, geo_det, geo_ref,
                                         geo_threshold, max_trials)
             quality.update(info)
         if len(pairs) >= 5:
-            r, d = map(np.array, zip(*pairs))
+            ri, di = map(np.array, zip(*pairs))
             inl = None
-            if not ransac_keeps_all(geo_ref[r], geo_det[d], geo_threshold):
-                _, inl = cv2.findHomography(geo_ref[r], geo_det[d], cv2.RANSAC, geo_threshold)
+            if not ransac_keeps_all(geo_ref[ri], geo_det[di], geo_threshold):
+                _, inl = cv2.findHomography(geo_ref[ri], geo_det[di], cv2.RANSAC, geo_threshold)
             if inl is not None:
                 keep = inl.ravel().astype(bool)
-                reasons.update({int(j): "geometry" for j in d[~keep]})
+                reasons.update({int(j): "geometry" for j in di[~keep]})
                 pairs = [p for p, k in zip(pairs, keep) if k]
         if fit_rms and len(pairs) >= 4:
-            r, d = map(list, zip(*pairs))
-            fit = _homography_fit(geo_ref[r], geo_det[d])
+            rl, dl = map(list, zip(*pairs))
+            fit = _homography_fit(geo_ref[rl], geo_det[dl])
             if fit is not None:
                 quality["homography_rms_px"] = fit[0] * px_per_unit
     quality["delta_e"] = np.array([de[r, d] for r, d in sorted(pairs)])
-    return _result(detection, ref_keys, ref_points if ref_points is not None else [], pairs,
+    return _result(detection, keys, ref_xy if ref_xy is not None else [], pairs,
                    reasons, quality, min_matched)

@@ -37,31 +37,30 @@ from __future__ import annotations
 import dataclasses
 import datetime
 import logging
-import math
 import re
 from collections import Counter
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any, Iterable, Mapping, NoReturn
 
 import cv2
 import numpy as np
+from numpy.typing import ArrayLike
 
 from vservo_node.vision import depth as depth_mod
 from vservo_node.vision.camera import CameraModel
-from vservo_node.vision.features import Detection, make_detector, model_from_image
+from vservo_node.vision.features import Detection, Detector, make_detector, model_from_image
 from vservo_node.vision.matching import MIN_MATCHED, MatchResult, match_by_key, match_dots
 from vservo_node.vision.targets import Target
-from vservo_node.yaml_entries import EntryReader
-from vservo_node.yaml_files import YamlFileError, brief, dump_yaml
+from vservo_node.vision.reference_entries import (_joints_entry, _KEY_FORMS, _png_size, _Reader,
+                                                  camera_from_entry as camera_from_entry,
+                                                  BadReferenceError as BadReferenceError,
+                                                  MAX_IMAGE_SIDE as MAX_IMAGE_SIDE)
+from vservo_node.yaml_files import brief, dump_yaml
 
 FORMAT = "vservo_reference/1"
 _LOG = logging.getLogger(__name__)
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
-
-
-class BadReferenceError(YamlFileError):
-    """A reference that cannot be captured, read or used; the message says what and why (for a
-    file: which file and entry). A ``yaml_files.YamlFileError``, so a ValueError."""
 
 
 @dataclass
@@ -88,9 +87,9 @@ class Reference:
     name: str
     target: str
     kind: str
-    keys: list
+    keys: list[Any]
     pixels: np.ndarray
-    image_size: tuple
+    image_size: tuple[int, ...]
     normalized: np.ndarray | None = None
     colours_lab: np.ndarray | None = None
     depths: np.ndarray | None = None
@@ -98,11 +97,11 @@ class Reference:
     camera: CameraModel | None = None
     image: np.ndarray | None = None
     created: str = ""
-    joint_names: tuple | None = None
+    joint_names: tuple[str, ...] | None = None
     joint_positions: np.ndarray | None = None
-    notes: tuple = ()
+    notes: tuple[str, ...] = ()
 
-    def joints_for(self, names) -> np.ndarray | None:
+    def joints_for(self, names: Iterable[str]) -> np.ndarray | None:
         """The taught joint positions in the order of ``names`` (joint order is by name,
         never by position); None when the reference keeps no joints or lacks one of them."""
         if self.joint_names is None:
@@ -110,9 +109,12 @@ class Reference:
         index = {n: i for i, n in enumerate(self.joint_names)}
         if not all(n in index for n in names):
             return None
-        return np.array([self.joint_positions[index[n]] for n in names], dtype=float)
+        positions = self.joint_positions
+        assert positions is not None   # kept with the names (with_joints, the file's entry)
+        return np.array([positions[index[n]] for n in names], dtype=float)
 
-    def points_for(self, camera: CameraModel | None = None, image_size=None) -> np.ndarray:
+    def points_for(self, camera: CameraModel | None = None,
+                   image_size: tuple[int, ...] | None = None) -> np.ndarray:
         """Reference pixels (N, 2) as the current camera would see them.
 
         With ``camera``: the normalized coordinates re-projected through it (any resolution).
@@ -129,15 +131,17 @@ class Reference:
                 f"{image_size[0]}x{image_size[1]}; teach it again with the camera known")
         return self.pixels
 
-    def detector(self, target: Target):
+    def detector(self, target: Target) -> Detector:
         """The run-time detector; a textured target matches to the taught view."""
         check_target(self, target)
         if self.kind == "textured":
+            assert self.image is not None   # a textured reference has its image (save, load)
             return make_detector(target, model_from_image(self.image, self.pixels, self.keys))
         return make_detector(target)
 
-    def match(self, detection: Detection, camera: CameraModel | None = None, predicted=None,
-              min_matched=MIN_MATCHED, ref_points=None, **options) -> MatchResult:
+    def match(self, detection: Detection, camera: CameraModel | None = None,
+              predicted: Mapping[Any, ArrayLike] | None = None, min_matched: int = MIN_MATCHED,
+              ref_points: np.ndarray | None = None, **options: Any) -> MatchResult:
         """Match a detection (dots by colour and geometry, others by key) to this reference.
 
         ``ref_points`` of the result are the reference pixels as the current camera sees them:
@@ -150,17 +154,18 @@ class Reference:
         if ref_points is None:
             ref_points = self.points_for(camera, detection.image_size)
         if self.kind == "dots":
-            geometry = None
+            geometry: np.ndarray | None = None
             if camera is not None:
                 geometry = (self.normalized if self.normalized is not None
                             else camera.pixels_to_normalized(ref_points))
+            assert self.colours_lab is not None   # a dots reference has its colours
             return match_dots(detection, self.keys, self.colours_lab, ref_points, predicted,
                               min_matched=min_matched, camera=camera, ref_geometry=geometry,
                               **options)
         return match_by_key(detection, self.keys, ref_points, min_matched=min_matched)
 
 
-def check_target(reference: Reference, target: Target):
+def check_target(reference: Reference, target: Target) -> None:
     """Refuse a reference that was taught on another target."""
     if reference.target != target.name or reference.kind != target.kind:
         raise BadReferenceError(f"reference {reference.name!r} was taught on target "
@@ -190,7 +195,7 @@ def identify(target: Target, detection: Detection,
 
 
 def capture_reference(name: str, target: Target, image: np.ndarray,
-                      camera: CameraModel | None = None, depths=None,
+                      camera: CameraModel | None = None, depths: ArrayLike | None = None,
                       require_all: bool = True) -> Reference:
     """Teach a reference from one image (BGR or mono, as from ``image_io.to_bgr_or_mono``).
 
@@ -215,45 +220,54 @@ def capture_reference(name: str, target: Target, image: np.ndarray,
                              "assigned in more than one way; give dots distinct colours or "
                              "an asymmetric layout")
     depth_source = None
+    taught_depths: np.ndarray | None = None
     if depths is not None:
-        depths = np.asarray(depths, dtype=float).ravel()
-        if depths.shape != (len(match),) or not np.all(depths > 0):
+        taught_depths = np.asarray(depths, dtype=float).ravel()
+        if taught_depths.shape != (len(match),) or not np.all(taught_depths > 0):
             raise BadReferenceError(f"depths must be {len(match)} positive values, got "
-                                 f"{depths.tolist()}")
+                                 f"{taught_depths.tolist()}")
         depth_source = "given"
     elif camera is not None and target.has_geometry:
-        depths = depth_mod.from_pnp(match.points, target.model_points(match.keys), camera).z
+        taught_depths = depth_mod.from_pnp(match.points, target.model_points(match.keys),
+                                           camera).z
         depth_source = "pnp"
     return Reference(
         name=name, target=target.name, kind=target.kind, keys=list(match.keys),
         pixels=match.points.copy(), image_size=detection.image_size,
         normalized=None if camera is None else camera.pixels_to_normalized(match.points),
-        colours_lab=(detection.colours_lab[match.detection_index] if target.kind == "dots"
+        colours_lab=(_colours_lab(detection)[match.detection_index] if target.kind == "dots"
                      else None),
-        depths=depths, depth_source=depth_source, camera=camera,
+        depths=taught_depths, depth_source=depth_source, camera=camera,
         image=np.array(image),
         created=datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds"))
 
 
-def with_joints(reference: Reference, names, positions) -> Reference:
+def _colours_lab(detection: Detection) -> np.ndarray:
+    lab = detection.colours_lab
+    assert lab is not None   # a dots detection measures its blobs' colours
+    return lab
+
+
+def with_joints(reference: Reference, names: Iterable[Any], positions: ArrayLike) -> Reference:
     """``reference`` with the arm's joint positions at the taught view: ``names`` (joint
     names) and ``positions`` (rad, m for prismatic joints) in the same order. BadReferenceError
     (a ValueError) when they do not pair up, repeat a name or hold a non-finite value."""
-    names = tuple(str(n) for n in names)
+    joint_names = tuple(str(n) for n in names)
     q = np.asarray(positions, dtype=float).ravel()
-    if not names or len(names) != q.size:
-        raise BadReferenceError(f"joint positions of {reference.name!r}: {len(names)} names "
-                                f"for {q.size} positions; expected one position per name")
-    if len(set(names)) != len(names):
+    if not joint_names or len(joint_names) != q.size:
+        raise BadReferenceError(f"joint positions of {reference.name!r}: {len(joint_names)} "
+                                f"names for {q.size} positions; expected one position per name")
+    if len(set(joint_names)) != len(joint_names):
         raise BadReferenceError(f"joint positions of {reference.name!r}: repeated names "
-                                f"{sorted(n for n, c in Counter(names).items() if c > 1)}")
+                                f"{sorted(n for n, c in Counter(joint_names).items() if c > 1)}")
     if not np.all(np.isfinite(q)):
         raise BadReferenceError(f"joint positions of {reference.name!r} must be finite, got "
                                 f"{q.tolist()}")
-    return dataclasses.replace(reference, joint_names=names, joint_positions=q)
+    return dataclasses.replace(reference, joint_names=joint_names, joint_positions=q)
 
 
-def joints_at_capture(reference: Reference, names, positions, why: str = ""
+def joints_at_capture(reference: Reference, names: Iterable[Any] | None,
+                      positions: ArrayLike | None, why: str = ""
                       ) -> tuple[Reference, str]:
     """(reference, note) for a capture service: ``reference`` with the joints ``names`` at
     ``positions`` (the joint history at the image's stamp), or, when ``positions`` is None,
@@ -266,30 +280,30 @@ def joints_at_capture(reference: Reference, names, positions, why: str = ""
 
 
 # ----------------------------------------------------------------------------- files
-def _check_name(name):
+def _check_name(name: object) -> None:
     if not _NAME.match(str(name)):
         raise BadReferenceError(f"reference name {name!r} must start with a letter or digit and "
                              "hold only letters, digits, '_', '.', '-'")
 
 
-def reference_path(directory, name: str) -> Path:
+def reference_path(directory: str | Path, name: str) -> Path:
     """The file of slot ``name`` in ``directory``: ``directory/name.yaml``."""
     _check_name(name)
     return Path(directory) / f"{name}.yaml"
 
 
-def _floats(values):
+def _floats(values: Iterable[Any]) -> list[float]:
     return [float(v) for v in values]
 
 
-def save_reference(reference: Reference, path) -> Path:
+def save_reference(reference: Reference, path_in: str | Path) -> Path:
     """Write the reference YAML and, when it holds one, the taught image as PNG beside it
     (``<stem>.png``, named in the file relative to it); the joint positions when known."""
-    path = Path(path)
+    path = Path(path_in)
     path.parent.mkdir(parents=True, exist_ok=True)
     features = []
     for i, key in enumerate(reference.keys):
-        f = {"key": list(key), "pixel": _floats(reference.pixels[i])}
+        f: dict[str, Any] = {"key": list(key), "pixel": _floats(reference.pixels[i])}
         if reference.normalized is not None:
             f["normalized"] = _floats(reference.normalized[i])
         if reference.colours_lab is not None:
@@ -297,7 +311,7 @@ def save_reference(reference: Reference, path) -> Path:
         if reference.depths is not None:
             f["depth"] = float(reference.depths[i])
         features.append(f)
-    data = {"format": FORMAT, "name": reference.name, "target": reference.target,
+    data: dict[str, Any] = {"format": FORMAT, "name": reference.name, "target": reference.target,
             "kind": reference.kind, "created": reference.created,
             "image_size": [int(v) for v in reference.image_size],
             "camera": None if reference.camera is None else reference.camera.to_dict(),
@@ -311,80 +325,25 @@ def save_reference(reference: Reference, path) -> Path:
             raise BadReferenceError(f"could not write the taught image {image_file}")
         data["image"] = image_file.name
     if reference.joint_names is not None:
+        assert reference.joint_positions is not None   # kept with the names
         data["joint_positions"] = {n: float(q) for n, q in
                                    zip(reference.joint_names, reference.joint_positions)}
-    with open(path, "w") as f:
-        dump_yaml(data, f, sort_keys=False, default_flow_style=None)
+    with open(path, "w") as stream:
+        dump_yaml(data, stream, sort_keys=False, default_flow_style=None)
     return path
 
 
-_KEY_FORMS = {"dots": ("dot", 1), "markers": ("tag", 2), "textured": ("pt", 1)}
-_CAMERA_KEYS = ("width", "height", "distortion_model", "d", "k", "p", "r", "rectified")
-# Largest image side accepted from a file (pixels): an 8K sensor's. It bounds what a reference
-# can make us decode: its taught PNG must have image_size, so at most 8192 x 8192 x 3 bytes
-# (200 MB); a PNG compresses such an image ~1000:1 (common practice, no source).
-MAX_IMAGE_SIDE = 8192
-
-
-class _Reader(EntryReader):
-    kind = "reference file"
-    error = BadReferenceError
-
-
-def camera_from_entry(r: EntryReader, value, entry: str = "camera") -> CameraModel:
-    """CameraModel from a ``CameraModel.to_dict`` mapping read from a file; every malformed
-    entry is refused through ``r`` (its error class) naming ``entry`` and the key."""
-    def at(key):
-        return f"{entry}.{key}" if entry else key
-
-    value = r.mapping(value, entry or "top level", _CAMERA_KEYS, ("width", "height", "k"))
-    fields = {"width": r.integer(value["width"], at("width"), 1, MAX_IMAGE_SIDE),
-              "height": r.integer(value["height"], at("height"), 1, MAX_IMAGE_SIDE),
-              "k": r.numbers(value["k"], at("k"), 9)}
-    if "distortion_model" in value:
-        fields["distortion_model"] = r.text(value["distortion_model"], at("distortion_model"))
-    if value.get("d") is not None:
-        d = value["d"]
-        if not isinstance(d, list) or len(d) > 16:
-            r.fail(at("d"), f"expected a list of distortion coefficients, got {brief(d)}")
-        fields["d"] = r.vector(d, at("d"), len(d)).tolist()
-    for key, n in (("p", 12), ("r", 9)):
-        if value.get(key) is not None:
-            fields[key] = r.numbers(value[key], at(key), n)
-    if "rectified" in value:
-        if not isinstance(value["rectified"], bool):
-            r.fail(at("rectified"), f"expected true or false, got {brief(value['rectified'])}")
-        fields["rectified"] = value["rectified"]
-    try:
-        return CameraModel.from_dict(fields)
-    except ValueError as exc:
-        r.fail(entry or "top level", str(exc))
-
-
-def _png_size(path: Path):
-    """(width, height) from a PNG file's IHDR chunk, without decoding it; None when the file is
-    not a PNG (ISO/IEC 15948:2004, sec. 5.2 signature and 11.2.2 IHDR, from memory)."""
-    try:
-        with open(path, "rb") as f:
-            head = f.read(24)
-    except OSError:
-        return None
-    if len(head) < 24 or head[:8] != b"\x89PNG\r\n\x1a\n" or head[12:16] != b"IHDR":
-        return None
-    return int.from_bytes(head[16:20], "big"), int.from_bytes(head[20:24], "big")
-
-
-def load_reference(path, target: Target | None = None) -> Reference:
+def load_reference(path_in: str | Path, target: Target | None = None) -> Reference:
     """Read and validate a reference file; with ``target``, also check it was taught on it.
 
     Raises BadReferenceError (a ``yaml_files.YamlFileError``) naming the file, the entry and
     what is missing or inconsistent; the file is read through ``yaml_files.load_yaml`` (size
     cap, no anchors/aliases or tags).
     """
-    path = Path(path)
+    path = Path(path_in)
     r = _Reader(path)
 
-    def fail(msg, entry=None):
+    def fail(msg: str, entry: str | None = None) -> NoReturn:
         if entry is None:
             raise BadReferenceError(f"reference file {path}: {msg}")
         r.fail(entry, msg)
@@ -422,7 +381,7 @@ def load_reference(path, target: Target | None = None) -> Reference:
         if not isinstance(f, dict):
             fail(f"expected a mapping {{key: [...], pixel: [u, v], ...}}, got {brief(f)}",
                  f"features[{i}]")
-    camera = None
+    camera: CameraModel | None = None
     if data.get("camera") is not None:
         camera = camera_from_entry(r, data["camera"], "camera")
         if (camera.width, camera.height) != tuple(size):
@@ -431,7 +390,7 @@ def load_reference(path, target: Target | None = None) -> Reference:
     if depth_source is not None and not isinstance(depth_source, str):
         fail(f"expected text or null, got {brief(depth_source)}", "depth_source")
 
-    def column(field, width, required):
+    def column(field: str, width: int, required: bool) -> np.ndarray | None:
         present = [field in f for f in features]
         if required and not all(present):
             fail(f"every feature needs '{field}'; missing in features "
@@ -440,7 +399,8 @@ def load_reference(path, target: Target | None = None) -> Reference:
             return None
         if not all(present):
             fail(f"'{field}' is given for some features but not all")
-        bad, values = [], []
+        bad: list[int] = []
+        values: list[list[float]] = []
         for i, f in enumerate(features):
             v = f[field] if width > 1 else [f[field]]
             if (isinstance(v, list) and len(v) == width and all(
@@ -452,11 +412,11 @@ def load_reference(path, target: Target | None = None) -> Reference:
         if bad:
             fail(f"'{field}' must be {width} finite number(s) per feature; wrong in features "
                  f"{brief(bad)}", f"features[{bad[0]}].{field}")
-        values = np.array(values, dtype=float)
-        return values if width > 1 else values.ravel()
+        array = np.array(values, dtype=float)
+        return array if width > 1 else array.ravel()
 
     form, ids = _KEY_FORMS[kind]
-    keys = []
+    keys: list[tuple[Any, ...]] = []
     for i, f in enumerate(features):
         key = f.get("key")
         if not (isinstance(key, list) and len(key) == 1 + ids and key[0] == form and all(
@@ -472,6 +432,7 @@ def load_reference(path, target: Target | None = None) -> Reference:
         fail(f"repeated feature keys {brief(sorted(k for k, n in counts.items() if n > 1))}",
              "features")
     pixels = column("pixel", 2, True)
+    assert pixels is not None   # required: given for every feature, else refused
     normalized = column("normalized", 2, camera is not None)
     if normalized is not None and camera is None:
         fail("has normalized coordinates but no camera")
@@ -479,8 +440,8 @@ def load_reference(path, target: Target | None = None) -> Reference:
     depths = column("depth", 1, False)
     if depths is not None and not np.all(depths > 0):
         fail("depths must be > 0 metres")
-    notes = []
-    image = None
+    notes: list[str] = []
+    image: np.ndarray | None = None
     if kind == "textured" and "image" not in data:
         fail("a textured reference needs 'image', the taught view saved beside it")
     if "image" in data:
@@ -529,23 +490,3 @@ def load_reference(path, target: Target | None = None) -> Reference:
     for note in reference.notes:
         _LOG.info("reference file %s %s", path, note)
     return reference
-
-
-def _joints_entry(r: EntryReader, value, fail) -> tuple:
-    """(names, positions) of a ``joint_positions: {name: rad}`` entry; (None, None) when
-    absent (null counts as absent); malformed entries refused naming the joint."""
-    if value is None:
-        return None, None
-    if not isinstance(value, dict) or not value:
-        fail(f"expected a mapping {{joint name: position}}, got {brief(value)}",
-             "joint_positions")
-    names, positions = [], []
-    for name, q in value.items():
-        if not isinstance(name, str) or not name:
-            fail(f"joint names must be text, got {brief(name)}", "joint_positions")
-        if not (isinstance(q, (int, float)) and not isinstance(q, bool) and math.isfinite(q)):
-            fail(f"expected a finite number (rad, or m for a prismatic joint), got {brief(q)}",
-                 f"joint_positions.{name}")
-        names.append(name)
-        positions.append(float(q))
-    return tuple(names), np.array(positions)

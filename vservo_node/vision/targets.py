@@ -24,9 +24,11 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any, Iterable, Mapping
 
 import cv2
 import numpy as np
+from numpy.typing import ArrayLike
 
 from vservo_node import paths
 from vservo_node.vision.image_io import srgb_to_lab
@@ -42,8 +44,8 @@ SEGMENTATIONS = ("chroma", "dark", "bright")
 class Dot:
     """A coloured disc: ``colour`` sRGB 0..255 (R, G, B); ``centre`` (m), ``radius`` (m)."""
     id: int
-    colour: tuple
-    centre: tuple | None = None
+    colour: tuple[int, int, int]
+    centre: tuple[float, ...] | None = None
     radius: float | None = None
 
 
@@ -51,7 +53,7 @@ class Dot:
 class Marker:
     """A square fiducial: ``centre`` (m) and ``size`` (m, side of the outer black square)."""
     id: int
-    centre: tuple | None = None
+    centre: tuple[float, ...] | None = None
     size: float | None = None
 
 
@@ -62,22 +64,23 @@ class Target:
     kind: str
     width: float | None = None           # board size, metres
     height: float | None = None
-    background: tuple = (235, 235, 235)  # board colour, sRGB 0..255
-    dots: tuple = ()
+    background: tuple[int, int, int] = (235, 235, 235)  # board colour, sRGB 0..255
+    dots: tuple[Dot, ...] = ()
     segmentation: str = "chroma"
     threshold: float | None = None       # segmentation threshold (0..255), None: the default
     dictionary: str | None = None
-    markers: tuple = ()
-    texture: dict | None = None
+    markers: tuple[Marker, ...] = ()
+    texture: dict[str, Any] | None = None
     points: np.ndarray | None = None     # textured: servo points (P, 2), metres
     source: Path | None = field(default=None, compare=False)
 
-    def keys(self) -> list:
+    def keys(self) -> list[tuple[Any, ...]]:
         """Feature keys in the target's order."""
         if self.kind == "dots":
             return [("dot", d.id) for d in self.dots]
         if self.kind == "markers":
             return [("tag", m.id, c) for m in self.markers for c in range(4)]
+        assert self.points is not None   # a textured target has its points
         return [("pt", i) for i in range(len(self.points))]
 
     @property
@@ -89,41 +92,53 @@ class Target:
             return all(m.centre is not None for m in self.markers)
         return True
 
-    def model_points(self, keys=None) -> np.ndarray:
+    def model_points(self, keys: Iterable[Iterable[Any]] | None = None) -> np.ndarray:
         """Target-frame coordinates (N, 3), metres (z = 0), of the features ``keys``
         (default: all, in ``keys()`` order). Dots: disc centres; tags: corners."""
         if not self.has_geometry:
             raise ValueError(f"target {self.name!r} gives no positions for its features; "
                              "add 'centre' (and 'size'/'radius') to each")
         table = dict(zip(self.keys(), self._xy()))
-        keys = self.keys() if keys is None else [tuple(k) for k in keys]
-        unknown = [k for k in keys if k not in table]
+        wanted = self.keys() if keys is None else [tuple(k) for k in keys]
+        unknown = [k for k in wanted if k not in table]
         if unknown:
             raise ValueError(f"target {self.name!r} has no features {unknown}")
-        xy = np.array([table[k] for k in keys], dtype=float).reshape(-1, 2)
+        xy = np.array([table[k] for k in wanted], dtype=float).reshape(-1, 2)
         return np.hstack([xy, np.zeros((len(xy), 1))])
 
-    def _xy(self):
+    def _xy(self) -> list[tuple[float, ...] | None]:
         if self.kind == "dots":
             return [d.centre for d in self.dots]
         if self.kind == "markers":
             # OpenCV's corner order of a printed marker: top-left, top-right, bottom-right,
             # bottom-left; with y down as printed, top-left is (-h, -h) from the centre.
             signs = ((-1, -1), (1, -1), (1, 1), (-1, 1))
-            return [(m.centre[0] + sx * m.size / 2, m.centre[1] + sy * m.size / 2)
+            return [(_centre(m)[0] + sx * _size(m) / 2, _centre(m)[1] + sy * _size(m) / 2)
                     for m in self.markers for sx, sy in signs]
+        assert self.points is not None
         return [tuple(p) for p in self.points]
 
     def nominal_lab(self) -> np.ndarray:
         """CIELAB (N, 3) of the dots' printed colours, in ``keys()`` order."""
         return srgb_to_lab(np.array([d.colour for d in self.dots], dtype=float) / 255.0)
 
-    def aruco_dictionary(self):
+    def aruco_dictionary(self) -> cv2.aruco.Dictionary:
         """The cv2.aruco dictionary of a marker target."""
         return aruco_dictionary(self.dictionary)
 
 
-def aruco_dictionary(name: str):
+def _centre(feature: Dot | Marker) -> tuple[float, ...]:
+    """The centre of a feature of a target with geometry (``Target.has_geometry``)."""
+    assert feature.centre is not None
+    return feature.centre
+
+
+def _size(marker: Marker) -> float:
+    assert marker.size is not None   # given with its centre (the target file's check)
+    return marker.size
+
+
+def aruco_dictionary(name: str | None) -> cv2.aruco.Dictionary:
     """cv2.aruco dictionary for a name such as ``apriltag_36h11`` or ``4x4_50``."""
     attr = "DICT_" + str(name).upper()
     if not hasattr(cv2.aruco, attr):
@@ -156,10 +171,10 @@ class _Reader(EntryReader):
     kind = "target file"
     error = TargetError
 
-    def pair(self, value, entry):
+    def pair(self, value: Any, entry: str) -> tuple[float, ...]:
         return tuple(float(v) for v in self.vector(value, entry, 2))
 
-    def length(self, value, entry, limit=None):
+    def length(self, value: Any, entry: str, limit: float | None = None) -> float | None:
         """None, or a positive length in metres (at most ``limit``)."""
         if value is None:
             return None
@@ -168,29 +183,30 @@ class _Reader(EntryReader):
             self.fail(entry, f"expected at most {limit} m, got {v!r}")
         return v
 
-    def colour(self, value, entry):
+    def colour(self, value: Any, entry: str) -> tuple[int, int, int]:
         if not (isinstance(value, (list, tuple)) and len(value) == 3):
             self.fail(entry, f"must be sRGB [R, G, B] in 0..255, got {brief(value)}")
         c = self.vector(value, entry, 3)
         if np.any(c < 0) or np.any(c > 255):
             self.fail(entry, f"must be sRGB [R, G, B] in 0..255, got {brief(value)}")
-        return tuple(int(round(float(x))) for x in c)
+        r, g, b = (int(round(float(x))) for x in c)
+        return r, g, b
 
-    def items(self, value, entry, allowed) -> list:
+    def items(self, value: Any, entry: str, allowed: set[str]) -> list[dict[Any, Any]]:
         """A list (None reads as empty) of mappings with keys from ``allowed``."""
         value = [] if value is None else value
         if not isinstance(value, list):
             self.fail(entry, f"expected a list, got {brief(value)}")
         return [self.mapping(v, f"{entry}[{i}]", allowed) for i, v in enumerate(value)]
 
-    def unique_ids(self, items, entry, what):
+    def unique_ids(self, items: Iterable[Dot | Marker], entry: str, what: str) -> None:
         ids = [i.id for i in items]
         repeated = sorted({i for i in ids if ids.count(i) > 1})
         if repeated:
             self.fail(entry, f"{what} ids must be unique, repeated: {repeated}")
 
 
-def _dots(r: _Reader, data) -> dict:
+def _dots(r: _Reader, data: Mapping[str, Any]) -> dict[str, Any]:
     dots = []
     for i, d in enumerate(r.items(data.get("dots"), "dots", _DOT)):
         entry = f"dots[{i}]"
@@ -218,7 +234,7 @@ def _dots(r: _Reader, data) -> dict:
     return dict(dots=tuple(dots), segmentation=mode, threshold=threshold)
 
 
-def _markers(r: _Reader, data) -> dict:
+def _markers(r: _Reader, data: Mapping[str, Any]) -> dict[str, Any]:
     if "dictionary" not in data:
         r.fail("dictionary", "missing (e.g. apriltag_36h11, 4x4_50)")
     name = r.text(data["dictionary"], "dictionary")
@@ -246,7 +262,8 @@ def _markers(r: _Reader, data) -> dict:
     return dict(dictionary=name, markers=tuple(markers))
 
 
-def _textured(r: _Reader, data, common) -> dict:
+def _textured(r: _Reader, data: Mapping[str, Any], common: Mapping[str, Any]
+              ) -> dict[str, Any]:
     texture = data.get("texture")
     if not isinstance(texture, dict) or not ({"generator", "image"} & set(texture)):
         r.fail("texture", "a textured target needs 'texture' with 'generator' (and 'seed') or "
@@ -274,7 +291,7 @@ def _textured(r: _Reader, data, common) -> dict:
     return dict(texture=texture, points=pts)
 
 
-def target_from_dict(data: dict, source: Path | None = None) -> Target:
+def target_from_dict(data: Any, source: Path | None = None) -> Target:
     """Build and validate a Target from the mapping of a target file; TargetError (a
     ValueError) naming the file, the entry and what was expected."""
     r = _Reader(source)
@@ -290,7 +307,7 @@ def target_from_dict(data: dict, source: Path | None = None) -> Target:
     if not isinstance(kind, str) or kind not in KINDS:
         r.fail("kind", f"kind {brief(kind)} is not one of {KINDS}")
     board = r.mapping(data.get("board"), "board", _BOARD)
-    common = dict(name=r.text(data["name"], "name"), kind=kind,
+    common: dict[str, Any] = dict(name=r.text(data["name"], "name"), kind=kind,
                   width=r.length(board.get("width"), "board.width", MAX_BOARD_M),
                   height=r.length(board.get("height"), "board.height", MAX_BOARD_M),
                   background=r.colour(board.get("colour", (235, 235, 235)), "board.colour"),
@@ -308,7 +325,7 @@ def target_from_dict(data: dict, source: Path | None = None) -> Target:
     return Target(**common, **_textured(r, data, common))
 
 
-def load_target(name_or_path) -> Target:
+def load_target(name_or_path: str | Path) -> Target:
     """Load a target file by path, or a shipped one by short name (e.g. ``tray_dots``);
     TargetError naming the file and the entry when it cannot be used (``yaml_files``: size
     cap, no anchors/aliases or tags), FileNotFoundError for an unknown short name."""
@@ -317,7 +334,8 @@ def load_target(name_or_path) -> Target:
 
 
 # ----------------------------------------------------------------------------- pictures
-def texture_transform(target: Target, px_per_m: float) -> tuple:
+def texture_transform(target: Target, px_per_m: float
+                      ) -> tuple[tuple[int, int], np.ndarray]:
     """Texture size (w, h) in pixels and the 3x3 ``T_target_from_texture_pixels``.
 
     The texture covers the board exactly; ``[x, y, 1] = T @ [u, v, 1]`` with (u, v) texture
@@ -334,7 +352,7 @@ def texture_transform(target: Target, px_per_m: float) -> tuple:
     return (w, h), T
 
 
-def render_target_texture(target: Target, px_per_m: float):
+def render_target_texture(target: Target, px_per_m: float) -> tuple[np.ndarray, np.ndarray]:
     """Picture of the printed board and where it lies on the target plane.
 
     Returns ``(image, T_target_from_texture_pixels)``: a BGR uint8 image of the board at
@@ -353,14 +371,20 @@ def render_target_texture(target: Target, px_per_m: float):
         dictionary = target.aruco_dictionary()
         for marker in target.markers:
             _draw_marker(image, T, marker, dictionary)
-    elif "image" in target.texture:
+    elif "image" in _texture(target):
         image = _poster_from_file(target, (w, h))
     else:
         _draw_shapes(image, T, target)
     return image, T
 
 
-def _texture_box(T, image, centre, half):
+def _texture(target: Target) -> dict[str, Any]:
+    assert target.texture is not None   # a textured target has its texture
+    return target.texture
+
+
+def _texture_box(T: np.ndarray, image: np.ndarray, centre: tuple[float, ...], half: float
+                 ) -> tuple[tuple[slice, slice], np.ndarray, np.ndarray]:
     """Pixel slice of the texture covering the square centre +- half (metres), and the
     target coordinates of those pixel centres."""
     h, w = image.shape[:2]
@@ -374,15 +398,18 @@ def _texture_box(T, image, centre, half):
     return (slice(v0, v1), slice(u0, u1)), x, y
 
 
-def _blend(image, box, coverage, bgr):
+def _blend(image: np.ndarray, box: tuple[slice, slice], coverage: np.ndarray,
+           bgr: ArrayLike) -> None:
     patch = image[box].astype(float)
     a = coverage[..., None]
     image[box] = np.round(patch * (1 - a) + np.asarray(bgr, float) * a).astype(np.uint8)
 
 
-def _draw_disc(image, T, dot):
-    box, x, y = _texture_box(T, image, dot.centre, dot.radius)
-    d = np.hypot(x[None, :] - dot.centre[0], y[:, None] - dot.centre[1])
+def _draw_disc(image: np.ndarray, T: np.ndarray, dot: Dot) -> None:
+    assert dot.radius is not None   # given with its centre (the target file's check)
+    centre = _centre(dot)
+    box, x, y = _texture_box(T, image, centre, dot.radius)
+    d = np.hypot(x[None, :] - centre[0], y[:, None] - centre[1])
     # Fraction of a pixel inside the circle, straight-edge approximation (exact to second
     # order in pixel size / radius).
     coverage = np.clip((dot.radius - d) / T[0, 0] + 0.5, 0.0, 1.0)
@@ -392,17 +419,19 @@ def _draw_disc(image, T, dot):
 _MARKER_SUBSAMPLES = 4  # 4x4 point samples per texture pixel for marker cell edges
 
 
-def _draw_marker(image, T, marker, dictionary):
+def _draw_marker(image: np.ndarray, T: np.ndarray, marker: Marker,
+                 dictionary: cv2.aruco.Dictionary) -> None:
     cells = dictionary.markerSize + 2
     bits = cv2.aruco.generateImageMarker(dictionary, marker.id, cells, borderBits=1)
-    box, x, y = _texture_box(T, image, marker.centre, marker.size / 2)
+    centre, size = _centre(marker), _size(marker)
+    box, x, y = _texture_box(T, image, centre, size / 2)
     n = _MARKER_SUBSAMPLES
     offsets = (np.arange(n) + 0.5) / n - 0.5
     xs = (x[:, None] + offsets[None, :] * T[0, 0]).ravel()
     ys = (y[:, None] + offsets[None, :] * T[1, 1]).ravel()
-    cell = marker.size / cells
-    ci = np.floor((xs - marker.centre[0] + marker.size / 2) / cell).astype(int)
-    ri = np.floor((ys - marker.centre[1] + marker.size / 2) / cell).astype(int)
+    cell = size / cells
+    ci = np.floor((xs - centre[0] + size / 2) / cell).astype(int)
+    ri = np.floor((ys - centre[1] + size / 2) / cell).astype(int)
     inside = ((ri[:, None] >= 0) & (ri[:, None] < cells) & (ci[None, :] >= 0)
               & (ci[None, :] < cells))
     black = inside & (bits[np.clip(ri, 0, cells - 1)][:, np.clip(ci, 0, cells - 1)] == 0)
@@ -414,21 +443,24 @@ def _draw_marker(image, T, marker, dictionary):
     image[box] = np.round(patch + 255.0 * cov_white[..., None]).astype(np.uint8)
 
 
-def poster_shapes(target: Target) -> list:
+def poster_shapes(target: Target) -> list[tuple[str, Any, tuple[int, ...]]]:
     """The procedural poster as a list of (kind, params, bgr) in target metres.
 
     Deterministic in ``texture.seed`` and ``texture.count`` (numpy PCG64 generator), so the
     simulator and the tests redraw the same poster at any resolution.
     """
-    rng = np.random.default_rng(int(target.texture.get("seed", 0)))
-    count = int(target.texture.get("count", 150))
+    texture = _texture(target)
+    assert target.width is not None and target.height is not None   # a textured target's
+    rng = np.random.default_rng(int(texture.get("seed", 0)))
+    count = int(texture.get("count", 150))
     hw, hh = target.width / 2, target.height / 2
-    shapes = []
+    shapes: list[tuple[str, Any, tuple[int, ...]]] = []
     for _ in range(count):
         kind = ("disc", "box", "triangle")[rng.integers(3)]
         centre = (rng.uniform(-hw, hw), rng.uniform(-hh, hh))
         size = float(np.exp(rng.uniform(np.log(0.004), np.log(0.035))))
         angle = rng.uniform(0, np.pi)
+        params: Any
         bgr = tuple(int(c) for c in rng.integers(0, 256, 3))
         if kind == "disc":
             params = (centre, size / 2)
@@ -447,12 +479,13 @@ def poster_shapes(target: Target) -> list:
 _SHIFT = 4  # fixed-point fraction bits for sub-pixel drawing with cv2
 
 
-def _draw_shapes(image, T, target):
+def _draw_shapes(image: np.ndarray, T: np.ndarray, target: Target) -> None:
     s = 1 << _SHIFT
 
-    def to_px(xy):
-        xy = np.asarray(xy, float)
-        return np.round(((xy - T[:2, 2]) / np.diag(T)[:2]) * s).astype(np.int32)
+    def to_px(xy_in: ArrayLike) -> np.ndarray:
+        xy = np.asarray(xy_in, float)
+        px: np.ndarray = np.round(((xy - T[:2, 2]) / np.diag(T)[:2]) * s).astype(np.int32)
+        return px
 
     for kind, params, bgr in poster_shapes(target):
         if kind == "disc":
@@ -463,11 +496,12 @@ def _draw_shapes(image, T, target):
             cv2.fillPoly(image, [to_px(params)], bgr, cv2.LINE_AA, _SHIFT)
 
 
-def _poster_from_file(target, size):
-    path = Path(target.texture["image"])
+def _poster_from_file(target: Target, size: tuple[int, int]) -> np.ndarray:
+    path = Path(_texture(target)["image"])
     if not path.is_absolute() and target.source is not None:
         path = Path(target.source).parent / path
     picture = cv2.imread(str(path), cv2.IMREAD_COLOR)
     if picture is None:
         raise ValueError(f"target {target.name!r}: cannot read texture image {path}")
-    return cv2.resize(picture, size, interpolation=cv2.INTER_AREA)
+    resized: np.ndarray = cv2.resize(picture, size, interpolation=cv2.INTER_AREA)
+    return resized
