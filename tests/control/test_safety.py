@@ -10,8 +10,8 @@ import pytest
 from hypothesis import event, given, settings
 from hypothesis import strategies as st
 
-from vservo_node.control.safety import (ISO_REDUCED_SPEED, LIMITS, LimitSet, Limiter,
-                                        limit_command, stopping_speed)
+from vservo_node.control.safety import (ISO_REDUCED_SPEED, LIMITS, POSITION_ROUNDOFF,
+                                        LimitSet, Limiter, limit_command, stopping_speed)
 
 FAST = settings(max_examples=200, deadline=None)
 TOL = 1e-9
@@ -31,7 +31,8 @@ def violations(x, q, dt, limits, jacs, speed_scale, tol=TOL):
     out = []
     if np.any(np.abs(x) > vmax * (1 + tol) + tol):
         out.append("joint_velocity")
-    up, down = limits.upper - q, q - limits.lower
+    # the limiter keeps POSITION_ROUNDOFF free before each limit (its documented margin)
+    up, down = limits.upper - q - POSITION_ROUNDOFF, q - limits.lower - POSITION_ROUNDOFF
     for envelope in (envelope_speed_continuous, lambda d, a: stopping_speed(d, a, dt)):
         if (np.any(x > envelope(up, limits.acceleration) * (1 + tol) + tol)
                 or np.any(-x > envelope(down, limits.acceleration) * (1 + tol) + tol)):

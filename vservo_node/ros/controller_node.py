@@ -66,12 +66,11 @@ Clocks
 Cycle
     One executor thread runs every subscription, the diagnostics timer, the services and the
     lifecycle transitions; the image callback only hands the serialized image to a perception
-    thread (5 nice steps below the rest, so the command path gets the CPU first) through a
-    one-frame slot (the newest frame wins; replaced frames are counted in the diagnostics).
-    That thread decodes it (a view of the bytes for bgr8/mono8/mono16), runs perception outside
-    the servo lock, then ``servo.observe(obs, q(t_image), t_image)`` under it; feature topics
-    are published for every processed image, moving or not. The output thread
-    (``output_loop.OutputLoop``, steady clock, from activate to deactivate) ticks at
+    thread through a one-frame slot (the newest frame wins; replaced frames are counted in the
+    diagnostics). That thread decodes it (a view of the bytes for bgr8/mono8/mono16), runs
+    perception outside the servo lock, then ``servo.observe(obs, q(t_image), t_image)`` under
+    it; feature topics are published for every processed image, moving or not. The output
+    thread (``output_loop.OutputLoop``, steady clock, from activate to deactivate) ticks at
     ``io.output_rate_hz``: the watchdogs, then ``servo.command(q_latest, t, 1 /
     io.output_rate_hz)``; it publishes the command while a run moves (servoing, settling,
     braking). When a run ends (converged or halted) one explicit zero is published and nothing

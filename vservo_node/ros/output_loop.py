@@ -20,14 +20,6 @@ import time
 from typing import Callable
 
 
-#: How much lower (nice steps) the perception thread runs than the rest of the controller: on
-#: a busy machine the command path (output ticks, joint states, services) gets the CPU first and
-#: perception, which only refreshes the observation, waits. A value of our own choosing
-#: (common practice to favour the command path; no source), 5 nice steps is about a third of
-#: the CPU share under Linux's fair scheduler when both want it.
-PERCEPTION_NICE = 5
-
-
 def lower_thread_priority(steps: int) -> bool:
     """Lower the calling thread's scheduling priority by ``steps`` nice steps (Linux: nice is
     per thread; raising it needs no privilege). True when done; False where the platform has

@@ -26,7 +26,6 @@ from vservo_node import interface as itf
 from vservo_node.perception import DepthImage
 from vservo_node.ros import convert, qos
 from vservo_node.ros.frame_loss import cdr_stamp
-from vservo_node.ros.output_loop import PERCEPTION_NICE, lower_thread_priority
 from vservo_node.ros.controller.guards import guarded
 from vservo_node.ros.controller import ACTIVE_RUN
 from vservo_node.servo import MOVING_STATES, Observation
@@ -215,7 +214,6 @@ class InputCallbacks(ControllerState):
 
     def _perception_loop(self, frames: FrameSlot) -> None:
         """The perception thread: decode, perceive and observe the newest frame."""
-        lower_thread_priority(PERCEPTION_NICE)
         while True:
             item = frames.take()
             if item is None:
