@@ -174,18 +174,10 @@ from vservo_node.ros.controller.parameters import READ_ONLY, descriptor, ros_typ
 from vservo_node.ros.node_main import install_signal_handlers, run_node
 
 
-#: Interpreter lock hand-over interval in the controller process (Python's default 5 ms).
-SWITCH_INTERVAL_S = 0.001
-
-
 def _run(program: str, autostart: bool, args=None) -> int:
     # Our own signal handling: the context must outlive SIGINT/SIGTERM long enough to send the
     # explicit zero of a run in progress.
     install_signal_handlers()
-    # The output thread waits for the interpreter lock whenever the executor or perception
-    # thread holds it; Python hands it over only every switch interval (5 ms by default), and
-    # with three threads wanting it that could take more than one 8 ms output period.
-    sys.setswitchinterval(SWITCH_INTERVAL_S)
     run_node(program, ControllerNode, ControllerNode.shutdown, args, own_signals=True,
              start=ControllerNode.autostart if autostart else None,
              finish=ControllerNode.finish_for_shutdown)
