@@ -13,11 +13,28 @@ never turns into a burst of commands. No rclpy here: the callback does the publi
 """
 from __future__ import annotations
 
+import collections
 import math
 import os
 import threading
 import time
 from typing import Callable
+
+
+# Timing trace for diagnosis (DEVELOPERS.md, "Timing"): with VSERVO_TICK_TRACE=<prefix> set,
+# every tick's (deadline, start, end, thread CPU s) is kept (the last ~1 h at 125 Hz) and
+# saved at exit to <prefix>.<pid>.npy.
+_TRACE = os.environ.get("VSERVO_TICK_TRACE", "")
+_TRACE_ROWS: collections.deque[tuple[float, float, float, float]] = collections.deque(
+    maxlen=450_000)
+if _TRACE:
+    import atexit
+
+    def _dump() -> None:
+        import numpy as np
+        if _TRACE_ROWS:
+            np.save(f"{_TRACE}.{os.getpid()}.npy", np.array(_TRACE_ROWS))
+    atexit.register(_dump)
 
 
 def lower_thread_priority(steps: int) -> bool:
@@ -79,6 +96,7 @@ class OutputLoop:
             delay = next_deadline - self._clock()
             if delay > 0.0 and self._wait(delay):
                 return
+            start, cpu0 = self._clock(), time.thread_time()
             try:
                 self._tick()
             except BaseException as exc:  # noqa: BLE001 - the loop must outlive a bad tick
@@ -87,8 +105,10 @@ class OutputLoop:
                         self._on_error(exc)
                     except Exception:  # noqa: BLE001, S110 - nothing left to report to
                         pass
-            next_deadline += period
             now = self._clock()
+            if _TRACE:
+                _TRACE_ROWS.append((next_deadline, start, now, time.thread_time() - cpu0))
+            next_deadline += period
             if now >= next_deadline:   # overran: skip the missed deadlines, never burst
                 missed = int((now - next_deadline) // period) + 1
                 self.skipped += missed
