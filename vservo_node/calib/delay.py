@@ -200,12 +200,12 @@ def _search(observed, predict, taus) -> tuple[float, float]:
     return _peak(taus, scores)
 
 
-def estimate_delay(trace, output_period_s: float, frame_period_s: float | None = None,
-                   search_s=SEARCH_S, lags_s=LAGS_S) -> DelayEstimate:
-    """The delay of a run's trace (module doc). ``output_period_s``: 1 / io.output_rate_hz;
-    ``frame_period_s``: default the median frame interval; ``lags_s``: the first-order lags
-    tried (``(0.0,)``: a pure delay only)."""
-    Ms, ds, ta, tb, dq_meas = [], [], [], [], []
+def frame_pair_motion(trace, correction=None):
+    """Per pair of consecutive frames with every feature, depth and joint finite: the image
+    Jacobian at the pair's midpoint (interaction matrix @ ``correction`` @ camera Jacobian),
+    the feature motion seen, both frame times and the pair's index k, as arrays
+    ``(M (K, 2m, n), d (K, 2m), t_a, t_b, k)``; ValueError under 3 pairs."""
+    Ms, ds, pairs = [], [], []
     for k in range(trace.n_frames - 1):
         xy_mid = 0.5 * (trace.xy[k] + trace.xy[k + 1])
         Z = 0.5 * (trace.depth[k] + trace.depth[k + 1])
@@ -213,16 +213,25 @@ def estimate_delay(trace, output_period_s: float, frame_period_s: float | None =
         if not (np.isfinite(xy_mid).all() and np.isfinite(Z).all() and np.all(Z > 0)
                 and np.isfinite(q_mid).all()):
             continue
-        Ms.append(point_interaction_matrix(xy_mid, Z) @ trace.camera_jacobian(q_mid))
+        J = trace.camera_jacobian(q_mid)
+        Ms.append(point_interaction_matrix(xy_mid, Z) @ (J if correction is None
+                                                          else correction @ J))
         ds.append((trace.xy[k + 1] - trace.xy[k]).ravel())
-        ta.append(trace.t[k])
-        tb.append(trace.t[k + 1])
-        dq_meas.append(trace.q[k + 1] - trace.q[k])
+        pairs.append(k)
     if len(ds) < 3:
         raise ValueError(f"{len(ds)} frame pairs with all features and depths; expected 3 or "
                          "more")
-    Ms, ds, ta, tb = np.array(Ms), np.array(ds), np.array(ta), np.array(tb)
-    dq_meas = np.array(dq_meas)
+    k = np.array(pairs)
+    return np.array(Ms), np.array(ds), trace.t[k], trace.t[k + 1], k
+
+
+def estimate_delay(trace, output_period_s: float, frame_period_s: float | None = None,
+                   search_s=SEARCH_S, lags_s=LAGS_S) -> DelayEstimate:
+    """The delay of a run's trace (module doc). ``output_period_s``: 1 / io.output_rate_hz;
+    ``frame_period_s``: default the median frame interval; ``lags_s``: the first-order lags
+    tried (``(0.0,)``: a pure delay only)."""
+    Ms, ds, ta, tb, pairs = frame_pair_motion(trace)
+    dq_meas = trace.q[pairs + 1] - trace.q[pairs]
     taus = np.arange(search_s[0], search_s[1] + GRID_S / 2, GRID_S)
     best = None
     for lag in lags_s:

@@ -283,29 +283,12 @@ def image_lag(trace, correction=None) -> tuple[float, float]:
     (as calib/delay.py). ``correction``: 6 x 6, applied to the believed camera twist (the
     hand-eye error found so far; default none); a hand-eye error turns the predicted motion, which
     biases the lag a little, so the check alternates the two estimates."""
-    from vservo_node.calib.delay import GRID_S, _search
-    from vservo_node.control.interaction import point_interaction_matrix
+    from vservo_node.calib.delay import GRID_S, _search, frame_pair_motion
 
     if trace.joint_t is None:
         return 0.0, math.nan
     correction = np.eye(6) if correction is None else np.asarray(correction, dtype=float)
-    Ms, ds, ta, tb = [], [], [], []
-    for k in range(trace.n_frames - 1):
-        xy_mid = 0.5 * (trace.xy[k] + trace.xy[k + 1])
-        Z = 0.5 * (trace.depth[k] + trace.depth[k + 1])
-        q_mid = 0.5 * (trace.q[k] + trace.q[k + 1])
-        if not (np.isfinite(xy_mid).all() and np.isfinite(Z).all() and np.all(Z > 0)
-                and np.isfinite(q_mid).all()):
-            continue
-        Ms.append(point_interaction_matrix(xy_mid, Z) @ correction
-                  @ trace.camera_jacobian(q_mid))
-        ds.append((trace.xy[k + 1] - trace.xy[k]).ravel())
-        ta.append(trace.t[k])
-        tb.append(trace.t[k + 1])
-    if len(ds) < 3:
-        raise ValueError(f"{len(ds)} frame pairs with all features and depths; expected 3 or "
-                         "more")
-    Ms, ds, ta, tb = np.array(Ms), np.array(ds), np.array(ta), np.array(tb)
+    Ms, ds, ta, tb, _ = frame_pair_motion(trace, correction)
 
     def joints(t):
         return np.column_stack([np.interp(t, trace.joint_t, trace.joint_q[:, j])
